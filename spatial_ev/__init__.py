@@ -1,0 +1,49 @@
+"""spatial_ev: spatial-structure analysis of georeferenced ecological surveys.
+
+Site coordinates become neighbour graphs and spatial eigenvectors (MEM, distance-based MEM /
+PCNM); redundancy analysis with permutation tests and forward selection keeps the ones that
+matter; variation partitioning separates environmental, spatial, shared and unexplained
+fractions; scale classes are mapped in map units; candidate sampling layouts are evaluated.
+
+The public names are imported lazily so that ``import spatial_ev`` stays light and optional
+parts (plotting, dask) load only when used.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+__version__ = "0.1.0"
+
+# public name -> module that defines it
+_PUBLIC = {
+    "read_survey": "survey",
+    "Survey": "survey",
+    "neighbour_graph": "connectivity",
+    "NeighbourGraph": "connectivity",
+    "distance_eigenvectors": "eigen",
+    "graph_eigenvectors": "eigen",
+    "SpatialBasis": "eigen",
+    "morans_i": "moran",
+    "transform": "transform",
+    "redundancy_analysis": "canonical",
+    "forward_selection": "selection",
+    "partition_variation": "partition",
+    "analyse": "analysis",
+}
+
+__all__ = sorted(_PUBLIC) + ["__version__"]
+
+
+def __getattr__(name: str) -> Any:
+    if name in _PUBLIC:
+        module = importlib.import_module(f".{_PUBLIC[name]}", __name__)
+        value = getattr(module, name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'spatial_ev' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

@@ -1,0 +1,7 @@
+"""Allow ``python -m spatial_ev``."""
+
+import sys
+
+from .cli import main
+
+sys.exit(main())

@@ -1,0 +1,93 @@
+"""The ``spatial-ev`` command: parse arguments, call the library, report errors.
+
+Each sub-command lives in its own module ``spatial_ev/cli_<name>.py`` exposing
+``configure(parser)`` (adds its options) and ``execute(args) -> int``. This module holds only
+the parser, the dispatch table and the error boundary: any :class:`SpatialEVError` becomes one
+line on standard error and exit status 2 (``--debug`` shows the traceback instead).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+import warnings
+from collections.abc import Sequence
+
+from . import __version__
+from .errors import SpatialEVError, SpatialEVWarning
+
+# command name -> (module, one-line help)
+COMMANDS: dict[str, tuple[str, str]] = {
+    "check": ("cli_check", "validate survey files and describe what `run` would do; writes nothing"),
+    "eigen": ("cli_eigen", "build a spatial basis for a site file and write it (CSV + GeoPackage)"),
+    "run": ("cli_run", "run the whole analysis on survey files and write a run folder"),
+    "demo": ("cli_run", "run the whole analysis on the shipped demo survey"),
+    "design": ("cli_design", "evaluate candidate sampling layouts against a pilot analysis"),
+}
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """Build the full argument parser (also used to generate the CLI reference).
+
+    Examples
+    --------
+    >>> build_parser().prog
+    'spatial-ev'
+    """
+    parser = argparse.ArgumentParser(
+        prog="spatial-ev",
+        description="Spatial-structure analysis of georeferenced ecological surveys.")
+    parser.add_argument("--version", action="version", version=f"spatial-ev {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    for name, (module_name, help_text) in COMMANDS.items():
+        try:
+            module = importlib.import_module(f".{module_name}", __package__)
+        except ModuleNotFoundError as exc:
+            if exc.name != f"{__package__}.{module_name}":
+                raise
+            continue  # command not built yet
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        p.add_argument("--debug", action="store_true",
+                       help="show the full traceback on errors")
+        configure = getattr(module, f"configure_{name}", None) or module.configure
+        configure(p)
+        p.set_defaults(_execute=getattr(module, f"execute_{name}", None) or module.execute)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of ``spatial-ev``; returns the exit status.
+
+    Examples
+    --------
+    >>> main(["--version"])  # doctest: +SKIP
+    """
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    debug = getattr(args, "debug", False)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("always", SpatialEVWarning)
+            warnings.showwarning = _show_warning
+            return int(args._execute(args) or 0)
+    except SpatialEVError as exc:
+        if debug:
+            raise
+        print(f"spatial-ev {args.command}: error: {_one_line(str(exc))}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:  # pragma: no cover - interactive
+        print("spatial-ev: interrupted; nothing was written", file=sys.stderr)
+        return 130
+
+
+def _one_line(text: str) -> str:
+    return " ".join(text.split())
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    print(f"warning ({category.__name__}): {_one_line(str(message))}", file=sys.stderr)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -142,7 +142,7 @@ def as_matrix(name: str, data: Any, *, min_rows: int = 1, min_cols: int = 1,
                          f"got shape {arr.shape}")
     finite = np.isfinite(arr)
     if not finite.all():
-        r, c = np.argwhere(~finite)[0]
+        r, c = (int(i) for i in np.argwhere(~finite)[0])
         rlab = rows[r] if rows is not None else r
         clab = cols[c] if cols is not None else c
         raise InputError(f"`{name}` has a missing or infinite value at row {rlab!r}, "

@@ -49,14 +49,14 @@ Restricted permutations (``restriction``)
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
 from ._validation import check_int, check_option, check_rng
-from .canonical import _Model, _column_basis, _prepare, adjusted_r2, _check_explanatory
+from .canonical import _Model, _check_explanatory, _check_response, _fraction, _prepare
 from .engines import ENGINES, run_tasks
 from .errors import InputError
 
@@ -364,14 +364,14 @@ class _MultiKernel:
         return self.kernels[which](rows)
 
 
-def _test(model: _Model, scheme: _Scheme, statistic: str = "f", test_basis=None):
+def _test(model: _Model, scheme: _Scheme, statistic: str = "f"):
     """Observed statistic and kernel for the X part of ``model`` given its W part."""
-    qw, qx = model.qw, model.qx if test_basis is None else test_basis
+    qw, qx = model.qw, model.qx
     n, q, r = model.n, qw.shape[1], qx.shape[1]
     resid = model.y - qw @ (qw.T @ model.y) if q else model.y
     response = _reduce(resid)
     ss_total = float(np.einsum("ij,ij->", response, response))
-    df_res = n - 1 - q - model.qx.shape[1]
+    df_res = n - 1 - q - r
     prod = qx.T @ response
     ss_x = float(np.einsum("ij,ij->", prod, prod))
     denominator = max(ss_total - ss_x, 0.0) / df_res
@@ -433,14 +433,164 @@ def permutation_test(Y, X, *, conditioning=None, n_permutations: int = 999,
     scheme = _check_scheme(model.n, seed, restriction, blocks, grid_shape, model.rows)
     observed, kernel = _test(model, scheme)
     null = _null([kernel], n_permutations, chunk_size, engine, scheduler, progress)[0]
-    q, r, n = model.qw.shape[1], model.qx.shape[1], model.n
-    ss_total = float(np.einsum("ij,ij->", model.y, model.y))
-    ss_w = float(np.square(model.qw.T @ model.y).sum()) if q else 0.0
-    ss_x = float(np.square(model.qx.T @ model.y).sum())
-    r2_w, r2_xw = ss_w / ss_total, (ss_w + ss_x) / ss_total
-    r2_adj = adjusted_r2(r2_xw, n, q + r) - (adjusted_r2(r2_w, n, q) if q else 0.0)
+    fraction = _fraction(model)
     return PermutationTest(
         statistic=float(observed), p_value=_p_value(observed, null), null_distribution=null,
-        n_permutations=n_permutations, method="reduced_residual" if q else "raw",
-        restriction=scheme.restriction, r2=r2_xw - r2_w, r2_adj=r2_adj, df_model=r,
+        n_permutations=n_permutations,
+        method="reduced_residual" if model.qw.shape[1] else "raw",
+        restriction=scheme.restriction, r2=fraction.r2, r2_adj=fraction.r2_adj,
+        df_model=fraction.rank,
         df_residual=kernel.df_residual)
+
+
+_AXIS_METHODS = ("forward", "marginal")
+
+
+def axis_tests(Y, X, *, conditioning=None, method: str = "forward", max_axes: int | None = None,
+               n_permutations: int = 999, seed: None | int | np.random.Generator = None,
+               chunk_size: int | None = None, engine: str = "local", scheduler: Any = None,
+               restriction: str = "free", blocks=None, grid_shape: tuple[int, int] | None = None,
+               progress: Callable[[int, int], Any] | None = None) -> pd.DataFrame:
+    """Permutation test of each canonical axis of a (partial) RDA, one axis at a time.
+
+    Axes are tested one by one, never all at once (testing every axis against the permuted
+    first eigenvalues is invalid: Legendre, Oksanen & ter Braak 2011, Methods Ecol. Evol.
+    2:269-277). For axis j the statistic is ``sigma_j² / (RSS / df_residual)`` (sigma_j² the
+    axis' sum of squares, RSS the full model's residual sum of squares) and it is compared to
+    the largest eigenvalue statistic of the permuted data:
+
+    * ``"forward"``: the fitted site scores of axes 1..j-1 (and the conditioning table) are
+      covariables; residuals of Y on them are permuted (Freedman & Lane). Read the results in
+      order and stop at the first axis that is not significant.
+    * ``"marginal"``: the fitted site scores of every *other* canonical axis are covariables.
+
+    Parameters are those of :func:`permutation_test`; ``max_axes`` limits the number of axes
+    tested (default: all canonical axes). Every axis uses the same permutations.
+
+    Returns
+    -------
+    DataFrame
+        Index ``canonical_1, ...``; columns ``variance`` (eigenvalue), ``proportion`` (of the
+        total variance of Y), ``pseudo_f``, ``p_value``, ``n_permutations``, ``method``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(5647382910)
+    >>> x = rng.normal(size=(40, 3))
+    >>> y = x[:, :1] @ rng.normal(size=(1, 6)) * 2 + rng.normal(size=(40, 6))
+    >>> float(axis_tests(y, x, n_permutations=199, seed=3)["p_value"].iloc[0])
+    0.005
+    """
+    n_permutations, chunk_size, engine = _check_run(n_permutations, chunk_size, engine, progress)
+    method = check_option("method", method, _AXIS_METHODS)
+    model = _prepare(Y, X, conditioning, require_x=True)
+    scheme = _check_scheme(model.n, seed, restriction, blocks, grid_shape, model.rows)
+    qw, qx = model.qw, model.qx
+    resid = model.y - qw @ (qw.T @ model.y) if qw.shape[1] else model.y
+    u, s, _ = np.linalg.svd(qx.T @ resid, full_matrices=True)
+    s = np.concatenate([s, np.zeros(u.shape[0] - s.size)])
+    n_canonical = int(np.count_nonzero(s > s[0] * max(resid.shape) * np.finfo(float).eps * 10))
+    n_axes = n_canonical
+    if max_axes is not None:
+        n_axes = min(n_axes, check_int("max_axes", max_axes, low=1))
+    directions = qx @ u                                   # (n, r): canonical directions first
+    observed, kernels = [], []
+    for j in range(n_axes):
+        if method == "forward":
+            cond, test = np.arange(j), np.arange(j, qx.shape[1])
+        else:
+            cond = np.delete(np.arange(n_canonical), j)
+            test = np.concatenate([[j], np.arange(n_canonical, qx.shape[1])]).astype(int)
+        sub = replace(model, qw=np.hstack([qw, directions[:, cond]]), qx=directions[:, test])
+        stat, kernel = _test(sub, scheme, "first_axis")
+        observed.append(stat)
+        kernels.append(kernel)
+    nulls = _null(kernels, n_permutations, chunk_size, engine, scheduler, progress)
+    total = float(np.einsum("ij,ij->", model.y, model.y))
+    return pd.DataFrame({
+        "variance": s[:n_axes] ** 2 / (model.n - 1),
+        "proportion": s[:n_axes] ** 2 / total,
+        "pseudo_f": observed,
+        "p_value": [_p_value(o, nl) for o, nl in zip(observed, nulls)],
+        "n_permutations": n_permutations,
+        "method": method,
+    }, index=pd.Index([f"canonical_{j + 1}" for j in range(n_axes)], name="axis"))
+
+
+def _check_terms(Y, terms, conditioning):
+    y, rows, _ = _check_response(Y)
+    if not isinstance(terms, Mapping) or not terms:
+        raise InputError("parameter `terms` must be a non-empty mapping {name: table}, e.g. "
+                         "{'environment': env, 'space': vectors}; got "
+                         f"{type(terms).__name__}")
+    tables = {str(name): _check_explanatory(f"terms[{name!r}]", table, y.shape[0], rows)[0]
+              for name, table in terms.items()}
+    w = None
+    if conditioning is not None:
+        w = _check_explanatory("conditioning", conditioning, y.shape[0], rows)[0]
+    models = {}
+    for name, table in tables.items():
+        others = [t for other, t in tables.items() if other != name] + ([w] if w is not None
+                                                                         else [])
+        try:
+            models[name] = _prepare(Y, table, np.hstack(others) if others else None,
+                                    require_x=True)
+        except InputError as exc:
+            raise InputError(f"term {name!r} cannot be tested given the other terms: {exc}") \
+                from None
+    return models
+
+
+def term_tests(Y, terms: Mapping[str, Any], *, conditioning=None, n_permutations: int = 999,
+               seed: None | int | np.random.Generator = None, chunk_size: int | None = None,
+               engine: str = "local", scheduler: Any = None, restriction: str = "free",
+               blocks=None, grid_shape: tuple[int, int] | None = None,
+               progress: Callable[[int, int], Any] | None = None) -> pd.DataFrame:
+    """Test each term given all the other terms (and ``conditioning``).
+
+    Each term's unique contribution is tested by reduced-model residual permutation
+    (Freedman & Lane 1983): the residuals of Y on the other terms are permuted. Every term uses
+    the same permutations. The unique fractions do not add up to the joint R² when terms are
+    correlated (the shared part is not testable).
+
+    Parameters
+    ----------
+    Y : DataFrame or array, shape (n_sites, n_species)
+    terms : mapping of str to DataFrame or array, each (n_sites, n_variables_t)
+    conditioning, n_permutations, seed, chunk_size, engine, scheduler, restriction, blocks, \
+grid_shape, progress
+        As in :func:`permutation_test`.
+
+    Returns
+    -------
+    DataFrame
+        Index = term names; columns ``df`` (rank added by the term), ``r2`` and ``r2_adj``
+        (unique fraction, Peres-Neto et al. 2006), ``pseudo_f``, ``p_value``,
+        ``n_permutations``, ``method``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(1029384756)
+    >>> a, b = rng.normal(size=(30, 2)), rng.normal(size=(30, 2))
+    >>> y = a @ rng.normal(size=(2, 4)) + rng.normal(size=(30, 4))
+    >>> float(term_tests(y, {"a": a, "b": b}, n_permutations=199, seed=9)["p_value"]["a"])
+    0.005
+    """
+    n_permutations, chunk_size, engine = _check_run(n_permutations, chunk_size, engine, progress)
+    models = _check_terms(Y, terms, conditioning)
+    first = next(iter(models.values()))
+    scheme = _check_scheme(first.n, seed, restriction, blocks, grid_shape, first.rows)
+    tests = [_test(model, scheme) for model in models.values()]
+    nulls = _null([k for _, k in tests], n_permutations, chunk_size, engine, scheduler, progress)
+    fractions = [_fraction(model) for model in models.values()]
+    return pd.DataFrame({
+        "df": [f.rank for f in fractions],
+        "r2": [f.r2 for f in fractions],
+        "r2_adj": [f.r2_adj for f in fractions],
+        "pseudo_f": [o for o, _ in tests],
+        "p_value": [_p_value(o, nl) for (o, _), nl in zip(tests, nulls)],
+        "n_permutations": n_permutations,
+        "method": ["reduced_residual" if m.qw.shape[1] else "raw" for m in models.values()],
+    }, index=pd.Index(list(models), name="term"))

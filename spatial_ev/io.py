@@ -1,0 +1,252 @@
+"""Reading survey files: CSV tables and vector GIS layers (GeoPackage, GeoJSON, Shapefile).
+
+Everything here returns raw tables; :mod:`spatial_ev.survey` decides what the values mean.
+CSV cells are read as text (nothing is guessed by the parser) and converted by
+:func:`parse_numeric`, so a decimal comma, a quoted number or a stray word is reported with its
+file, column and line instead of silently turning a column into text. Every failure of the
+underlying readers (pandas, pyogrio) is re-raised as :class:`~spatial_ev.errors.InputError`
+naming the file.
+"""
+
+from __future__ import annotations
+
+import codecs
+import io as _stdio
+import os
+import re
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+
+__all__ = ["file_format", "read_csv_table", "read_vector", "parse_numeric", "numeric_hint",
+           "CSV_SUFFIXES", "GIS_SUFFIXES"]
+
+CSV_SUFFIXES = {".csv": "CSV", ".txt": "CSV", ".tsv": "CSV (tab-separated)"}
+GIS_SUFFIXES = {".gpkg": "GeoPackage", ".geojson": "GeoJSON", ".json": "GeoJSON",
+                ".shp": "Shapefile"}
+_MISSING = {"", "na", "nan", "n/a", "null", "none", "#n/a"}
+_DECIMAL_COMMA = re.compile(r"^[+-]?\d*,\d+(?:[eE][+-]?\d+)?$")
+_DECIMAL_POINT = re.compile(r"^[+-]?\d*\.\d+(?:[eE][+-]?\d+)?$")
+
+
+def file_format(path: str | os.PathLike, *, role: str) -> str:
+    """Check that a survey file exists and return its kind, ``"csv"`` or ``"gis"``.
+
+    Parameters
+    ----------
+    path : path-like
+        The file.
+    role : str
+        What the file is for ("sites", "species", "environment"), used in messages.
+
+    Examples
+    --------
+    >>> file_format(__file__, role="sites")  # doctest: +IGNORE_EXCEPTION_DETAIL
+    Traceback (most recent call last):
+    InputError: sites file ... has an unknown format '.py'
+    """
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"{role} file {str(p)!r} does not exist; check the path")
+    if p.is_dir():
+        raise InputError(f"{role} file {str(p)!r} is a folder; give the file inside it")
+    suffix = p.suffix.lower()
+    if suffix in CSV_SUFFIXES:
+        return "csv"
+    if suffix in GIS_SUFFIXES:
+        return "gis"
+    known = ", ".join(sorted(set(CSV_SUFFIXES) | set(GIS_SUFFIXES)))
+    raise InputError(f"{role} file {str(p)!r} has an unknown format {suffix or '(no extension)'!r}; "
+                     f"supported: {known}")
+
+
+def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None = None,
+                   decimal: str = ".") -> pd.DataFrame:
+    """Read a CSV file as a table of stripped text cells with a checked header.
+
+    The header must name every column once. An empty first header cell (a table exported with
+    row names) is named ``"site"``. Rows keep their order; ``frame.attrs["first_line"]`` is the
+    file line number of the first data row (for messages).
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> f = pathlib.Path(tempfile.mkdtemp()) / "t.csv"
+    >>> _ = f.write_text("site;depth\\nA;1,5\\n")
+    >>> read_csv_table(f, role="environment", delimiter=";", decimal=",")["depth"].tolist()
+    ['1,5']
+    """
+    p = Path(path)
+    delimiter = _check_delimiter(delimiter, decimal, p)
+    try:
+        raw = p.read_bytes()
+    except OSError as exc:
+        raise InputError(f"{role} file {str(p)!r} cannot be read ({exc.strerror})") from None
+    text = _decode(raw, p, role)
+    if not text.strip():
+        raise InputError(f"{role} file {str(p)!r} is empty; it needs a header row and one row "
+                         f"per site")
+    try:
+        frame = pd.read_csv(_stdio.StringIO(text), sep=delimiter, header=None, dtype=str,
+                            keep_default_na=False, skip_blank_lines=True, engine="c")
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
+        msg = " ".join(str(exc).split())
+        raise InputError(f"{role} file {str(p)!r} cannot be read as CSV with delimiter "
+                         f"{delimiter!r}: {msg}; check the delimiter and that every row has "
+                         f"as many fields as the header") from None
+    frame = frame.fillna("")
+    header = [str(h).strip() for h in frame.iloc[0]]
+    body = frame.iloc[1:].reset_index(drop=True)
+    if body.empty:
+        raise InputError(f"{role} file {str(p)!r} has a header but no data rows")
+    if len(header) == 1:
+        first_line = text.lstrip().splitlines()[0]
+        others = [d for d in (",", ";", "\t", "|") if d != delimiter and d in first_line]
+        if others:
+            shown = "tab" if others[0] == "\t" else others[0]
+            raise InputError(f"{role} file {str(p)!r} has a single column with delimiter "
+                             f"{delimiter!r}, but its header contains {others[0]!r}; pass "
+                             f"delimiter={others[0]!r} (command line: --delimiter '{shown}')")
+    if header[0] == "":
+        header[0] = "site"
+    unnamed = [i + 1 for i, h in enumerate(header) if h == ""]
+    if unnamed:
+        raise InputError(f"{role} file {str(p)!r}: column(s) {unnamed} have no name in the "
+                         f"header; name every column")
+    counts = pd.Series(header).value_counts()
+    dupes = sorted(counts.index[counts > 1])
+    if dupes:
+        raise InputError(f"{role} file {str(p)!r}: column name(s) {dupes} appear more than "
+                         f"once in the header; give every column a distinct name")
+    body.columns = pd.Index(header, dtype=object)
+    body = body.apply(lambda col: col.str.strip())
+    body.attrs["first_line"] = 2
+    return body
+
+
+def read_vector(path: str | os.PathLike, *, role: str, layer: str | int | None = None):
+    """Read one layer of a vector GIS file (GeoPackage, GeoJSON, Shapefile) with pyogrio.
+
+    A file with several layers needs ``layer``. Returns a GeoDataFrame with the file's CRS
+    (``None`` when the file declares none).
+
+    Examples
+    --------
+    >>> read_vector("missing.gpkg", role="sites")  # doctest: +IGNORE_EXCEPTION_DETAIL
+    Traceback (most recent call last):
+    InputError: sites file 'missing.gpkg' cannot be read ...
+    """
+    import pyogrio
+
+    p = Path(path)
+    errors = (pyogrio.errors.DataSourceError, pyogrio.errors.DataLayerError,
+              pyogrio.errors.FieldError, pyogrio.errors.GeometryError,
+              pyogrio.errors.FeatureError, pyogrio.errors.CRSError, OSError, ValueError,
+              RuntimeError, TypeError)
+    try:
+        layers = pyogrio.list_layers(p)
+    except errors as exc:
+        raise InputError(f"{role} file {str(p)!r} cannot be read as a GIS file "
+                         f"({_one_line(exc)}); check that it is a valid "
+                         f"{GIS_SUFFIXES.get(p.suffix.lower(), 'vector')} file") from None
+    names = [str(n) for n in layers[:, 0]] if len(layers) else []
+    if not names:
+        raise InputError(f"{role} file {str(p)!r} contains no layers")
+    if layer is None and len(names) > 1:
+        raise InputError(f"{role} file {str(p)!r} has {len(names)} layers ({', '.join(names)}); "
+                         f"choose one with layer= (command line: --layer NAME)")
+    if layer is not None and not isinstance(layer, int) and str(layer) not in names:
+        raise InputError(f"{role} file {str(p)!r} has no layer {layer!r}; its layers are "
+                         f"{', '.join(names)}")
+    try:
+        gdf = pyogrio.read_dataframe(p, layer=layer)
+    except errors as exc:
+        raise InputError(f"{role} file {str(p)!r} cannot be read ({_one_line(exc)})") from None
+    if len(gdf) == 0:
+        raise InputError(f"{role} file {str(p)!r} has no features (empty layer)")
+    return gdf
+
+
+def parse_numeric(values: pd.Series, *, decimal: str = ".") -> tuple[np.ndarray, np.ndarray,
+                                                                       np.ndarray]:
+    """Convert text (or already numeric) cells to float64.
+
+    Returns ``(numbers, missing, bad)``: ``numbers`` has NaN where a cell is missing (empty,
+    ``NA``, ``NaN``, ``null`` ...) or not a number; ``missing`` and ``bad`` are boolean masks.
+    ``inf``/``-inf`` are parsed (and rejected by the caller with a precise message).
+
+    Examples
+    --------
+    >>> nums, missing, bad = parse_numeric(pd.Series(["1,5", "", "x"]), decimal=",")
+    >>> nums[0], missing.tolist(), bad.tolist()
+    (np.float64(1.5), [False, True, False], [False, False, True])
+    """
+    if pd.api.types.is_bool_dtype(values.dtype):
+        values = values.astype(float)
+    if pd.api.types.is_numeric_dtype(values.dtype):
+        numbers = values.to_numpy(dtype=np.float64, na_value=np.nan)
+        missing = np.isnan(numbers)
+        return numbers, missing, np.zeros(len(values), dtype=bool)
+    text = values.astype(object).where(values.notna(), "").astype(str).str.strip()
+    missing = text.str.lower().isin(_MISSING).to_numpy()
+    if decimal == ",":
+        has_point = text.str.contains(".", regex=False).to_numpy()
+        text = text.str.replace(",", ".", regex=False)
+    else:
+        has_point = np.zeros(len(text), dtype=bool)
+    candidates = text.where(~missing & ~has_point, None).astype(object)
+    numbers = pd.to_numeric(candidates, errors="coerce").to_numpy(dtype=np.float64,
+                                                                  na_value=np.nan)
+    bad = np.isnan(numbers) & ~missing
+    # a literal "nan" is missing, not bad; numbers parsed from text like "NaN" are covered above
+    return numbers, missing, bad
+
+
+def numeric_hint(bad_values: list[str], decimal: str) -> str:
+    """A suggestion for non-numeric cells: decimal comma/point options, or quoting.
+
+    Examples
+    --------
+    >>> numeric_hint(["1,5"], ".")
+    "; the file seems to use a decimal comma: pass decimal=',' (command line: --decimal ,)"
+    """
+    if decimal == "." and any(_DECIMAL_COMMA.match(v) for v in bad_values):
+        return ("; the file seems to use a decimal comma: pass decimal=',' "
+                "(command line: --decimal ,)")
+    if decimal == "," and any(_DECIMAL_POINT.match(v) for v in bad_values):
+        return ("; decimal=',' was given but the value uses a decimal point: check the "
+                "decimal option")
+    return ""
+
+
+def _check_delimiter(delimiter: str | None, decimal: str, path: Path) -> str:
+    if decimal not in (".", ","):
+        raise InputError(f"`decimal` must be '.' or ','; got {decimal!r}")
+    if delimiter is None:
+        delimiter = "\t" if path.suffix.lower() == ".tsv" else ","
+    if not isinstance(delimiter, str) or len(delimiter) != 1 or delimiter in "\"'\n\r":
+        raise InputError(f"`delimiter` must be one character such as ',', ';' or a tab; got "
+                         f"{delimiter!r}")
+    if delimiter == decimal:
+        raise InputError(f"`delimiter` and `decimal` are both {decimal!r}; a CSV with decimal "
+                         f"commas needs another delimiter, usually ';'")
+    return delimiter
+
+
+def _decode(raw: bytes, path: Path, role: str) -> str:
+    if raw.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
+        return raw.decode("utf-16")
+    try:
+        return raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = raw[:exc.start].count(b"\n") + 1
+        raise InputError(f"{role} file {str(path)!r} is not UTF-8 text (byte "
+                         f"{raw[exc.start]:#04x} on line {line}); save it as UTF-8 (spreadsheets: "
+                         f"'CSV UTF-8')") from None
+
+
+def _one_line(exc: BaseException) -> str:
+    return " ".join(str(exc).split()) or type(exc).__name__

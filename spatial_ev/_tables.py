@@ -99,7 +99,7 @@ def final_index(ids: pd.Series, name: str) -> pd.Index:
         as_int = text.str.replace(r"\.0*$", "", regex=True)
         if (as_int.str.len() < 19).all():
             return pd.Index(as_int.astype(np.int64).to_numpy(), name=name)
-    return pd.Index(text.to_numpy(dtype=object), dtype=object, name=name)
+    return pd.Index(text.tolist(), name=name)
 
 
 def check_ids(table: RawTable) -> pd.Index:

@@ -56,14 +56,21 @@ PARAMETERS: dict[str, Any] = {
     "shore_transect": {"cores": 40, "spacing_m": 15.0, "offset_m": 40.0,
                        "amplitude_m": 25.0, "wavelength_m": 600.0},
     "n_species": 40,
+    # value = intercept + shore*field + estuary*field + noise_sd*N(0, 1), clipped, rounded
     "environment": {
-        "elevation_m": "1.6 + 0.55*shore + 0.25*noise",
-        "salinity_psu": "22 + 4.0*estuary + 1.6*noise",
-        "mud_percent": "clip(50 - 14*shore - 6*estuary + 12*noise, 3, 97)",
-        "organic_matter_mg_g": "clip(14 + 3.5*noise, 1, None)",
-        "sediment_class": "sand (<30 % mud), muddy sand (30-60 %), mud (>=60 %)",
-        "chlorophyll_ug_g": "clip(6 + 1.8*noise, 0.1, None)  (decoy: no taxon responds)",
+        "elevation_m": {"intercept": 1.6, "shore": 0.55, "estuary": 0.0, "noise_sd": 0.25,
+                        "clip": [None, None], "decimals": 2},
+        "salinity_psu": {"intercept": 22.0, "shore": 0.0, "estuary": 4.0, "noise_sd": 1.6,
+                         "clip": [None, None], "decimals": 1},
+        "mud_percent": {"intercept": 50.0, "shore": -14.0, "estuary": -6.0, "noise_sd": 12.0,
+                        "clip": [3.0, 97.0], "decimals": 1},
+        "organic_matter_mg_g": {"intercept": 14.0, "shore": 0.0, "estuary": 0.0,
+                                "noise_sd": 3.5, "clip": [1.0, None], "decimals": 2},
+        "chlorophyll_ug_g": {"intercept": 6.0, "shore": 0.0, "estuary": 0.0, "noise_sd": 1.8,
+                             "clip": [0.1, None], "decimals": 2},
     },
+    "sediment_class": {"from": "mud_percent", "breaks": [30.0, 60.0],
+                       "labels": ["sand", "muddy sand", "mud"]},
     "response_sd": {"elevation": 0.55, "salinity": 0.45, "organic_matter": 0.55,
                     "sediment_class": 0.45, "broad": 0.60, "fine": 0.55},
     "log_mean_count": {"mean": 1.9, "sd": 0.6},
@@ -250,23 +257,23 @@ def _spatial_fields(u, v, rng) -> dict[str, np.ndarray]:
 
 
 def _environment(fields, rng):
+    spec = PARAMETERS["environment"]
     n = fields["shore"].size
-    e = rng.standard_normal((n, 5))
-    shore, estuary = fields["shore"], fields["estuary"]
-    elevation = np.round(1.6 + 0.55 * shore + 0.25 * e[:, 0], 2)
-    salinity = np.round(22.0 + 4.0 * estuary + 1.6 * e[:, 1], 1)
-    mud = np.round(np.clip(50.0 - 14.0 * shore - 6.0 * estuary + 12.0 * e[:, 2], 3, 97), 1)
-    organic = np.round(np.clip(14.0 + 3.5 * e[:, 3], 1.0, None), 2)
-    chlorophyll = np.round(np.clip(6.0 + 1.8 * e[:, 4], 0.1, None), 2)
-    sediment = np.where(mud < 30, "sand", np.where(mud < 60, "muddy sand", "mud"))
-    env = pd.DataFrame({"elevation_m": elevation, "salinity_psu": salinity,
-                        "mud_percent": mud, "organic_matter_mg_g": organic,
-                        "chlorophyll_ug_g": chlorophyll,
-                        "sediment_class": pd.Series(sediment, dtype=object)})
+    e = rng.standard_normal((n, len(spec)))
+    env = {}
+    for i, (name, c) in enumerate(spec.items()):
+        value = (c["intercept"] + c["shore"] * fields["shore"] + c["estuary"] * fields["estuary"]
+                 + c["noise_sd"] * e[:, i])
+        env[name] = np.round(np.clip(value, *c["clip"]), c["decimals"])
+    cut = PARAMETERS["sediment_class"]
+    labels = np.array(cut["labels"], dtype=object)
+    sediment = labels[np.searchsorted(cut["breaks"], env[cut["from"]], side="right")]
+    env = pd.DataFrame(env)
+    env["sediment_class"] = pd.Series(sediment, dtype=object)
     predictors = pd.DataFrame({
-        "elevation_m": _standardise(elevation),
-        "salinity_psu": _standardise(salinity),
-        "organic_matter_mg_g": _standardise(organic),
+        "elevation_m": _standardise(env["elevation_m"].to_numpy()),
+        "salinity_psu": _standardise(env["salinity_psu"].to_numpy()),
+        "organic_matter_mg_g": _standardise(env["organic_matter_mg_g"].to_numpy()),
         "sediment_class[muddy sand]": (sediment == "muddy sand").astype(float),
         "sediment_class[mud]": (sediment == "mud").astype(float)})
     return env, predictors

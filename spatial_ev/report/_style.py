@@ -1,0 +1,87 @@
+"""The visual style shared by every spatial_ev figure: palette, typography, colour maps.
+
+One place decides how the report looks, so maps, charts and the HTML page agree. The palette
+is built from hues that stay distinguishable for the common forms of colour-vision deficiency
+(blue / vermillion / bluish green / reddish purple / orange, with greys for "not explained" and
+"not selected"); the diverging map scale runs dark blue → near white → dark orange, the
+sequential one is matplotlib's ``cividis`` (designed for colour-vision deficiency). Figures are
+drawn inside :func:`styled` so the settings never leak into the caller's matplotlib state.
+"""
+
+from __future__ import annotations
+
+import functools
+from collections.abc import Callable
+from typing import Any, TypeVar
+
+import matplotlib
+from matplotlib.colors import LinearSegmentedColormap
+
+__all__ = ["INK", "MUTED", "GRID", "UNEXPLAINED", "SHARED", "HIGHLIGHT", "GROUP_COLOURS",
+           "BAND_COLOURS", "DIVERGING", "SEQUENTIAL", "RC", "styled", "group_colour"]
+
+INK = "#1d2530"          # text, axes, outlines
+MUTED = "#8a94a3"        # secondary text, vectors that were not selected
+GRID = "#e4e8ee"         # grid lines
+UNEXPLAINED = "#d5dae1"  # the unexplained fraction
+SHARED = "#6c7687"       # fractions shared by several groups
+HIGHLIGHT = "#e69f00"    # the chosen scheme / selected items when a second accent is needed
+
+# one colour per explanatory group, in the order the groups are given
+GROUP_COLOURS = ("#0072b2", "#d55e00", "#009e73", "#cc79a7")
+# soft tints behind scale classes (broad → fine)
+BAND_COLOURS = ("#eaf2fa", "#fdf0e6", "#e8f5f0", "#f7eaf2", "#f2f2f2")
+
+DIVERGING = LinearSegmentedColormap.from_list(
+    "spatial_ev_diverging",
+    ["#0b3c68", "#3f7fb8", "#a9cbe6", "#f6f6f4", "#f3c08f", "#cf6d1d", "#7a3400"])
+SEQUENTIAL = matplotlib.colormaps["cividis"]
+
+RC: dict[str, Any] = {
+    "font.family": "DejaVu Sans",
+    "font.size": 9.0,
+    "axes.titlesize": 10.5,
+    "axes.titleweight": "bold",
+    "axes.titlelocation": "left",
+    "axes.titlepad": 8.0,
+    "axes.labelsize": 9.0,
+    "axes.labelcolor": INK,
+    "axes.edgecolor": "#9aa3b0",
+    "axes.linewidth": 0.8,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.grid": False,
+    "axes.facecolor": "white",
+    "figure.facecolor": "white",
+    "grid.color": GRID,
+    "grid.linewidth": 0.8,
+    "xtick.color": "#4a5462",
+    "ytick.color": "#4a5462",
+    "xtick.labelsize": 8.0,
+    "ytick.labelsize": 8.0,
+    "text.color": INK,
+    "legend.frameon": False,
+    "legend.fontsize": 8.0,
+    "hatch.color": "#5b6472",
+    "hatch.linewidth": 0.8,
+    "svg.fonttype": "none",
+    "savefig.facecolor": "white",
+}
+
+F = TypeVar("F", bound=Callable[..., Any])
+
+
+def styled(func: F) -> F:
+    """Run a figure function inside the spatial_ev style (rcParams restored afterwards)."""
+
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        with matplotlib.rc_context(RC):
+            return func(*args, **kwargs)
+
+    return wrapper  # type: ignore[return-value]
+
+
+def group_colour(i: int) -> str:
+    """Colour of the ``i``-th explanatory group (cycles after four)."""
+    return GROUP_COLOURS[i % len(GROUP_COLOURS)]

@@ -1,0 +1,249 @@
+"""Map figures: a value at each site (points or polygons), optionally over a gridded surface.
+
+Maps are drawn in the working (projected) coordinate system with equal aspect, axis labels
+in map units, a scale bar with a round length ("2 km"), a grid-north arrow and a colour bar.
+Fitted scores (which are centred) use a diverging colour scale centred on zero; LCBD and other
+non-negative quantities use a sequential one. Functions take plain data and compute nothing
+statistical; they return :class:`matplotlib.figure.Figure` objects (no pyplot state).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+import geopandas as gpd
+import numpy as np
+from matplotlib.cm import ScalarMappable
+from matplotlib.colors import Normalize
+from matplotlib.figure import Figure
+from matplotlib.patches import Rectangle
+from matplotlib.patheffects import withStroke
+from matplotlib.ticker import FuncFormatter
+
+from .._validation import check_option
+from ..errors import CRSError, InputError
+from . import _style as st
+from .figures import unit_symbol
+
+__all__ = ["site_map_figure", "nice_scale_bar"]
+
+_PALETTES = ("diverging", "sequential")
+
+
+def nice_scale_bar(width: float, *, unit: str = "m", fraction: float = 0.2) -> tuple[float,
+                                                                                      str]:
+    """Choose a round scale-bar length near ``fraction`` × map width and its label.
+
+    The length is the largest of 1, 2 or 5 × 10^k map units not exceeding ``fraction`` ×
+    ``width``. Metres of 1000 or more are labelled in kilometres.
+
+    Parameters
+    ----------
+    width : width of the mapped area in map units (> 0).
+    unit : unit symbol (``"m"``, ``"km"``, ``"ft"``, ``"map units"`` ...).
+    fraction : target share of the width.
+
+    Returns
+    -------
+    (length in map units, label)
+
+    Examples
+    --------
+    >>> nice_scale_bar(12_000.0, unit="m")
+    (2000.0, '2 km')
+    >>> nice_scale_bar(430.0, unit="m")
+    (50.0, '50 m')
+    """
+    if not np.isfinite(width) or width <= 0:
+        raise InputError(f"`width` must be a positive finite length in map units; got {width!r}")
+    if not 0 < fraction <= 1:
+        raise InputError(f"`fraction` must be in (0, 1]; got {fraction!r}")
+    target = width * fraction
+    exponent = np.floor(np.log10(target))
+    candidates = [m * 10.0 ** e for e in (exponent - 1, exponent) for m in (1.0, 2.0, 5.0)]
+    length = float(max(c for c in candidates if c <= target * (1 + 1e-12)))
+    if unit == "m" and length >= 1000:
+        label = f"{length / 1000:g} km"
+    else:
+        label = f"{length:g} {unit}"
+    return length, label
+
+
+def _check_sites(sites: Any, column: str) -> tuple[gpd.GeoDataFrame, np.ndarray]:
+    if not isinstance(sites, gpd.GeoDataFrame):
+        raise InputError(f"`sites` must be a GeoDataFrame of points or polygons; got "
+                         f"{type(sites).__name__}")
+    if len(sites) == 0:
+        raise InputError("`sites` has no rows; nothing to map")
+    if not isinstance(column, str) or column not in sites.columns:
+        raise InputError(f"`column` must name a column of `sites`; got {column!r}, columns are "
+                         f"{[c for c in sites.columns if c != sites.geometry.name]}")
+    if sites.crs is not None and sites.crs.is_geographic:
+        raise CRSError(f"`sites` are in a geographic CRS ({sites.crs.name}); the scale bar and "
+                       "north arrow need a projected CRS in metres: reproject with "
+                       "sites.to_crs(<projected EPSG>) first")
+    kinds = set(sites.geometry.geom_type.dropna())
+    if not kinds <= {"Point", "Polygon", "MultiPolygon"} or not kinds:
+        raise InputError(f"`sites` geometries must be points or polygons; got {sorted(kinds)}")
+    try:
+        values = np.asarray(sites[column], dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InputError(f"`sites[{column!r}]` must be numeric") from None
+    if not np.isfinite(values).all():
+        bad = sites.index[~np.isfinite(values)][0]
+        raise InputError(f"`sites[{column!r}]` has a missing value at site {bad!r}; drop or "
+                         "fill it before mapping")
+    return sites, values
+
+
+def _check_surface(surface: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    if surface is None:
+        return None
+    if not isinstance(surface, Mapping) or not {"x", "y", "values"} <= set(surface):
+        raise InputError("`surface` must be a mapping with keys 'x' (cell centres, ascending), "
+                         "'y' (ascending) and 'values' (len(y) × len(x), NaN outside the hull)")
+    x = np.asarray(surface["x"], dtype=np.float64)
+    y = np.asarray(surface["y"], dtype=np.float64)
+    z = np.asarray(surface["values"], dtype=np.float64)
+    if x.ndim != 1 or y.ndim != 1 or len(x) < 2 or len(y) < 2:
+        raise InputError(f"`surface['x']` and `surface['y']` must be 1-D with ≥ 2 cell centres; "
+                         f"got shapes {x.shape} and {y.shape}")
+    if np.any(np.diff(x) <= 0) or np.any(np.diff(y) <= 0):
+        raise InputError("`surface['x']` and `surface['y']` must be strictly increasing")
+    if z.shape != (len(y), len(x)):
+        raise InputError(f"`surface['values']` must have shape (len(y), len(x)) = "
+                         f"{(len(y), len(x))}; got {z.shape}")
+    if not np.isfinite(z).any():
+        raise InputError("`surface['values']` has no finite value")
+    return x, y, z
+
+
+def _draw_scale_bar(ax: Any, xlim: tuple[float, float], ylim: tuple[float, float],
+                    unit: str) -> None:
+    width, height = xlim[1] - xlim[0], ylim[1] - ylim[0]
+    length, label = nice_scale_bar(width, unit=unit)
+    x0, y0, h = xlim[0] + 0.04 * width, ylim[0] + 0.045 * height, 0.012 * height
+    halo = [withStroke(linewidth=3, foreground="white")]
+    for k, colour in enumerate((st.INK, "white", st.INK, "white")):
+        ax.add_patch(Rectangle((x0 + k * length / 4, y0), length / 4, h, facecolor=colour,
+                               edgecolor=st.INK, linewidth=0.7, zorder=10, gid="scale-bar"))
+    ax.text(x0 + length / 2, y0 + 1.9 * h, label, ha="center", va="bottom", fontsize=8,
+            zorder=10, gid="scale-bar-label", path_effects=halo)
+
+
+def _draw_north_arrow(ax: Any) -> None:
+    halo = [withStroke(linewidth=3, foreground="white")]
+    ax.annotate("", xy=(0.955, 0.93), xytext=(0.955, 0.82), xycoords="axes fraction",
+                arrowprops=dict(arrowstyle="-|>,head_width=0.35,head_length=0.7",
+                                color=st.INK, lw=1.6), zorder=10, gid="north-arrow")
+    ax.text(0.955, 0.935, "N", transform=ax.transAxes, ha="center", va="bottom",
+            fontsize=9, fontweight="bold", zorder=10, path_effects=halo)
+
+
+@st.styled
+def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "diverging",
+                    surface: Mapping[str, Any] | None = None, unit: str = "m",
+                    title: str | None = None, value_label: str | None = None,
+                    north_arrow: str = "grid") -> Figure:
+    """Map one value per site, optionally over a gridded prediction surface.
+
+    Points are drawn as dots, polygons filled; both take the value's colour. With
+    ``palette="diverging"`` the colour scale is symmetric about zero (for fitted scores and
+    other centred quantities: colour shows sign and size); with ``"sequential"`` it runs from
+    the smallest to the largest value (for LCBD and other non-negative quantities). A surface
+    (values on a regular grid, NaN outside the survey hull) is drawn underneath with the same
+    colour scale; it is an interpolation between sites and says nothing beyond the hull.
+
+    The north arrow assumes a projected CRS whose y axis points north ("grid north"). Grid
+    north differs from true north by the meridian convergence, which grows away from the
+    projection's central meridian (a few degrees at the edge of a UTM zone); for local planar
+    coordinates of arbitrary orientation pass ``north_arrow="none"``. Geographic (degree)
+    coordinates are refused: scale bars are meaningless there.
+
+    Parameters
+    ----------
+    sites : GeoDataFrame of points or polygons in a projected CRS (or without CRS: local
+        planar coordinates).
+    column : name of the numeric column to map.
+    palette : ``"diverging"`` or ``"sequential"``.
+    surface : mapping with ``"x"`` (cell-centre x, ascending, length nx), ``"y"`` (ascending,
+        ny) and ``"values"`` (ny × nx), or None.
+    unit : distance unit symbol for axis labels and the scale bar (see ``unit_symbol``).
+    title : figure title (default: the column name).
+    value_label : colour-bar label (default: the column name).
+    north_arrow : ``"grid"`` (draw a grid-north arrow) or ``"none"``.
+
+    Returns
+    -------
+    Figure with the map axes first and the colour bar second; the scale bar patches carry
+    ``gid="scale-bar"`` and its label ``gid="scale-bar-label"``.
+
+    Examples
+    --------
+    >>> import geopandas as gpd, numpy as np
+    >>> pts = gpd.GeoDataFrame({"score": [-1.0, 0.5, 2.0]},
+    ...                        geometry=gpd.points_from_xy([0, 4000, 9000], [0, 3000, 500]),
+    ...                        crs=32633)
+    >>> fig = site_map_figure(pts, column="score")
+    >>> [t.get_text() for t in fig.axes[0].texts if t.get_gid() == "scale-bar-label"]
+    ['2 km']
+    """
+    sites, values = _check_sites(sites, column)
+    grid = _check_surface(surface)
+    check_option("palette", palette, _PALETTES)
+    check_option("north_arrow", north_arrow, ("grid", "none"))
+    unit = unit_symbol(unit) if unit not in ("m", "km", "ft", "map units") else unit
+
+    all_values = values if grid is None else np.concatenate([values,
+                                                             grid[2][np.isfinite(grid[2])]])
+    if palette == "diverging":
+        vmax = float(np.max(np.abs(all_values))) or 1.0
+        norm, cmap = Normalize(-vmax, vmax), st.DIVERGING
+    else:
+        lo, hi = float(all_values.min()), float(all_values.max())
+        norm, cmap = Normalize(lo, hi if hi > lo else lo + 1.0), st.SEQUENTIAL
+
+    fig = Figure(figsize=(6.8, 5.6), layout="constrained")
+    ax = fig.add_subplot()
+    xmin, ymin, xmax, ymax = sites.total_bounds
+    if grid is not None:
+        gx, gy, gz = grid
+        ax.pcolormesh(gx, gy, np.ma.masked_invalid(gz), cmap=cmap, norm=norm,
+                      shading="nearest", alpha=0.8, zorder=1, gid="surface",
+                      rasterized=True)
+        xmin, xmax = min(xmin, gx[0]), max(xmax, gx[-1])
+        ymin, ymax = min(ymin, gy[0]), max(ymax, gy[-1])
+    if set(sites.geometry.geom_type) == {"Point"}:
+        size = float(np.clip(4000.0 / len(sites), 6.0, 60.0))
+        ax.scatter(sites.geometry.x, sites.geometry.y, c=values, cmap=cmap, norm=norm, s=size,
+                   edgecolor=st.INK, linewidth=0.35, zorder=3, gid="sites")
+    else:
+        frame = gpd.GeoDataFrame({"_value": values}, geometry=sites.geometry.to_numpy(),
+                                 crs=sites.crs)
+        frame.plot(ax=ax, column="_value", cmap=cmap, norm=norm, edgecolor="white",
+                   linewidth=0.3, zorder=3)
+    width, height = max(xmax - xmin, 1e-9), max(ymax - ymin, 1e-9)
+    side = max(width, height)
+    pad = 0.06 * side
+    xlim = (xmin - pad, xmax + pad)
+    ylim = (ymin - 2.2 * pad, ymax + 1.6 * pad)  # room for the scale bar and the arrow
+    ax.set_xlim(*xlim)
+    ax.set_ylim(*ylim)
+    ax.set_aspect("equal")
+    _draw_scale_bar(ax, xlim, ylim, unit)
+    if north_arrow == "grid":
+        _draw_north_arrow(ax)
+    label = "x" if sites.crs is None else "easting"
+    ax.set_xlabel(f"{label} ({unit})")
+    ax.set_ylabel(f"{'y' if sites.crs is None else 'northing'} ({unit})")
+    thousands = FuncFormatter(lambda v, _: f"{v:,.0f}" if abs(v) >= 100 else f"{v:g}")
+    ax.xaxis.set_major_formatter(thousands)
+    ax.yaxis.set_major_formatter(thousands)
+    ax.tick_params(axis="x", labelrotation=0)
+    for side_name in ("top", "right"):
+        ax.spines[side_name].set_visible(True)
+    fig.colorbar(ScalarMappable(norm=norm, cmap=cmap), ax=ax, shrink=0.75, pad=0.02,
+                 label=value_label or column)
+    ax.set_title(title or column)
+    return fig

@@ -1,0 +1,339 @@
+"""Tests of spatial_ev.selection (forward selection, Šidák level, weighting-scheme comparison)."""
+
+from __future__ import annotations
+
+import warnings
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+from scipy import stats
+
+from spatial_ev.errors import DroppedVariablesWarning, InputError
+from spatial_ev.selection import (DEFAULT_SCHEMES, ForwardSelection, WeightingComparison,
+                                  compare_weighting_schemes, forward_selection, sidak_level)
+
+
+def _orthonormal_frame(n: int, k: int, seed: int) -> pd.DataFrame:
+    a = np.random.default_rng(seed).normal(size=(n, k))
+    a -= a.mean(axis=0)
+    q = np.linalg.qr(a)[0]
+    return pd.DataFrame(q, columns=[f"sv{j + 1:03d}" for j in range(k)])
+
+
+def _ols(y, X):
+    return sm.OLS(y, sm.add_constant(X, has_constant="add")).fit()
+
+
+class TestForwardSelection:
+    def test_selects_the_true_orthogonal_vectors(self):
+        # Blanchet, Legendre & Borcard 2008 (Ecology 89:2623–2632): a strong signal on two of
+        # twenty orthogonal vectors is recovered, nothing else passes the double stopping rule.
+        U = _orthonormal_frame(50, 20, 918273645)
+        rng = np.random.default_rng(55501)
+        Y = np.outer(U["sv004"], [4, 3, 2]) + np.outer(U["sv011"], [3, -2, 2]) \
+            + 0.3 * rng.normal(size=(50, 3))
+        sel = forward_selection(Y, U, n_permutations=199, seed=1234567)
+        assert isinstance(sel, ForwardSelection)
+        assert sel.ranking == "orthogonal"
+        assert set(sel.selected) == {"sv004", "sv011"}
+        assert sel.global_test.p_value == pytest.approx(0.005)
+        assert sel.r2_adj <= sel.r2_adj_global
+        # orthogonal contribution of each vector is ‖Yᵀu‖²/SS [derived]
+        Yc = Y - Y.mean(axis=0)
+        first = sel.steps.iloc[0]
+        u = U[first["variable"]].to_numpy()
+        assert first["r2"] == pytest.approx(np.sum((u @ Yc) ** 2) / np.sum(Yc ** 2), rel=1e-12)
+
+    def test_general_candidates_match_ordinary_regression(self):
+        # Correlated candidates: each step must add the candidate with the largest R² gain
+        # (brute-force refits with statsmodels as the oracle), and report that model's R²,
+        # adjusted R² and nested-model F (statsmodels compare_f_test).
+        rng = np.random.default_rng(1357924680)
+        n = 45
+        X = pd.DataFrame(rng.normal(size=(n, 6)), columns=["ph", "depth", "silt", "temp",
+                                                           "salinity", "slope"])
+        X["silt"] = 0.7 * X["depth"] + 0.5 * X["silt"]
+        X["slope"] = 0.5 * X["ph"] + 0.8 * X["slope"]
+        y = 1.5 * X["depth"] - 1.0 * X["temp"] + 0.6 * X["ph"] + rng.normal(size=n)
+        sel = forward_selection(y.to_frame("y"), X, n_permutations=199, seed=24680)
+        assert sel.ranking == "sequential"
+        assert {"depth", "temp"} <= set(sel.selected)
+        chosen: list[str] = []
+        for _, step in sel.steps.iterrows():
+            rest = [c for c in X.columns if c not in chosen]
+            best = max(rest, key=lambda c: _ols(y, X[chosen + [c]]).rsquared)
+            assert step["variable"] == best
+            fit = _ols(y, X[chosen + [best]])
+            assert step["r2"] == pytest.approx(fit.rsquared, abs=1e-12)
+            assert step["r2_adj"] == pytest.approx(fit.rsquared_adj, abs=1e-12)
+            if np.isfinite(step["p_value"]):
+                reduced = _ols(y, X[chosen]) if chosen else sm.OLS(y, np.ones(n)).fit()
+                f_value = fit.compare_f_test(reduced)[0]
+                assert step["pseudo_f"] == pytest.approx(f_value, rel=1e-10)
+            if not step["added"]:
+                break
+            chosen.append(best)
+        assert list(sel.selected) == chosen
+        assert sel.r2_adj_global == pytest.approx(_ols(y, X).rsquared_adj, abs=1e-12)
+
+    def test_global_test_gates_everything(self):
+        # Blanchet et al. 2008: no selection unless the global model is significant.
+        U = _orthonormal_frame(40, 10, 192837465)
+        y = np.random.default_rng(31).normal(size=(40, 2))
+        sel = forward_selection(y, U, n_permutations=199, seed=8)
+        assert sel.global_test.p_value > 0.05
+        assert sel.selected == () and len(sel.steps) == 0
+        assert sel.stop_reason.startswith("global test not significant")
+        assert "Selected (0): none" in sel.summary()
+
+    def test_adjusted_r2_ceiling_stops_selection(self):
+        # Second stopping rule (Blanchet et al. 2008): the selected model's adjusted R² never
+        # exceeds the global model's; the candidate that would cross it is listed, not added.
+        rng = np.random.default_rng(20240611)
+        X = pd.DataFrame(rng.normal(size=(40, 6)), columns=list("abcdef"))
+        X["c"] = 0.5 * X["b"] + 0.5 * X["c"]
+        Y = 2 * X[["b"]].to_numpy() + X[["e"]].to_numpy() + rng.normal(size=(40, 1))
+        sel = forward_selection(Y, X, n_permutations=199, seed=1)
+        last = sel.steps.iloc[-1]
+        assert sel.r2_adj <= sel.r2_adj_global
+        assert not last["added"] and last["r2_adj"] > sel.r2_adj_global
+        assert np.isnan(last["p_value"])                     # not tested: the ceiling came first
+        assert sel.stop_reason.startswith("adjusted R² would exceed")
+        free = forward_selection(Y, X, n_permutations=199, seed=1, r2_adj_limit=np.inf)
+        assert len(free.selected) >= len(sel.selected)
+
+    def test_conditioning_gives_partial_statistics(self):
+        # With conditioning C the steps report R²(S + C) − R²(C) and R²adj(S + C) − R²adj(C)
+        # (Peres-Neto et al. 2006, Ecology 87:2614–2625); oracle statsmodels.
+        U = _orthonormal_frame(40, 8, 56473829)
+        rng = np.random.default_rng(74839201)
+        C = pd.DataFrame({"trend": np.linspace(0, 1, 40) + 0.1 * rng.normal(size=40)})
+        y = 3 * U["sv002"] + 2 * C["trend"] + 0.4 * rng.normal(size=40)
+        sel = forward_selection(y.to_frame(), U, conditioning=C, n_permutations=199, seed=3)
+        assert sel.ranking == "sequential"          # the trend is not orthogonal to the vectors
+        assert sel.selected[0] == "sv002"
+        step = sel.steps.iloc[0]
+        both, cond_only = _ols(y, pd.concat([U[["sv002"]], C], axis=1)), _ols(y, C)
+        assert step["r2"] == pytest.approx(both.rsquared - cond_only.rsquared, abs=1e-12)
+        assert step["r2_adj"] == pytest.approx(both.rsquared_adj - cond_only.rsquared_adj,
+                                               abs=1e-12)
+        assert sel.global_test.method == "reduced_residual"
+
+    def test_skip_global_test_and_many_candidates(self):
+        U = _orthonormal_frame(30, 29, 11223344)                # n − 1 candidates: no global model
+        y = 3 * U[["sv005"]].to_numpy() + 0.2 * np.random.default_rng(4).normal(size=(30, 1))
+        with pytest.raises(InputError, match=r"too many to test.*global_test='skip'"):
+            forward_selection(y, U, n_permutations=99, seed=2)
+        sel = forward_selection(y, U, n_permutations=99, seed=2, global_test="skip",
+                                r2_adj_limit=np.inf)
+        assert sel.global_test is None and sel.r2_adj_global is None
+        assert sel.selected[0] == "sv005"
+        assert "Global test skipped" in sel.summary()
+
+    def test_reproducible_labels_and_inputs_untouched(self):
+        U = _orthonormal_frame(36, 12, 99887766)
+        U.index = pd.Index([f"q{i:02d}" for i in range(36)], name="site")
+        Y = pd.DataFrame(np.outer(U["sv003"], [2, 1]) + 0.5 * np.random.default_rng(9)
+                         .normal(size=(36, 2)), index=U.index, columns=["sp_a", "sp_b"])
+        before_u, before_y = U.copy(), Y.copy()
+        a = forward_selection(Y, U, n_permutations=199, seed=424242)
+        b = forward_selection(Y, SimpleNamespace(vectors=U), n_permutations=199, seed=424242)
+        pd.testing.assert_frame_equal(a.steps, b.steps)
+        pd.testing.assert_frame_equal(U, before_u)
+        pd.testing.assert_frame_equal(Y, before_y)
+        assert a.selected[0] == "sv003"
+        assert a.to_frame().equals(a.steps)
+
+    def test_max_variables(self):
+        U = _orthonormal_frame(40, 10, 5647382910)
+        Y = U[["sv001"]].to_numpy() * 5 + U[["sv002"]].to_numpy() * 4 + U[["sv003"]].to_numpy() * 3
+        sel = forward_selection(Y + 0.1 * np.random.default_rng(3).normal(size=(40, 1)), U,
+                                n_permutations=99, seed=5, max_variables=2)
+        assert sel.selected == ("sv001", "sv002")
+        assert sel.stop_reason == "reached max_variables = 2"
+
+    def test_collinear_candidate_is_dropped_with_warning(self):
+        rng = np.random.default_rng(6655443322)
+        X = pd.DataFrame(rng.normal(size=(30, 3)), columns=["a", "b", "c"])
+        C = X[["a"]] * 2.0
+        y = X[["b"]].to_numpy() * 2 + rng.normal(size=(30, 1))
+        with pytest.warns(DroppedVariablesWarning, match=r"\['a'\].*collinear"):
+            sel = forward_selection(y, X, conditioning=C, n_permutations=99, seed=1)
+        assert "a" not in sel.selected
+
+    @pytest.mark.slow
+    @pytest.mark.parametrize("m", [5, 10])
+    def test_type_one_error_with_and_without_global_test(self, m):
+        # Blanchet et al. 2008: under no effect, forward selection with the global test
+        # selects something at rate alpha; without it (and without the R²adj ceiling) at
+        # 1 − (1 − alpha)^m: 0.226 (m = 5), 0.401 (m = 10) [derived]. Counts must fall inside the
+        # binomial 99% interval (scipy.stats.binom).
+        reps, alpha, n = 500, 0.05, 40
+        rng = np.random.default_rng(314159 + m)
+        hit_global = hit_skip = 0
+        for _ in range(reps):
+            U = _orthonormal_frame(n, m, int(rng.integers(2**32)))
+            y = rng.normal(size=(n, 1))
+            seed = int(rng.integers(2**32))
+            with_test = forward_selection(y, U, n_permutations=99, seed=seed)
+            without = forward_selection(y, U, n_permutations=99, seed=seed, global_test="skip",
+                                        r2_adj_limit=np.inf, max_variables=1)
+            hit_global += bool(with_test.selected)
+            hit_skip += bool(without.selected)
+        low, high = stats.binom.interval(0.99, reps, alpha)
+        assert low <= hit_global <= high
+        expected = 1 - (1 - alpha) ** m
+        low, high = stats.binom.interval(0.99, reps, expected)
+        assert low <= hit_skip <= high
+
+
+class TestForwardSelectionValidation:
+    def setup_method(self):
+        rng = np.random.default_rng(1928374650)
+        self.Y = rng.normal(size=(20, 2))
+        self.X = pd.DataFrame(rng.normal(size=(20, 3)), columns=["a", "b", "c"])
+
+    def test_alpha(self):
+        with pytest.raises(InputError, match=r"`alpha` must be > 0 and <= 1; got 0.0"):
+            forward_selection(self.Y, self.X, alpha=0.0)
+
+    def test_global_test_option(self):
+        with pytest.raises(InputError, match=r"`global_test` must be one of 'required', 'skip'"):
+            forward_selection(self.Y, self.X, global_test="off")
+
+    def test_duplicate_names(self):
+        X = self.X.set_axis(["a", "a", "c"], axis=1)
+        with pytest.raises(InputError, match=r"column names must be unique; 'a' occurs 2 times"):
+            forward_selection(self.Y, X)
+
+    def test_rows(self):
+        with pytest.raises(InputError, match=r"`candidates` has 19 rows but `Y` has 20"):
+            forward_selection(self.Y, self.X.iloc[:19])
+
+    def test_constant_response(self):
+        with pytest.raises(InputError, match=r"`Y` has no variation"):
+            forward_selection(np.ones((20, 1)), self.X, n_permutations=9)
+
+    def test_permutations_and_limits(self):
+        with pytest.raises(InputError, match=r"`n_permutations` must be >= 1; got 0"):
+            forward_selection(self.Y, self.X, n_permutations=0)
+        with pytest.raises(InputError, match=r"`r2_adj_limit` must be <= 1; got 2.0"):
+            forward_selection(self.Y, self.X, r2_adj_limit=2.0)
+        with pytest.raises(InputError, match=r"`max_variables` must be >= 1; got 0"):
+            forward_selection(self.Y, self.X, max_variables=0)
+
+
+class TestSidakLevel:
+    @pytest.mark.parametrize("k, expected", [(1, 0.05), (2, 0.025321), (5, 0.010206),
+                                             (10, 0.005116)])
+    def test_check_values(self, k, expected):
+        # Šidák correction for choosing a weighting scheme among k (Bauman, Drouet, Fortin &
+        # Dray 2018, Ecology 99:2159–2166); values of REFERENCES.md [derived].
+        assert sidak_level(0.05, k) == pytest.approx(expected, abs=5e-7)
+
+    def test_validation(self):
+        with pytest.raises(InputError, match=r"`n_tests` must be >= 1; got 0"):
+            sidak_level(0.05, 0)
+        with pytest.raises(InputError, match=r"`alpha` must be > 0 and < 1; got 1.0"):
+            sidak_level(1.0, 3)
+
+
+def _broad_scale_survey(n: int, seed: int, signal: float):
+    rng = np.random.default_rng(seed)
+    xy = pd.DataFrame(rng.uniform(0, 1000, size=(n, 2)), columns=["x", "y"],
+                      index=pd.Index([f"st{i:03d}" for i in range(n)], name="station"))
+    wave = np.sin(xy["x"].to_numpy() / 180) + np.cos(xy["y"].to_numpy() / 240)
+    Y = pd.DataFrame(signal * np.outer(wave, [1.0, -0.5, 0.8]) + rng.normal(size=(n, 3)),
+                     index=xy.index, columns=["sp1", "sp2", "sp3"])
+    return xy, Y
+
+
+class TestCompareWeightingSchemes:
+    SCHEMES = ["gabriel/binary", "relative_neighbourhood/linear", "distance"]
+
+    def test_best_scheme_and_corrected_level(self):
+        xy, Y = _broad_scale_survey(50, 1029384756, signal=1.5)
+        out = compare_weighting_schemes(Y, xy, schemes=self.SCHEMES, n_permutations=199,
+                                        seed=777)
+        assert isinstance(out, WeightingComparison)
+        # Bauman et al. 2018: each global test judged at α' = 1 − (1 − α)^(1/k) [derived]
+        assert out.alpha_corrected == pytest.approx(1 - 0.95 ** (1 / 3), rel=1e-12)
+        table = out.table
+        assert list(table.index) == self.SCHEMES
+        assert (table["significant"] == (table["global_p"] <= out.alpha_corrected)).all()
+        assert np.allclose(table["global_p_sidak"], 1 - (1 - table["global_p"]) ** 3)
+        significant = table[table["significant"]]
+        assert out.best == significant["r2_adj"].idxmax()
+        assert table.loc[out.best, "chosen"] and table["chosen"].sum() == 1
+        assert set(out.selection.selected) <= set(out.basis.vectors.columns)
+        assert out.selection.r2_adj == pytest.approx(table.loc[out.best, "r2_adj"])
+        assert (table["n_vectors"] > 0).all()
+        again = compare_weighting_schemes(Y, xy, schemes=self.SCHEMES, n_permutations=199,
+                                          seed=777)
+        pd.testing.assert_frame_equal(again.table, out.table)
+        assert "Chosen:" in out.summary()
+
+    def test_default_schemes(self):
+        assert len(DEFAULT_SCHEMES) == 11 and DEFAULT_SCHEMES[-1] == "distance"
+        assert "gabriel/linear" in DEFAULT_SCHEMES
+
+    def test_no_structure_gives_no_best(self):
+        xy, Y = _broad_scale_survey(40, 5647382910, signal=0.0)
+        out = compare_weighting_schemes(Y, xy, schemes=self.SCHEMES[:2], n_permutations=199,
+                                        seed=4321)
+        assert (out.table["global_p"] > out.alpha_corrected).all()
+        assert out.best is None and out.selection is None
+        assert "no spatial structure was detected" in out.summary()
+
+    @pytest.mark.slow
+    def test_family_wise_error_under_null(self):
+        # Bauman et al. 2018: with the Šidák correction, choosing among k schemes keeps the
+        # family-wise type I error at or below alpha (tests are positively dependent). Count of
+        # false detections must not exceed the binomial 99% upper bound around alpha.
+        reps, alpha = 150, 0.05
+        rng = np.random.default_rng(8080808080)
+        hits = 0
+        for _ in range(reps):
+            xy = rng.uniform(0, 1000, size=(30, 2))
+            y = rng.normal(size=(30, 1))
+            out = compare_weighting_schemes(y, xy, schemes=self.SCHEMES, n_permutations=99,
+                                            seed=int(rng.integers(2**32)))
+            hits += out.best is not None
+        assert hits <= stats.binom.interval(0.99, reps, alpha)[1]
+
+
+class TestCompareWeightingSchemesValidation:
+    def setup_method(self):
+        self.xy, self.Y = _broad_scale_survey(25, 1234, signal=1.0)
+
+    def test_scheme_strings(self):
+        with pytest.raises(InputError, match=r"entry 'gabriel' is not 'distance' or"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=["gabriel"])
+        with pytest.raises(InputError, match=r"entry 'gabrial/binary': graph must be one of"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=["gabrial/binary"])
+        with pytest.raises(InputError, match=r"exponent 'x' is not a number"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=["gabriel/concave_down:x"])
+        with pytest.raises(InputError, match=r"lists a scheme twice"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=["distance", "distance"])
+        with pytest.raises(InputError, match=r"`schemes` is empty"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=[])
+        with pytest.raises(InputError, match=r"`schemes` must be a list"):
+            compare_weighting_schemes(self.Y, self.xy, schemes="distance")
+
+    def test_too_few_permutations_for_corrected_level(self):
+        with pytest.raises(InputError, match=r"n_permutations = 99 cannot reach the corrected "
+                                             r"level 0.004652 for 11 schemes.*at least 214"):
+            compare_weighting_schemes(self.Y, self.xy, n_permutations=99)
+
+    def test_site_count_mismatch(self):
+        with pytest.raises(InputError, match=r"`coords` has 25 sites but `Y` has 24 rows"):
+            compare_weighting_schemes(self.Y.iloc[:24], self.xy, schemes=["distance"],
+                                      n_permutations=99)
+
+    def test_site_order_mismatch(self):
+        shuffled = self.Y.iloc[::-1]
+        with pytest.raises(InputError, match=r"`coords` rows are not the sites of `Y`.*reindex"):
+            compare_weighting_schemes(shuffled, self.xy, schemes=["distance"], n_permutations=99)

@@ -143,8 +143,9 @@ def generate_demo_survey() -> DemoSurvey:
 
     X = predictors.to_numpy()
     W = np.column_stack([fields[f] for f in ("shore", "estuary", "broad", "fine")])
-    reps = np.array([_partition(_hellinger(_draw_counts(eta, noise_rng)), X, W)
-                     for _ in range(p["n_replicates"])])
+    replicate_counts = _draw_counts(np.broadcast_to(eta, (p["n_replicates"],) + eta.shape),
+                                    noise_rng)
+    reps = _partition(_hellinger(replicate_counts), X, W)
     realised = _partition(_hellinger(counts), X, W)
     names = ["environment_only", "shared", "space_only", "unexplained"]
 
@@ -286,20 +287,27 @@ def _draw_counts(eta: np.ndarray, rng: np.random.Generator) -> np.ndarray:
 
 
 def _hellinger(counts: np.ndarray) -> np.ndarray:
-    total = counts.sum(axis=1, keepdims=True)
+    """Hellinger profiles of (..., sites, taxa) counts (Legendre & Gallagher 2001)."""
+    total = counts.sum(axis=-1, keepdims=True)
     return np.sqrt(counts / np.where(total > 0, total, 1))
 
 
-def _r2_adj(Y: np.ndarray, X: np.ndarray) -> float:
-    n = Y.shape[0]
+def _r2_adj(Y: np.ndarray, X: np.ndarray) -> np.ndarray:
+    """Adjusted R² of the multivariate regression of Y (..., n, p) on X (n, m), pooled over
+    the responses (total sum of squares), one value per leading index of Y."""
+    n = X.shape[0]
     Xc = X - X.mean(axis=0)
-    Yc = Y - Y.mean(axis=0)
-    coef, _, rank, _ = np.linalg.lstsq(Xc, Yc, rcond=None)
-    r2 = 1.0 - ((Yc - Xc @ coef) ** 2).sum() / (Yc ** 2).sum()
+    U, sv, _ = np.linalg.svd(Xc, full_matrices=False)
+    rank = int((sv > sv[0] * n * np.finfo(float).eps).sum())
+    U = U[:, :rank]
+    Yc = Y - Y.mean(axis=-2, keepdims=True)
+    fitted = np.einsum("ik,...kj->...ij", U, np.einsum("ik,...ij->...kj", U, Yc))
+    r2 = (fitted ** 2).sum(axis=(-2, -1)) / (Yc ** 2).sum(axis=(-2, -1))
     return 1.0 - (1.0 - r2) * (n - 1) / (n - rank - 1)
 
 
-def _partition(Y: np.ndarray, X: np.ndarray, W: np.ndarray) -> tuple[float, ...]:
-    """Fractions [a], [b], [c], [d] (Borcard, Legendre & Drapeau 1992, Ecology 73:1045–1055)."""
+def _partition(Y: np.ndarray, X: np.ndarray, W: np.ndarray) -> np.ndarray:
+    """Fractions [a], [b], [c], [d] (Borcard, Legendre & Drapeau 1992, Ecology 73:1045–1055)
+    for Y (..., n, p); returns (..., 4)."""
     rx, rw, rxw = _r2_adj(Y, X), _r2_adj(Y, W), _r2_adj(Y, np.column_stack([X, W]))
-    return rxw - rw, rx + rw - rxw, rxw - rx, 1.0 - rxw
+    return np.stack([rxw - rw, rx + rw - rxw, rxw - rx, 1.0 - rxw], axis=-1)

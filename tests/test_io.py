@@ -1,0 +1,118 @@
+"""Tests of spatial_ev.io: CSV quirks, GIS layers and numeric parsing."""
+
+from __future__ import annotations
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pytest
+import shapely
+
+from spatial_ev import errors
+from spatial_ev.io import file_format, parse_numeric, read_csv_table, read_vector
+
+
+class TestFileFormat:
+    def test_kinds(self, tmp_path):
+        for name, kind in [("a.csv", "csv"), ("a.TSV", "csv"), ("a.gpkg", "gis"),
+                           ("a.geojson", "gis"), ("a.shp", "gis")]:
+            (tmp_path / name).write_text("x")
+            assert file_format(tmp_path / name, role="sites") == kind
+
+    def test_missing_folder_unknown(self, tmp_path):
+        with pytest.raises(errors.InputError, match=r"sites file .*b\.csv' does not exist"):
+            file_format(tmp_path / "b.csv", role="sites")
+        with pytest.raises(errors.InputError, match="is a folder"):
+            file_format(tmp_path, role="sites")
+        (tmp_path / "a.dat").write_text("x")
+        with pytest.raises(errors.InputError, match=r"unknown format '\.dat'; supported: "):
+            file_format(tmp_path / "a.dat", role="species")
+
+
+class TestReadCsvTable:
+    def _read(self, tmp_path, content, **kw):
+        path = tmp_path / "t.csv"
+        (path.write_bytes if isinstance(content, bytes) else path.write_text)(content)
+        return read_csv_table(path, role="species", **kw)
+
+    def test_text_cells_stripped(self, tmp_path):
+        t = self._read(tmp_path, 'site, A ,B\n s1 ," 3 ",4\ns2,5,6\n')
+        assert list(t.columns) == ["site", "A", "B"]
+        assert t["A"].tolist() == ["3", "5"] and t["site"].tolist() == ["s1", "s2"]
+
+    def test_utf8_bom_and_utf16(self, tmp_path):
+        assert list(self._read(tmp_path, "\ufeffsite,A\ns1,1\n").columns) == ["site", "A"]
+        t = self._read(tmp_path, "site,Å\ns1,1\n".encode("utf-16"))
+        assert list(t.columns) == ["site", "Å"]
+
+    def test_not_utf8(self, tmp_path):
+        with pytest.raises(errors.InputError, match=r"not UTF-8 text \(byte 0xe9 on line 2\)"):
+            self._read(tmp_path, "site,A\ncaf\xe9,1\n".encode("latin-1"))
+
+    def test_empty_and_header_only(self, tmp_path):
+        with pytest.raises(errors.InputError, match="is empty"):
+            self._read(tmp_path, "\n  \n")
+        with pytest.raises(errors.InputError, match="has a header but no data rows"):
+            self._read(tmp_path, "site,A,B\n")
+
+    def test_row_names_export_gets_site_column(self, tmp_path):
+        assert list(self._read(tmp_path, ",A\ns1,1\n").columns) == ["site", "A"]
+
+    def test_unnamed_and_duplicated_columns(self, tmp_path):
+        with pytest.raises(errors.InputError, match=r"column\(s\) \[3\] have no name"):
+            self._read(tmp_path, "site,A,,B\ns1,1,2,3\n")
+        with pytest.raises(errors.InputError, match=r"column name\(s\) \['A'\] appear more "
+                                                    r"than once"):
+            self._read(tmp_path, "site,A,B,A\ns1,1,2,3\n")
+
+    def test_ragged_rows(self, tmp_path):
+        with pytest.raises(errors.InputError, match=r"cannot be read as CSV with delimiter ','"):
+            self._read(tmp_path, "site,A\ns1,1\ns2,1,5,6\n")
+
+    def test_delimiter_suggestion(self, tmp_path):
+        with pytest.raises(errors.InputError, match=r"pass delimiter='\\t' \(command line: "
+                                                    r"--delimiter 'tab'\)"):
+            self._read(tmp_path, "site\tA\ns1\t1\n")
+
+    def test_bad_options(self, tmp_path):
+        with pytest.raises(errors.InputError, match="both ','"):
+            self._read(tmp_path, "site;A\ns1;1,5\n", decimal=",", delimiter=",")
+        with pytest.raises(errors.InputError, match="one character"):
+            self._read(tmp_path, "site;A\n", delimiter=";;")
+
+
+class TestParseNumeric:
+    def test_values(self):
+        nums, missing, bad = parse_numeric(pd.Series(["1", " 2.5", "1e3", "NA", "", "x", "inf"]))
+        np.testing.assert_array_equal(nums[[0, 1, 2, 6]], [1.0, 2.5, 1000.0, np.inf])
+        assert missing.tolist() == [False, False, False, True, True, False, False]
+        assert bad.tolist() == [False, False, False, False, False, True, False]
+
+    def test_decimal_comma(self):
+        nums, missing, bad = parse_numeric(pd.Series(["1,5", "2", "1.5"]), decimal=",")
+        assert nums[0] == 1.5 and nums[1] == 2.0 and bad.tolist() == [False, False, True]
+
+    def test_numeric_dtype_passes_through(self):
+        nums, missing, bad = parse_numeric(pd.Series([1.0, np.nan]))
+        assert missing.tolist() == [False, True] and not bad.any()
+
+
+class TestReadVector:
+    def test_layers(self, tmp_path):
+        gdf = gpd.GeoDataFrame({"site": ["a"]}, geometry=[shapely.Point(0, 0)], crs=32630)
+        path = tmp_path / "m.gpkg"
+        gdf.to_file(path, layer="cores")
+        gdf.to_file(path, layer="transect")
+        with pytest.raises(errors.InputError, match=r"has 2 layers \(cores, transect\); choose "
+                                                    r"one with layer="):
+            read_vector(path, role="sites")
+        with pytest.raises(errors.InputError, match="has no layer 'plots'"):
+            read_vector(path, role="sites", layer="plots")
+        assert read_vector(path, role="sites", layer="transect").crs.to_epsg() == 32630
+
+    def test_corrupt_file(self, tmp_path):
+        path = tmp_path / "bad.gpkg"
+        path.write_bytes(b"this is not a geopackage")
+        with pytest.raises(errors.InputError, match=r"sites file .*bad\.gpkg' cannot be read as "
+                                                    r"a GIS file"):
+            read_vector(path, role="sites")

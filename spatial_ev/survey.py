@@ -342,6 +342,9 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
     """
     opts = _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinates)
     opts["delimiter"] = delimiter
+    for role, path in (("sites", sites), ("species", species), ("environment", environment)):
+        if path is not None:
+            file_format(path, role=role)  # every file exists and has a known format
     site_table = _read_site_table(sites, site_id, x, y, layer, opts)
     tables, sources = {}, {"sites": str(sites)}
     for role, path in (("species", species), ("environment", environment)):

@@ -177,15 +177,18 @@ def forward_selection(
     (spatial eigenvectors), each one's contribution is ‖Yᵀu‖²/SS and never changes, so they
     are ranked once. Otherwise the remaining candidates are orthogonalised against each entry
     (one rank-one update per step) and their contributions recomputed in one matrix product.
-    Each entry is tested by a partial permutation test with reduced-model residual permutation
+    The adjusted-R² ceiling is applied as published: a candidate that would lift the selected
+    model above the global model's adjusted R² is not added, even the first one (then nothing is
+    selected although the global test was significant; ``stop_reason`` says so). Each entry is
+    tested by a partial permutation test with reduced-model residual permutation
     (Freedman & Lane 1983). Selected models are optimistic: a p-value of a variable after
     selection is not a valid test of that variable.
 
     Examples
     --------
-    >>> rng = np.random.default_rng(20240611)
+    >>> rng = np.random.default_rng(3)
     >>> X = pd.DataFrame(rng.normal(size=(40, 4)), columns=["a", "b", "c", "d"])
-    >>> Y = 2 * X[["b"]].to_numpy() + rng.normal(size=(40, 1))
+    >>> Y = X[["b"]].to_numpy() + rng.normal(size=(40, 1))
     >>> forward_selection(Y, X, n_permutations=199, seed=1).selected
     ('b',)
     """
@@ -317,6 +320,11 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
             rows.append(row)
             reason = "adjusted R² would exceed the limit (global model's adjusted R²)" \
                 if r2_adj_limit is None else "adjusted R² would exceed r2_adj_limit"
+            if not chosen:
+                reason += ("; the first candidate alone exceeds it, so under the published "
+                           "rule nothing is selected: the global model is diluted by weak "
+                           "candidates (offer fewer candidates, or pass r2_adj_limit=numpy.inf "
+                           "to rely on the p-value rule alone)")
             break
         if progress is not None:
             progress(f"step {len(chosen) + 1}: testing {names[j]}")

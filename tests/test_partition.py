@@ -141,6 +141,15 @@ class TestPartitionVariation:
         again = partition_variation(Y, {"X": X, "W": Wm}, n_permutations=199, seed=77)
         pd.testing.assert_frame_equal(again.fractions, part.fractions)
 
+    def test_same_result_on_dask_engine(self):
+        rng = np.random.default_rng(4455667788)
+        X, Wm = rng.normal(size=(30, 2)), rng.normal(size=(30, 2))
+        Y = X @ rng.normal(size=(2, 3)) + rng.normal(size=(30, 3))
+        local = partition_variation(Y, {"X": X, "W": Wm}, n_permutations=199, seed=5)
+        remote = partition_variation(Y, {"X": X, "W": Wm}, n_permutations=199, seed=5,
+                                     engine="dask")
+        pd.testing.assert_frame_equal(local.fractions, remote.fractions)
+
     def test_labels_inputs_and_summary(self):
         rng = np.random.default_rng(99887766)
         sites = pd.Index([f"site{i}" for i in range(25)], name="site")
@@ -163,7 +172,7 @@ class TestPartitionVariation:
         # Peres-Neto et al. 2006 (Ecology 87:2614–2625): adjusted-R² fractions are unbiased;
         # raw R² is not (its mean under the null is m/(n − 1), Ezekiel 1930 [derived]).
         rng = np.random.default_rng(246813579)
-        n, reps = 30, 2000
+        n, reps = 30, 1200
         raw, adj = np.empty(reps), np.empty((reps, 3))
         for r in range(reps):
             X, Wm = rng.normal(size=(n, 3)), rng.normal(size=(n, 4))
@@ -182,7 +191,7 @@ class TestPartitionVariation:
         # residual permutation (Freedman & Lane 1983; Anderson & Legendre 1999) should reject at
         # rate alpha; accept counts inside the binomial 99% interval (scipy.stats.binom).
         rng = np.random.default_rng(135792468)
-        n, reps, alpha = 30, 1000, 0.05
+        n, reps, alpha = 30, 600, 0.05
         p = np.empty(reps)
         for r in range(reps):
             Wm = rng.normal(size=(n, 2))

@@ -105,6 +105,20 @@ class TestForwardSelection:
         free = forward_selection(Y, X, n_permutations=199, seed=1, r2_adj_limit=np.inf)
         assert len(free.selected) >= len(sel.selected)
 
+    def test_ceiling_can_stop_at_the_first_candidate(self):
+        # Published rule (Blanchet et al. 2008) applied literally: one real variable among weak
+        # ones can alone exceed the diluted global adjusted R²; nothing is selected and the stop
+        # reason explains it.
+        rng = np.random.default_rng(20240611)
+        X = pd.DataFrame(rng.normal(size=(40, 4)), columns=["a", "b", "c", "d"])
+        Y = 2 * X[["b"]].to_numpy() + rng.normal(size=(40, 1))
+        sel = forward_selection(Y, X, n_permutations=199, seed=1)
+        assert sel.global_test.p_value <= 0.05 and sel.selected == ()
+        assert sel.steps.iloc[0]["variable"] == "b"
+        assert "first candidate alone exceeds it" in sel.stop_reason
+        relaxed = forward_selection(Y, X, n_permutations=199, seed=1, r2_adj_limit=np.inf)
+        assert relaxed.selected[0] == "b"
+
     def test_conditioning_gives_partial_statistics(self):
         # With conditioning C the steps report R²(S + C) − R²(C) and R²adj(S + C) − R²adj(C)
         # (Peres-Neto et al. 2006, Ecology 87:2614–2625); oracle statsmodels.
@@ -146,6 +160,16 @@ class TestForwardSelection:
         pd.testing.assert_frame_equal(Y, before_y)
         assert a.selected[0] == "sv003"
         assert a.to_frame().equals(a.steps)
+
+    def test_same_result_on_dask_engine(self):
+        # One seed, same p-values whatever the engine (project contract, DESIGN.md).
+        rng = np.random.default_rng(3)
+        X = pd.DataFrame(rng.normal(size=(40, 4)), columns=["a", "b", "c", "d"])
+        Y = X[["b"]].to_numpy() + rng.normal(size=(40, 1))
+        local = forward_selection(Y, X, n_permutations=199, seed=1)
+        remote = forward_selection(Y, X, n_permutations=199, seed=1, engine="dask")
+        pd.testing.assert_frame_equal(local.steps, remote.steps)
+        assert local.global_test.p_value == remote.global_test.p_value
 
     def test_max_variables(self):
         U = _orthonormal_frame(40, 10, 5647382910)

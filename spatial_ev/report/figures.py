@@ -26,6 +26,7 @@ from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 from matplotlib.transforms import blended_transform_factory
 
 from ..errors import InputError
+from . import _checks as ck
 from . import _style as st
 
 __all__ = ["save_figure", "partition_figure", "scalogram_figure", "triplot_figure",
@@ -47,66 +48,6 @@ def unit_symbol(distance_unit: str | None) -> str:
     if distance_unit is None or not str(distance_unit).strip():
         return "map units"
     return _UNIT_SYMBOLS.get(str(distance_unit).strip().lower(), str(distance_unit))
-
-
-# ----------------------------------------------------------------------------- validation
-
-def _check_frame(name: str, frame: object, required: Sequence[str]) -> pd.DataFrame:
-    if not isinstance(frame, pd.DataFrame):
-        raise InputError(f"`{name}` must be a pandas DataFrame with columns "
-                         f"{', '.join(required)}; got {type(frame).__name__}")
-    missing = [c for c in required if c not in frame.columns]
-    if missing:
-        raise InputError(f"`{name}` lacks column(s) {', '.join(map(repr, missing))}; it has "
-                         f"{', '.join(map(repr, map(str, frame.columns)))}")
-    if len(frame) == 0:
-        raise InputError(f"`{name}` has no rows; nothing to draw")
-    return frame
-
-
-def _check_numeric(name: str, values: object, *, finite: bool = True) -> np.ndarray:
-    try:
-        arr = np.asarray(values, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise InputError(f"`{name}` must be numeric; got {values!r}") from None
-    if finite and not np.isfinite(arr).all():
-        bad = int(np.flatnonzero(~np.isfinite(arr.ravel()))[0])
-        raise InputError(f"`{name}` has a missing or infinite value at position {bad}; "
-                         f"drop or fill it before drawing")
-    return arr
-
-
-def _check_p(value: object) -> float | None:
-    if value is None or (isinstance(value, float) and np.isnan(value)) or value is pd.NA:
-        return None
-    p = float(value)  # type: ignore[arg-type]
-    if not 0.0 < p <= 1.0:
-        raise InputError(f"p-values must lie in (0, 1]; got {p!r}")
-    return p
-
-
-def _check_series_pair(a_name: str, a: object, b_name: str, b: object) -> tuple[pd.Series,
-                                                                                pd.Series]:
-    for nm, s in ((a_name, a), (b_name, b)):
-        if not isinstance(s, pd.Series):
-            raise InputError(f"`{nm}` must be a pandas Series indexed by vector name; "
-                             f"got {type(s).__name__}")
-    missing = [k for k in a.index if k not in b.index]  # type: ignore[union-attr]
-    if missing:
-        raise InputError(f"`{b_name}` has no value for vector(s) {missing[:5]}; both series "
-                         f"must be indexed by the same vector names")
-    a = pd.Series(_check_numeric(a_name, a), index=a.index)  # type: ignore[union-attr]
-    b = pd.Series(_check_numeric(b_name, b.loc[a.index]), index=a.index)  # type: ignore
-    return a, b
-
-
-def _check_selected(selected: Iterable[str], index: pd.Index, name: str) -> list:
-    selected = list(selected)
-    unknown = [s for s in selected if s not in index]
-    if unknown:
-        raise InputError(f"`{name}` names vector(s) {unknown[:5]} that are not in the data; "
-                         f"known names start {list(index[:5])}")
-    return selected
 
 
 def _log_axis(axis, lo: float, hi: float) -> None:
@@ -172,8 +113,8 @@ def save_figure(fig: Figure, folder: str | os.PathLike, stem: str, *,
 # ----------------------------------------------------------------------------- partition
 
 def _check_fractions(fractions: object) -> tuple[pd.DataFrame, list[str] | None]:
-    frame = _check_frame("fractions", fractions, ("name", "r2_adj", "testable", "p"))
-    values = _check_numeric("fractions['r2_adj']", frame["r2_adj"])
+    frame = ck.check_frame("fractions", fractions, ("name", "r2_adj", "testable", "p"))
+    values = ck.check_numeric("fractions['r2_adj']", frame["r2_adj"])
     if np.any(np.abs(values) > 1.0 + 1e-9):
         raise InputError("`fractions['r2_adj']` must be proportions of total variation "
                          f"(between -1 and 1); got {values.tolist()}")
@@ -181,7 +122,7 @@ def _check_fractions(fractions: object) -> tuple[pd.DataFrame, list[str] | None]
     for i, (name, v, testable, p) in enumerate(zip(frame["name"], values, frame["testable"],
                                                    frame["p"])):
         rows.append({"name": str(name), "r2_adj": float(v), "testable": bool(testable),
-                     "p": _check_p(p)})
+                     "p": ck.check_p(p)})
     clean = pd.DataFrame(rows)
     groups = None
     if "members" in frame.columns:
@@ -329,9 +270,9 @@ def partition_figure(fractions: pd.DataFrame, *, alpha: float = 0.05,
 def _check_classes(classes: object) -> pd.DataFrame | None:
     if classes is None:
         return None
-    frame = _check_frame("classes", classes, ("name", "low", "high"))
-    low = _check_numeric("classes['low']", frame["low"])
-    high = _check_numeric("classes['high']", frame["high"])
+    frame = ck.check_frame("classes", classes, ("name", "low", "high"))
+    low = ck.check_numeric("classes['low']", frame["low"])
+    high = ck.check_numeric("classes['high']", frame["high"])
     if np.any(low <= 0) or np.any(high <= low):
         raise InputError("`classes` need 0 < low < high in map units for every class; got "
                          f"low={low.tolist()}, high={high.tolist()}")
@@ -369,13 +310,13 @@ def scalogram_figure(r2: pd.Series, scale: pd.Series, *, selected: Iterable[str]
     >>> fig.axes[0].get_xscale()
     'log'
     """
-    r2, scale = _check_series_pair("r2", r2, "scale", scale)
+    r2, scale = ck.check_series_pair("r2", r2, "scale", scale)
     if (r2 < -1e-12).any():
         raise InputError(f"`r2` must be ≥ 0; vector {r2.idxmin()!r} has {r2.min()!r}")
     if (scale <= 0).any():
         raise InputError(f"`scale` must be > 0 map units; vector {scale.idxmin()!r} has "
                          f"{scale.min()!r}")
-    sel = _check_selected(selected, r2.index, "selected")
+    sel = ck.check_selected(selected, r2.index, "selected")
     bands = _check_classes(classes)
     fig = Figure(figsize=(8.0, 3.6), layout="constrained")
     ax = fig.add_subplot()
@@ -430,7 +371,7 @@ def _check_scores(name: str, frame: object, axes: Sequence[int], columns: pd.Ind
                          f"`site_scores` {list(columns)}")
     if frame.shape[1] <= max(axes):
         raise InputError(f"`{name}` has {frame.shape[1]} axes; axes {tuple(axes)} requested")
-    _check_numeric(name, frame.iloc[:, list(axes)])
+    ck.check_numeric(name, frame.iloc[:, list(axes)])
     return frame
 
 
@@ -493,7 +434,7 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     missing = [a for a in names if a not in eigenvalues.index]
     if missing:
         raise InputError(f"`eigenvalues` has no value for axis {missing[0]!r}")
-    lam = _check_numeric("eigenvalues", eigenvalues)
+    lam = ck.check_numeric("eigenvalues", eigenvalues)
     if total_variance is None:
         denom, what = float(lam.sum()), "of the axes shown"
     else:
@@ -581,9 +522,9 @@ def weighting_figure(table: pd.DataFrame, *, alpha: float = 0.05,
     >>> [l.get_xdata()[0] for l in fig.axes[1].lines if l.get_gid() == "corrected-level"]
     [0.025321]
     """
-    frame = _check_frame("table", table, ("scheme", "r2_adj", "p"))
-    r2 = _check_numeric("table['r2_adj']", frame["r2_adj"])
-    p = np.array([_check_p(v) for v in frame["p"]], dtype=float)
+    frame = ck.check_frame("table", table, ("scheme", "r2_adj", "p"))
+    r2 = ck.check_numeric("table['r2_adj']", frame["r2_adj"])
+    p = np.array([ck.check_p(v) for v in frame["p"]], dtype=float)
     if np.isnan(p).any():
         raise InputError("`table['p']` must hold a p-value for every scheme")
     schemes = [str(s) for s in frame["scheme"]]
@@ -652,10 +593,10 @@ def moran_scale_figure(moran_i: pd.Series, scale: pd.Series, *, selected: Iterab
     >>> len(fig.axes)
     1
     """
-    moran_i, scale = _check_series_pair("moran_i", moran_i, "scale", scale)
+    moran_i, scale = ck.check_series_pair("moran_i", moran_i, "scale", scale)
     if (scale <= 0).any():
         raise InputError(f"`scale` must be > 0 map units; got minimum {scale.min()!r}")
-    sel = _check_selected(selected, moran_i.index, "selected")
+    sel = ck.check_selected(selected, moran_i.index, "selected")
     mask = moran_i.index.isin(sel)
     fig = Figure(figsize=(6.0, 3.4), layout="constrained")
     ax = fig.add_subplot()

@@ -238,8 +238,7 @@ def _distance(value: Any, unit: str) -> str:
 
 def _figure_uri(fig: Figure, *, dpi: int = 110) -> str:
     buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=dpi, bbox_inches="tight",
-                metadata={"Software": None})
+    fig.savefig(buffer, format="png", dpi=dpi, metadata={"Software": None})
     return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
 
 
@@ -348,67 +347,76 @@ def _methods_paragraphs(context: Mapping, cite: _Citations, unit: str) -> list[s
     m = context["methods"]
     if m is None:
         return []
-    topics = ("prep", "space", "selection", "fractions", "tests")
-    out: dict[str, list[str]] = {k: [] for k in topics}
+    prep: list[str] = []
+    space: list[str] = []
+    selection: list[str] = []
+    fractions: list[str] = []
+    tests: list[str] = []
     text, refs = _TRANSFORMS.get(m.get("transformation"),
                                  (f"Response transformation: {m.get('transformation')}", []))
-    out["prep"].append(text + cite(*refs) + ".")
-    out["prep"].append(_TRENDS.get(m.get("trend"), f"Trend handling: {m.get('trend')}."))
+    prep.append(text + cite(*refs) + ".")
+    prep.append(_TRENDS.get(m.get("trend"), f"Trend handling: {m.get('trend')}."))
+
     basis = m.get("basis") or {}
     sign = {"positive": "only vectors with positive Moran's I (positive spatial "
                         "autocorrelation) were kept",
             "negative": "only vectors with negative Moran's I were kept",
             "all": "vectors of both signs of Moran's I were kept"}.get(basis.get("sign"), "")
+    sign = f"; {sign}" if sign else ""
+    n_vectors = basis.get("n_vectors", "?")
     if basis.get("family") == "distance":
-        thr = basis.get("threshold")
-        out["space"].append(f"Spatial predictors were {basis.get('n_vectors', '?')} distance-based "
-                   f"spatial eigenvectors (distance-based MEM){cite('Borcard & Legendre 2002', 'Dray et al. 2006')}"  # noqa: E501
-                   f", with distances truncated at {_distance(thr, unit)}"
-                   f"{'; ' + sign if sign else ''}.")
+        refs_text = cite("Borcard & Legendre 2002", "Dray et al. 2006")
+        space.append(f"Spatial predictors were {n_vectors} distance-based spatial eigenvectors "
+                     f"(distance-based MEM){refs_text}, with distances truncated at "
+                     f"{_distance(basis.get('threshold'), unit)}{sign}.")
     elif basis:
-        out["space"].append(f"Spatial predictors were {basis.get('n_vectors', '?')} spatial "
-                   f"eigenvectors (Moran's eigenvector maps, MEM){cite('Dray et al. 2006')} of "
-                   f"a {str(basis.get('method', '?')).replace('_', ' ')} neighbour graph with "
-                   f"{str(basis.get('weighting', '?')).replace('_', ' ')} edge weights"
-                   f"{'; ' + sign if sign else ''}. Moran's I{cite('Moran 1950')} measures "
-                   "each vector's spatial autocorrelation.")
+        graph = str(basis.get("method", "?")).replace("_", " ")
+        weighting = str(basis.get("weighting", "?")).replace("_", " ")
+        space.append(f"Spatial predictors were {n_vectors} spatial eigenvectors (Moran's "
+                     f"eigenvector maps, MEM){cite('Dray et al. 2006')} of a {graph} neighbour "
+                     f"graph with {weighting} edge weights{sign}. Moran's I"
+                     f"{cite('Moran 1950')} measures each vector's spatial autocorrelation.")
     schemes = list(m.get("schemes_compared") or ())
     if len(schemes) > 1:
         corr = m.get("corrected_alpha")
         level = (f"a Šidák-corrected level α′ = {corr:.4g}" if corr is not None
                  else "an uncorrected level")
-        out["space"].append(f"The analysis compared {len(schemes)} candidate spatial weighting schemes "
-                   f"({', '.join(schemes)}); because trying several inflates false positives, "
-                   f"each scheme's global test used {level}"
-                   f"{cite('Bauman et al. 2018a')}. The scheme retained was "
-                   f"{m.get('chosen_scheme', '?')}.")
+        space.append(f"The analysis compared {len(schemes)} candidate spatial weighting "
+                     f"schemes ({', '.join(schemes)}); because trying several inflates false "
+                     f"positives, each scheme's global test used {level}"
+                     f"{cite('Bauman et al. 2018a')}. The scheme retained was "
+                     f"{m.get('chosen_scheme', '?')}.")
+
     sel = m.get("selection")
     text, refs = _SELECTION.get(sel, (f"Selection rule: {sel}", []))
-    out["selection"].append(text.format(alpha=m.get("alpha", 0.05)) + cite(*refs) + ".")
+    selection.append(text.format(alpha=m.get("alpha", 0.05)) + cite(*refs) + ".")
+
     if context.get("partition") is not None:
-        out["fractions"].append("Community variation was divided into fractions measured by adjusted R²"
-                   f"{cite('Borcard et al. 1992', 'Peres-Neto et al. 2006')}; unique fractions "
-                   "were tested by partial redundancy analysis, shared fractions cannot be "
-                   f"tested{cite('Legendre 2008')}.")
+        fractions.append("Community variation was divided into fractions measured by adjusted "
+                         f"R²{cite('Borcard et al. 1992', 'Peres-Neto et al. 2006')}; unique "
+                         "fractions were tested by partial redundancy analysis, shared "
+                         f"fractions cannot be tested{cite('Legendre 2008')}.")
     if context.get("scalogram") is not None:
-        out["fractions"].append("Each spatial vector's share of community variation was placed at its "
-                   "scale, and selected vectors were grouped into scale classes"
-                   f"{cite('Legendre et al. 2012')}.")
+        fractions.append("Each spatial vector's share of community variation was placed at "
+                         "its scale, and selected vectors were grouped into scale classes"
+                         f"{cite('Legendre et al. 2012')}.")
     if context.get("lcbd") is not None:
-        out["fractions"].append("Local contributions to beta diversity (LCBD) were computed from the "
-                   f"transformed table{cite('Legendre & De Cáceres 2013')}.")
+        fractions.append("Local contributions to beta diversity (LCBD) were computed from the "
+                         f"transformed table{cite('Legendre & De Cáceres 2013')}.")
+
     n_perm = m.get("n_permutations")
     if n_perm is not None:
         how = ("of the residuals of the reduced model" + cite("Freedman & Lane 1983")
                if m.get("permutation_method") == "reduced_residual"
                else "of the rows of the response table")
         seed = m.get("seed")
-        out["tests"].append(f"Tests used {int(n_perm):,} random permutations {how}; p-values count "
-                   f"the observed statistic among the permuted ones{cite('Phipson & Smyth 2010')}"
-                   + (f". Random seed: {seed}, so the run can be repeated exactly."
-                      if seed is not None else ". No seed was fixed, so p-values vary "
-                      "slightly between runs."))
-    return [" ".join(v) for v in out.values() if v]
+        repeat = (f" Random seed: {seed}, so the run can be repeated exactly."
+                  if seed is not None else
+                  " No seed was fixed, so p-values vary slightly between runs.")
+        tests.append(f"Tests used {int(n_perm):,} random permutations {how}; p-values count "
+                     "the observed statistic among the permuted ones"
+                     f"{cite('Phipson & Smyth 2010')}.{repeat}")
+    return [" ".join(p) for p in (prep, space, selection, fractions, tests) if p]
 
 
 def _limits_items(context: Mapping, cite: _Citations, unit: str) -> list[str]:

@@ -1,0 +1,139 @@
+"""Headless-Chromium check of the HTML report (spatial_ev.report.browser).
+
+These tests open real pages in Chromium. CI installs it (.ci/run); where it is missing the
+tests fail with the install command rather than skip, because an unchecked report is exactly
+what they exist to prevent.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from spatial_ev.errors import InputError
+from spatial_ev.report.browser import BrowserCheck, find_chromium, inspect_in_browser
+from spatial_ev.report.html import example_context, render_report
+
+pytestmark = pytest.mark.browser
+
+KEYS = ("data", "methods", "partition", "selected_environment", "selected_space", "scalogram",
+        "basis_moran", "weighting", "scale_maps", "lcbd", "triplot", "limits")
+
+
+@pytest.fixture(scope="module")
+def chromium() -> str:
+    try:
+        return find_chromium()
+    except FileNotFoundError as exc:
+        pytest.fail(f"{exc}. The browser tests need Chromium; they do not skip.")
+
+
+@pytest.fixture(scope="module")
+def example_check(chromium, tmp_path_factory) -> BrowserCheck:
+    folder = tmp_path_factory.mktemp("report")
+    page = folder / "report.html"
+    page.write_text(render_report(example_context()), encoding="utf-8")
+    return inspect_in_browser(page)
+
+
+class TestInspectInBrowser:
+    def test_example_report_displays_without_errors(self, example_check):
+        check = example_check
+        assert check.problems() == []
+        assert check.ok
+        assert check.instrumented
+        # partition, scalogram, Moran's I, weighting, 3 scale maps, LCBD, 2 triplots
+        assert check.images_total == 10
+        assert check.images_broken == ()
+        assert check.page_errors == () and check.console_messages == ()
+        assert check.browser_errors == ()
+
+    def test_screenshot_is_a_full_page_and_not_blank(self, example_check):
+        from PIL import Image
+
+        shot = example_check.screenshot
+        assert shot.is_file() and shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        with Image.open(shot) as image:
+            pixels = np.asarray(image.convert("L"), dtype=float)
+        assert pixels.shape[1] == 1280
+        assert pixels.shape[0] == example_check.screenshot_shape[0] >= min(
+            example_check.page_height, 16000) > 3000
+        assert pixels.std() == pytest.approx(example_check.screenshot_std)
+        assert pixels.std() > 10.0
+        # content all the way down, not only a header: every quarter of the page varies
+        for part in np.array_split(pixels, 4):
+            assert part.std() > 5.0
+
+    def test_broken_page_is_reported(self, chromium, tmp_path):
+        page = render_report({"title": "Broken on purpose", **{k: None for k in KEYS}})
+        injected = ('<img src="data:image/png;base64,AAAA" alt="deliberately broken">'
+                    '<script>console.error("deliberate console error");'
+                    'undefinedFunctionCall();</script></body>')
+        path = tmp_path / "broken.html"
+        path.write_text(page.replace("</body>", injected), encoding="utf-8")
+        check = inspect_in_browser(path, screenshot=tmp_path / "broken.png")
+        assert not check.ok
+        assert check.instrumented
+        assert check.images_total == 1
+        assert check.images_broken == ("deliberately broken",)
+        assert "image failed to load: deliberately broken" in check.page_errors
+        assert any("undefinedFunctionCall" in e for e in check.page_errors)
+        assert any("deliberate console error" in m for m in check.console_messages)
+        problems = "\n".join(check.problems())
+        assert "image did not load: deliberately broken" in problems
+
+    def test_validation(self, tmp_path):
+        with pytest.raises(InputError, match="is not an existing file"):
+            inspect_in_browser(tmp_path / "missing.html")
+        (tmp_path / "x.html").write_text("<html></html>")
+        with pytest.raises(InputError, match="`width` must be ≥ 320"):
+            inspect_in_browser(tmp_path / "x.html", width=100)
+
+
+class TestBrowserCheck:
+    def test_blank_screenshot_is_a_problem(self):
+        check = BrowserCheck(html_path=Path("a.html"), screenshot=Path("a.png"),
+                             screenshot_shape=(900, 1280), screenshot_std=0.0, page_height=900,
+                             instrumented=True, images_total=0, images_broken=(),
+                             page_errors=(), console_messages=(), browser_errors=(),
+                             chromium="chromium")
+        assert not check.ok
+        assert check.problems() == ["the screenshot is blank (grey-level spread 0.00)"]
+
+    def test_missing_recorder_is_a_problem(self):
+        check = BrowserCheck(html_path=Path("a.html"), screenshot=Path("a.png"),
+                             screenshot_shape=(900, 1280), screenshot_std=40.0, page_height=0,
+                             instrumented=False, images_total=0, images_broken=(),
+                             page_errors=(), console_messages=(), browser_errors=(),
+                             chromium="chromium")
+        assert not check.ok
+        assert "error recorder did not run" in check.problems()[0]
+
+
+class TestFindChromium:
+    def test_override_must_be_executable(self, monkeypatch, tmp_path):
+        monkeypatch.setenv("SPATIAL_EV_CHROMIUM", str(tmp_path / "nothing"))
+        with pytest.raises(FileNotFoundError, match="not an executable file"):
+            find_chromium()
+
+    def test_finds_installed_browser(self, chromium):
+        assert Path(chromium).exists()
+
+
+class TestStderrFilter:
+    def test_page_lines_kept_startup_noise_ignored(self):
+        from spatial_ev.report.browser import _page_lines
+
+        url = "file:///tmp/report.html"
+        stderr = "\n".join([
+            "/usr/bin/chromium: 9: [: 25275990016: unexpected operator",
+            "[1:2:1202/033429.08:ERROR:dbus/bus.cc:405] Failed to connect to the bus: no socket",
+            "[1:1:1202/033430.13:WARNING:media/gpu/vaapi/vaapi_wrapper.cc:1655] no devices",
+            '[1:1:1202/033435.97:INFO:CONSOLE:3] "boom", source: file:///tmp/report.html (3)',
+            f"[1:1:1202/033435.98:ERROR:net/loader.cc:12] net::ERR_FILE_NOT_FOUND {url}/x.png",
+        ])
+        console, errors = _page_lines(stderr, url)
+        assert console == ['"boom", source: file:///tmp/report.html (3)']
+        assert len(errors) == 1 and "net::ERR_FILE_NOT_FOUND" in errors[0]

@@ -1,0 +1,423 @@
+"""Tests of the report figures (spatial_ev.report.figures) and maps (spatial_ev.report.maps).
+
+The figure functions compute nothing: the tests feed known plain data and check that the
+drawn artists say what the data say (one bar per fraction, negative fractions left of zero,
+the scale-bar length for a known extent, arrows per variable, axis percentages ...).
+"""
+
+from __future__ import annotations
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pytest
+import shapely
+from matplotlib.collections import PathCollection, QuadMesh
+from matplotlib.figure import Figure
+from matplotlib.text import Annotation
+
+from spatial_ev.errors import CRSError, InputError
+from spatial_ev.report import _style as st
+from spatial_ev.report.figures import (moran_scale_figure, partition_figure, save_figure,
+                                       scalogram_figure, triplot_figure, unit_symbol,
+                                       weighting_figure)
+from spatial_ev.report.maps import nice_scale_bar, site_map_figure
+
+SEED = 7_310_442_981
+
+
+def _bars(fig: Figure) -> list:
+    return [p for ax in fig.axes for p in ax.patches if p.get_gid() == "fraction-bar"]
+
+
+def _texts(fig: Figure) -> list[str]:
+    out = [t.get_text() for ax in fig.axes for t in ax.texts]
+    out += [t.get_text() for t in fig.texts]
+    if fig._supxlabel is not None:  # the note under the partition figure
+        out.append(fig._supxlabel.get_text())
+    return out
+
+
+def _collection(fig: Figure, gid: str) -> PathCollection:
+    found = [c for ax in fig.axes for c in ax.collections if c.get_gid() == gid]
+    assert len(found) == 1, f"expected one collection with gid {gid!r}, found {len(found)}"
+    return found[0]
+
+
+def _two_group_table() -> pd.DataFrame:
+    # Two orthogonal groups, n = 20, 2 and 3 variables with R² 0.3 and 0.2 (union 0.5):
+    # [a] = 0.271429, [b] = -0.053782, [c] = 0.103782 (Borcard, Legendre & Drapeau 1992,
+    # Ecology 73:1045-1055 fractions; Ezekiel 1930 adjustment) [derived]; [d] = 1 - 0.321429.
+    return pd.DataFrame({
+        "name": ["[a] environment only", "[b] shared", "[c] space only", "[d] unexplained"],
+        "members": [("environment",), ("environment", "space"), ("space",), ()],
+        "r2_adj": [0.271429, -0.053782, 0.103782, 0.678571],
+        "testable": [True, False, True, False],
+        "p": [0.001, None, 0.2, None]})
+
+
+def _group_table(groups: list[str]) -> pd.DataFrame:
+    """Every non-empty combination of the groups, then the unexplained fraction."""
+    rng = np.random.default_rng(SEED)
+    combos = [tuple(g for k, g in enumerate(groups) if mask >> k & 1)
+              for mask in range(1, 2 ** len(groups))]
+    values = rng.uniform(0.0, 0.05, len(combos))
+    return pd.DataFrame({"name": [" & ".join(c) for c in combos] + ["unexplained"],
+                         "members": combos + [()],
+                         "r2_adj": list(values) + [1 - values.sum()],
+                         "testable": [len(c) == 1 for c in combos] + [False],
+                         "p": [0.01 if len(c) == 1 else None for c in combos] + [None]})
+
+
+class TestUnitSymbol:
+    def test_known_units(self):
+        assert unit_symbol("metre") == "m"
+        assert unit_symbol("US survey foot") == "ft (US)"
+        assert unit_symbol(None) == "map units"
+        assert unit_symbol("furlong") == "furlong"
+
+
+class TestSaveFigure:
+    def test_writes_png_and_svg(self, tmp_path):
+        paths = save_figure(partition_figure(_two_group_table()), tmp_path, "partition")
+        assert paths["png"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        assert "<svg" in paths["svg"].read_text()[:2000]
+
+    def test_bad_stem(self, tmp_path):
+        with pytest.raises(InputError, match="`stem` must contain only letters"):
+            save_figure(Figure(), tmp_path, "../escape")
+
+    def test_missing_folder(self, tmp_path):
+        with pytest.raises(InputError, match="is not an existing folder"):
+            save_figure(Figure(), tmp_path / "nope", "x")
+
+    def test_bad_format(self, tmp_path):
+        with pytest.raises(InputError, match="`formats` entries must be"):
+            save_figure(Figure(), tmp_path, "x", formats=("gif",))
+
+
+class TestPartitionFigure:
+    def test_one_bar_per_fraction_with_values(self):
+        table = _two_group_table()
+        fig = partition_figure(table)
+        bars = _bars(fig)
+        assert len(bars) == 4
+        # bars are drawn top to bottom in table order and their lengths are the fractions
+        assert [b.get_label() for b in bars] == list(table["name"])
+        np.testing.assert_allclose([b.get_width() for b in bars], table["r2_adj"])
+
+    def test_negative_fraction_drawn_left_of_zero_hatched_with_note(self):
+        fig = partition_figure(_two_group_table())
+        shared = _bars(fig)[1]
+        assert shared.get_x() + shared.get_width() < 0 <= shared.get_x()
+        assert shared.get_hatch()
+        assert all(not b.get_hatch() for b in _bars(fig) if b.get_width() > 0)
+        texts = _texts(fig)
+        assert any("negative adjusted R² fractions" in t for t in texts)
+        assert any(t.startswith("-0.054") and "read as 0" in t for t in texts)
+
+    def test_no_negative_note_when_all_positive(self):
+        table = _two_group_table()
+        table.loc[1, "r2_adj"] = 0.01
+        assert not any("negative adjusted" in t for t in _texts(partition_figure(table)))
+
+    def test_significance_marks_and_untestable(self):
+        texts = _texts(partition_figure(_two_group_table(), alpha=0.05))
+        assert any(t.startswith("0.271") and "p = 0.001" in t and t.endswith("*")
+                   for t in texts)
+        assert any(t.startswith("0.104") and "p = 0.200" in t and not t.endswith("*")
+                   for t in texts)
+        assert sum("not testable" in t for t in texts) == 2
+
+    def test_colours_follow_membership(self):
+        bars = _bars(partition_figure(_two_group_table()))
+        hexes = [st.matplotlib.colors.to_hex(b.get_facecolor()) for b in bars]
+        assert hexes[0] == st.GROUP_COLOURS[0] and hexes[2] == st.GROUP_COLOURS[1]
+        assert hexes[3] == st.UNEXPLAINED
+
+    @pytest.mark.parametrize("groups", [["env", "space", "time"],
+                                        ["env", "space", "time", "soil"]])
+    def test_three_and_four_groups(self, groups):
+        table = _group_table(groups)
+        fig = partition_figure(table)
+        assert len(_bars(fig)) == 2 ** len(groups)
+        membership_axes = fig.axes[0]
+        assert [t.get_text() for t in membership_axes.get_xticklabels()] == groups
+
+    def test_without_members_column(self):
+        fig = partition_figure(_two_group_table().drop(columns="members"))
+        assert len(fig.axes) == 1 and len(_bars(fig)) == 4
+
+    def test_validation(self):
+        table = _two_group_table()
+        with pytest.raises(InputError, match="lacks column\\(s\\) 'testable'"):
+            partition_figure(table.drop(columns="testable"))
+        bad = table.copy()
+        bad.loc[0, "r2_adj"] = 1.7
+        with pytest.raises(InputError, match="proportions of total variation"):
+            partition_figure(bad)
+        bad = table.copy()
+        bad["p"] = bad["p"].astype(object)
+        bad.loc[0, "p"] = 1.5
+        with pytest.raises(InputError, match=r"p-values must lie in \(0, 1\]; got 1.5"):
+            partition_figure(bad)
+        with pytest.raises(InputError, match="2 to 4 explanatory groups"):
+            partition_figure(_group_table(list("abcde")))
+        with pytest.raises(InputError, match="must be a pandas DataFrame"):
+            partition_figure([0.1, 0.2])  # type: ignore[arg-type]
+
+
+def _basis(n: int = 30):
+    names = pd.Index([f"sv{i:03d}" for i in range(1, n + 1)])
+    scale = pd.Series(10_000.0 / np.arange(1, n + 1), index=names)
+    r2 = pd.Series(np.linspace(0.05, 0.001, n), index=names)
+    moran = pd.Series(np.linspace(0.95, 0.02, n), index=names)
+    return names, scale, r2, moran
+
+
+class TestScalogramFigure:
+    def test_log_scale_selected_highlighted_and_classes_labelled(self):
+        names, scale, r2, _ = _basis()
+        classes = pd.DataFrame({"name": ["broad", "medium", "fine"],
+                                "low": [2_500.0, 800.0, 300.0],
+                                "high": [12_000.0, 2_500.0, 800.0]})
+        fig = scalogram_figure(r2, scale, selected=["sv001", "sv004", "sv020"],
+                               classes=classes, unit="m")
+        ax = fig.axes[0]
+        assert ax.get_xscale() == "log"
+        offsets = _collection(fig, "selected-vector").get_offsets()
+        np.testing.assert_allclose(offsets[:, 0], scale[["sv001", "sv004", "sv020"]])
+        np.testing.assert_allclose(offsets[:, 1], r2[["sv001", "sv004", "sv020"]])
+        assert len(_collection(fig, "other-vector").get_offsets()) == 27
+        labels = sorted(t.get_text() for t in ax.texts if t.get_gid() == "class-label")
+        assert labels == ["broad", "fine", "medium"]
+        assert "scale (m, logarithmic)" in ax.get_xlabel()
+        lo, hi = ax.get_xlim()
+        assert lo < 300 and hi > 12_000  # the class bands are inside the axis
+
+    def test_validation(self):
+        names, scale, r2, _ = _basis()
+        with pytest.raises(InputError, match="names vector\\(s\\) \\['sv999'\\]"):
+            scalogram_figure(r2, scale, selected=["sv999"])
+        with pytest.raises(InputError, match="`r2` must be ≥ 0; vector 'sv002'"):
+            scalogram_figure(r2.where(r2.index != "sv002", -0.1), scale)
+        with pytest.raises(InputError, match="`scale` has no value for vector"):
+            scalogram_figure(r2, scale.iloc[:-1])
+        with pytest.raises(InputError, match="0 < low < high"):
+            scalogram_figure(r2, scale, classes=pd.DataFrame({"name": ["x"], "low": [5.0],
+                                                              "high": [2.0]}))
+        with pytest.raises(InputError, match="must be a pandas Series"):
+            scalogram_figure(r2.to_numpy(), scale)  # type: ignore[arg-type]
+
+
+def _scores(seed: int = SEED):
+    rng = np.random.default_rng(seed)
+    axes = ["RDA1", "RDA2", "RDA3"]
+    sites = pd.DataFrame(rng.normal(size=(30, 3)), columns=axes)
+    species = pd.DataFrame(rng.normal(size=(12, 3)), columns=axes,
+                           index=[f"sp{i:02d}" for i in range(12)])
+    variables = pd.DataFrame(rng.normal(size=(3, 3)), columns=axes,
+                             index=["moisture", "pH", "cover"])
+    eig = pd.Series([0.30, 0.12, 0.05], index=axes)
+    return sites, species, variables, eig
+
+
+class TestTriplotFigure:
+    def test_arrows_labels_and_axis_percentages(self):
+        sites, species, variables, eig = _scores()
+        fig = triplot_figure(sites, species, variables, eig, scaling=2, total_variance=1.5,
+                             n_labels=4)
+        ax = fig.axes[0]
+        arrows = [c for c in ax.get_children()
+                  if isinstance(c, Annotation) and c.get_gid() == "variable-arrow"]
+        assert len(arrows) == 3
+        labelled = [t.get_text() for t in ax.texts if t.get_gid() == "species-label"]
+        norms = np.hypot(species["RDA1"], species["RDA2"])
+        assert sorted(labelled) == sorted(norms.nlargest(4).index)
+        # 0.30 / 1.5 = 20 %, 0.12 / 1.5 = 8 % of total variation
+        assert ax.get_xlabel() == "RDA1 (20.0 % of total variation)"
+        assert ax.get_ylabel() == "RDA2 (8.0 % of total variation)"
+        assert ax.get_aspect() == 1.0
+        assert "correlations" in ax.get_title(loc="left")
+        assert len(_collection(fig, "site-scores").get_offsets()) == 30
+
+    def test_scaling_one_and_other_axes(self):
+        sites, species, variables, eig = _scores()
+        fig = triplot_figure(sites, species, None, eig, scaling=1, axes=(0, 2))
+        ax = fig.axes[0]
+        assert "distances" in ax.get_title(loc="left")
+        # without total variance: share of the eigenvalues given, 0.05 / 0.47
+        assert ax.get_ylabel() == f"RDA3 ({100 * 0.05 / 0.47:.1f} % of the axes shown)"
+        assert not [c for c in ax.get_children() if getattr(c, "get_gid", lambda: 0)()
+                    == "variable-arrow"]
+
+    def test_arrow_directions_kept(self):
+        sites, species, variables, eig = _scores()
+        fig = triplot_figure(sites, species, variables, eig, scaling=2)
+        tips = np.array([a.xy for a in fig.axes[0].get_children()
+                         if isinstance(a, Annotation) and a.get_gid() == "variable-arrow"])
+        raw = variables[["RDA1", "RDA2"]].to_numpy()
+        ratio = tips / raw  # one common stretch factor for every arrow and coordinate
+        np.testing.assert_allclose(ratio, ratio[0, 0], rtol=1e-12)
+
+    def test_validation(self):
+        sites, species, variables, eig = _scores()
+        with pytest.raises(InputError, match="`scaling` must be 1 or 2; got 3"):
+            triplot_figure(sites, species, variables, eig, scaling=3)
+        with pytest.raises(InputError, match="must start with the axes of `site_scores`"):
+            triplot_figure(sites, species.rename(columns={"RDA1": "PC1"}), variables, eig,
+                           scaling=1)
+        with pytest.raises(InputError, match="`eigenvalues` has no value for axis 'RDA2'"):
+            triplot_figure(sites, species, variables, eig.iloc[:1], scaling=1)
+        with pytest.raises(InputError, match="`n_labels` must be a non-negative integer"):
+            triplot_figure(sites, species, variables, eig, scaling=1, n_labels=-1)
+        with pytest.raises(InputError, match="`total_variance` must be > 0"):
+            triplot_figure(sites, species, variables, eig, scaling=1, total_variance=0.0)
+
+
+class TestWeightingFigure:
+    TABLE = pd.DataFrame({"scheme": ["gabriel/binary", "gabriel/linear", "delaunay/binary"],
+                          "r2_adj": [0.12, 0.15, 0.09], "p": [0.004, 0.001, 0.03]})
+
+    def test_corrected_level_and_highlight(self):
+        # Šidák level for k = 3 schemes: 1 - 0.95^(1/3) = 0.016952 (Bauman et al. 2018,
+        # Ecology 99:2159-2166, correction formula) [derived]
+        corrected = 1 - 0.95 ** (1 / 3)
+        fig = weighting_figure(self.TABLE, corrected_alpha=corrected, chosen="gabriel/linear")
+        ax_r, ax_p = fig.axes
+        level = [ln for ln in ax_p.lines if ln.get_gid() == "corrected-level"]
+        assert len(level) == 1 and level[0].get_xdata()[0] == pytest.approx(0.016952, abs=1e-6)
+        bars = ax_r.patches
+        assert len(bars) == 3
+        colours = [st.matplotlib.colors.to_hex(b.get_facecolor()) for b in bars]
+        assert colours[1] == st.group_colour(1) and colours[0] == colours[2] == st.MUTED
+        below = _collection(fig, "p-below-level").get_offsets()
+        assert sorted(below[:, 0]) == [0.001, 0.004]  # 0.03 is above the corrected level
+        assert ax_p.get_xscale() == "log"
+
+    def test_validation(self):
+        with pytest.raises(InputError, match="`chosen` 'knn' is not one of the schemes"):
+            weighting_figure(self.TABLE, chosen="knn")
+        bad = self.TABLE.assign(p=[0.1, None, 0.2])
+        with pytest.raises(InputError, match="must hold a p-value for every scheme"):
+            weighting_figure(bad)
+
+
+class TestMoranScaleFigure:
+    def test_points_reference_line_and_selection(self):
+        names, scale, _, moran = _basis(20)
+        fig = moran_scale_figure(moran, scale, selected=["sv002"], expected=-1 / 19)
+        ax = fig.axes[0]
+        # E[I] = -1/(n - 1) (Cliff & Ord 1981, Spatial Processes) [memory]
+        ref = [ln for ln in ax.lines if ln.get_ydata()[0] == pytest.approx(-1 / 19)]
+        assert len(ref) == 1
+        np.testing.assert_allclose(_collection(fig, "selected-vector").get_offsets(),
+                                   [[scale["sv002"], moran["sv002"]]])
+        assert ax.get_xscale() == "log"
+
+    def test_validation(self):
+        names, scale, _, moran = _basis(5)
+        with pytest.raises(InputError, match="`scale` must be > 0"):
+            moran_scale_figure(moran, scale * 0)
+        with pytest.raises(InputError, match="missing or infinite value at position 2"):
+            moran_scale_figure(moran.where(moran.index != "sv003", np.nan), scale)
+
+
+class TestNiceScaleBar:
+    @pytest.mark.parametrize(("width", "unit", "expected"), [
+        (12_000.0, "m", (2000.0, "2 km")),      # 12 km / 5 = 2.4 km -> 2 km
+        (11_200.0, "m", (2000.0, "2 km")),
+        (4_999.0, "m", (500.0, "500 m")),       # 1 km would exceed a fifth
+        (5_000.0, "m", (1000.0, "1 km")),
+        (430.0, "m", (50.0, "50 m")),
+        (1.0, "m", (0.2, "0.2 m")),
+        (30.0, "km", (5.0, "5 km")),
+        (900.0, "map units", (100.0, "100 map units")),
+    ])
+    def test_round_lengths(self, width, unit, expected):
+        assert nice_scale_bar(width, unit=unit) == expected
+
+    def test_validation(self):
+        with pytest.raises(InputError, match="`width` must be a positive finite length"):
+            nice_scale_bar(0.0)
+
+
+def _points(crs="EPSG:32633"):
+    rng = np.random.default_rng(SEED)
+    x = np.r_[0.0, 10_000.0, rng.uniform(0, 10_000, 28)] + 500_000
+    y = np.r_[0.0, 6_000.0, rng.uniform(0, 6_000, 28)] + 4_000_000
+    return gpd.GeoDataFrame({"score": rng.normal(size=30), "lcbd": rng.uniform(0, 0.05, 30)},
+                            geometry=gpd.points_from_xy(x, y), crs=crs)
+
+
+class TestSiteMapFigure:
+    def test_scale_bar_for_known_extent(self):
+        # sites span 10 km; with 6 % padding on each side the map is 11.2 km wide, a fifth is
+        # 2.24 km, so the round bar is 2 km long [practice: 1-2-5 rounding]
+        fig = site_map_figure(_points(), column="score")
+        ax = fig.axes[0]
+        labels = [t.get_text() for t in ax.texts if t.get_gid() == "scale-bar-label"]
+        assert labels == ["2 km"]
+        segments = [p for p in ax.patches if p.get_gid() == "scale-bar"]
+        assert sum(p.get_width() for p in segments) == pytest.approx(2000.0)
+        assert ax.get_xlim()[1] - ax.get_xlim()[0] == pytest.approx(11_200.0)
+
+    def test_diverging_scale_centred_on_zero(self):
+        pts = _points()
+        fig = site_map_figure(pts, column="score", palette="diverging")
+        sites = _collection(fig, "sites")
+        vmax = np.abs(pts["score"]).max()
+        assert sites.norm.vmin == pytest.approx(-vmax) and sites.norm.vmax == pytest.approx(vmax)
+        np.testing.assert_allclose(sites.get_array(), pts["score"])
+
+    def test_sequential_scale_spans_values(self):
+        pts = _points()
+        sites = _collection(site_map_figure(pts, column="lcbd", palette="sequential"), "sites")
+        assert (sites.norm.vmin, sites.norm.vmax) == (pts["lcbd"].min(), pts["lcbd"].max())
+        assert sites.cmap.name == "cividis"
+
+    def test_axes_equal_units_arrow_and_colourbar(self):
+        fig = site_map_figure(_points(), column="score", value_label="fitted")
+        ax, cbar = fig.axes
+        assert ax.get_aspect() == 1.0
+        assert ax.get_xlabel() == "easting (m)" and ax.get_ylabel() == "northing (m)"
+        assert cbar.get_ylabel() == "fitted"
+        assert [c for c in ax.get_children() if isinstance(c, Annotation)
+                and c.get_gid() == "north-arrow"]
+        fig = site_map_figure(_points(), column="score", north_arrow="none")
+        assert not [c for c in fig.axes[0].get_children() if isinstance(c, Annotation)
+                    and c.get_gid() == "north-arrow"]
+
+    def test_surface_under_sites_and_polygons(self):
+        gx, gy = np.linspace(500_000, 510_000, 11), np.linspace(4_000_000, 4_006_000, 7)
+        values = np.outer(np.linspace(-1, 1, 7), np.ones(11))
+        values[0, 0] = np.nan  # outside the hull
+        fig = site_map_figure(_points(), column="score",
+                              surface={"x": gx, "y": gy, "values": values})
+        ax = fig.axes[0]
+        mesh = [c for c in ax.collections if isinstance(c, QuadMesh)]
+        assert len(mesh) == 1 and mesh[0].get_zorder() < _collection(fig, "sites").get_zorder()
+        polys = gpd.GeoDataFrame({"v": [1.0, 2.0]}, geometry=[shapely.box(0, 0, 10, 10),
+                                                              shapely.box(10, 0, 20, 10)])
+        fig = site_map_figure(polys, column="v", palette="sequential", unit="map units",
+                              north_arrow="none")
+        assert fig.axes[0].get_xlabel() == "x (map units)"
+        assert len(fig.axes[0].collections) == 1
+
+    def test_validation(self):
+        pts = _points()
+        with pytest.raises(CRSError, match="geographic CRS"):
+            site_map_figure(pts.to_crs(4326), column="score")
+        with pytest.raises(InputError, match="`column` must name a column of `sites`"):
+            site_map_figure(pts, column="nope")
+        bad = pts.copy()
+        bad.loc[bad.index[3], "score"] = np.nan
+        with pytest.raises(InputError, match="missing value at site 3"):
+            site_map_figure(bad, column="score")
+        with pytest.raises(InputError, match="must have shape \\(len\\(y\\), len\\(x\\)\\)"):
+            site_map_figure(pts, column="score", surface={"x": [0, 1, 2], "y": [0, 1],
+                                                          "values": np.zeros((3, 2))})
+        with pytest.raises(InputError, match="parameter `palette` must be one of"):
+            site_map_figure(pts, column="score", palette="rainbow")
+        with pytest.raises(InputError, match="must be a GeoDataFrame"):
+            site_map_figure(pd.DataFrame({"score": [1.0]}), column="score")

@@ -1,0 +1,186 @@
+"""Tests of the whole-analysis HTML report (spatial_ev.report.html)."""
+
+from __future__ import annotations
+
+import base64
+import html
+import re
+
+import pytest
+
+from spatial_ev.errors import InputError
+from spatial_ev.report.html import (REFERENCES, SECTIONS, build_figures, example_context,
+                                    render_report, write_report)
+
+MALICIOUS = "<script>alert(1)</script>"
+FIGURE_PARTS = ("partition", "scalogram", "basis_moran", "weighting", "scale_maps", "lcbd",
+                "triplot")
+
+
+@pytest.fixture(scope="module")
+def context():
+    return example_context()
+
+
+@pytest.fixture(scope="module")
+def page(context):
+    return render_report(context)
+
+
+def _light(context, **changes):
+    """The example context without its figure-heavy parts (fast to render), then changes."""
+    out = dict(context)
+    out.update({k: None for k in FIGURE_PARTS})
+    out.update(changes)
+    return out
+
+
+def _section(page: str, key: str) -> str:
+    start = page.index(f'<section id="{key}">')
+    return page[start:page.index("</section>", start)]
+
+
+class TestExampleContext:
+    def test_complete_and_labelled_illustrative(self, context):
+        assert context["illustrative"] is True
+        for key in ("data", "methods", "partition", "selected_environment", "selected_space",
+                    "scalogram", "basis_moran", "weighting", "scale_maps", "lcbd", "triplot",
+                    "limits"):
+            assert context[key] is not None, key
+        assert context["data"]["n_sites"] == len(context["lcbd"]["sites"]) == 120
+        assert len(context["data"]["species_names"]) == context["data"]["n_species"]
+        fractions = context["partition"]["fractions"]
+        assert fractions["r2_adj"].sum() == pytest.approx(1.0)  # fractions add to the total
+
+    def test_repeatable(self):
+        a, b = example_context(seed=123_456_789), example_context(seed=123_456_789)
+        assert a["lcbd"]["sites"].equals(b["lcbd"]["sites"])
+
+
+class TestBuildFigures:
+    def test_one_figure_per_part(self, context):
+        names = set(build_figures(_light(context, partition=context["partition"],
+                                         scale_maps=context["scale_maps"][:2])))
+        assert names == {"partition", "scale_map_1", "scale_map_2"}
+
+
+class TestRenderReport:
+    def test_every_section_heading(self, page):
+        for key, heading in SECTIONS.items():
+            assert f'<section id="{key}">' in page
+            assert heading in page, heading
+
+    def test_embeds_every_figure_as_png(self, context, page):
+        images = re.findall(r'<img src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
+        # partition, scalogram, Moran's I, weighting, 3 scale maps, LCBD, 2 triplots
+        assert len(images) == 10 == 7 + len(context["scale_maps"])
+        for data in images:
+            assert base64.b64decode(data)[:8] == b"\x89PNG\r\n\x1a\n"
+        assert all(f'id="{k}"' in page for k in ("scale_maps", "triplot"))
+
+    def test_self_contained(self, page):
+        assert page.startswith("<!DOCTYPE html>")
+        assert not re.search(r'(src|href)="(?!data:|#)', page), "external resource referenced"
+        assert "<link" not in page and "@import" not in page and "url(" not in page
+
+    def test_error_recorder_present(self, page):
+        assert 'data-report-errors="[]"' in page
+        assert "naturalWidth" in page and "data-report-images" in page
+
+    def test_methods_follow_the_choices(self, context, page):
+        methods = _section(page, "methods")
+        assert "Hellinger-transformed" in methods and "999 random permutations" in methods
+        assert "Random seed: 20261202" in methods
+        assert "α′ = 0.008512" in methods  # Šidák level for 6 schemes [derived]
+        assert "gabriel neighbour graph with linear edge weights" in methods
+        other = dict(context["methods"], transformation="chord", n_permutations=4999,
+                     seed=None, schemes_compared=["gabriel · binary"], selection="none",
+                     permutation_method="raw",
+                     basis={"family": "distance", "threshold": 1250.0, "n_vectors": 31,
+                            "sign": "positive"})
+        methods = _section(render_report(_light(context, methods=other)), "methods")
+        assert "chord-transformed" in methods and "Hellinger" not in methods
+        assert "4,999 random permutations of the rows" in methods
+        assert "No seed was fixed" in methods
+        assert "distances truncated at 1.25 km" in methods
+        assert "No variable selection was made" in methods
+        assert "Šidák" not in methods and "Freedman" not in methods
+
+    def test_citations_match_reference_list(self, page):
+        body = page[:page.index('<section id="references">')]
+        refs = _section(page, "references")
+        for key, full in REFERENCES.items():
+            cited = html.escape(key) in body
+            listed = html.escape(full) in refs
+            assert cited == listed, key
+        assert "Gilbert &amp; Bennett 2010" in body and "Legendre et al. 2002" in body
+
+    def test_limits_section(self, context, page):
+        limits = _section(page, "limits")
+        assert "exchangeable" in limits and "not show that the spatial pattern is caused" in limits
+        assert "has no test of its own" in limits
+        assert "inflates the type I error" in limits
+        finest = context["limits"]["finest_scale"]
+        assert f"finer than about {finest / 1000:.3g} km" in limits
+
+    def test_triplot_reading_note(self, page):
+        triplot = _section(page, "triplot")
+        assert "scaling 1 when the question is about sites" in triplot
+        assert "scaling 2 when it is about species and variables" in triplot
+
+    def test_escapes_user_strings(self, context):
+        data = dict(context["data"], species_names=[MALICIOUS, "Species B"],
+                    crs=f'EPSG:"{MALICIOUS}"')
+        reasons = {"lcbd": MALICIOUS}
+        page = render_report(_light(context, title=f"Survey {MALICIOUS}", data=data,
+                                    missing_reasons=reasons))
+        assert MALICIOUS not in page
+        assert "&lt;script&gt;alert(1)&lt;/script&gt;" in page
+        assert page.count("<script>") == 1  # only the report's own error recorder
+
+    def test_missing_section_is_stated(self, context):
+        page = render_report(_light(context, missing_reasons={
+            "partition": "no environmental table was supplied"}))
+        partition = _section(page, "partition")
+        assert "Not available in this report: no environmental table was supplied" in partition
+        assert "<img" not in partition
+        for key in ("scalogram", "weighting", "scale_maps", "lcbd", "triplot"):
+            assert "Not available in this report" in _section(page, key), key
+        assert "Not available" not in _section(page, "data")
+
+    def test_minimal_context(self):
+        keys = ("data", "methods", "partition", "selected_environment", "selected_space",
+                "scalogram", "basis_moran", "weighting", "scale_maps", "lcbd", "triplot",
+                "limits")
+        page = render_report({"title": "Empty", **{k: None for k in keys}})
+        for key in ("data", "methods", "partition", "lcbd", "limits"):
+            assert "Not available in this report" in _section(page, key), key
+        assert "<img" not in page
+
+    def test_empty_selection_says_so(self, context):
+        empty = context["selected_space"].iloc[:0]
+        page = render_report(_light(context, selected_space=empty, scale_maps=[]))
+        assert "No spatial vector was selected." in _section(page, "selected")
+        assert "no spatial structure to map" in _section(page, "scale_maps")
+
+    def test_validation(self, context):
+        with pytest.raises(InputError, match="`context` must be a mapping"):
+            render_report([("title", "x")])  # type: ignore[arg-type]
+        with pytest.raises(InputError, match=r"`context\['title'\]` must be a non-empty"):
+            render_report(dict(context, title=""))
+        incomplete = {k: v for k, v in context.items() if k != "lcbd"}
+        with pytest.raises(InputError, match=r"lacks key\(s\) \['lcbd'\]; pass None"):
+            render_report(incomplete)
+
+
+class TestWriteReport:
+    def test_writes_page_and_figures(self, context, tmp_path):
+        path = write_report(_light(context, partition=context["partition"]), tmp_path)
+        assert path == tmp_path / "report.html"
+        assert path.read_text(encoding="utf-8").count("data:image/png;base64,") == 1
+        assert sorted(p.name for p in (tmp_path / "figures").iterdir()) == [
+            "partition.png", "partition.svg"]
+
+    def test_validation(self, context, tmp_path):
+        with pytest.raises(InputError, match="is not an existing folder"):
+            write_report(context, tmp_path / "missing")

@@ -644,7 +644,8 @@ def _delaunay_candidates(layout: Layout, new: np.ndarray, free: np.ndarray
     if len(ext):
         pa, pb = layout.xy[hull_i], layout.xy[hull_j]
         inner = layout.xy.mean(axis=0)
-        side_in = np.sign(np.cross(pb - pa, inner - pa))
+        ab, ai = pb - pa, inner - pa
+        side_in = np.sign(ab[:, 0] * ai[:, 1] - ab[:, 1] * ai[:, 0])
         side_p = np.sign((pb[None, :, 0] - pa[None, :, 0]) * (new[ext][:, None, 1] - pa[None, :, 1])
                          - (pb[None, :, 1] - pa[None, :, 1]) * (new[ext][:, None, 0] - pa[None, :, 0]))
         facing = side_p * side_in[None, :] < 0

@@ -264,10 +264,14 @@ def _scales(u: np.ndarray, w: sparse.csr_matrix, lengths: np.ndarray, weights: n
     rho = (u * (w @ u)).sum(axis=0) / (deg[:, None] * u * u).sum(axis=0)
     pos = weights > 0
     lengths, weights = lengths[pos], weights[pos]
-    hist_w, edges = np.histogram(lengths, bins=256, weights=weights)
-    hist_d, _ = np.histogram(lengths, bins=edges, weights=weights * lengths)
-    nz = hist_w > 0
-    d, wb = hist_d[nz] / hist_w[nz], hist_w[nz] / hist_w[nz].sum()
+    lo, hi = float(lengths.min()), float(lengths.max())
+    if hi - lo <= 1e-12 * hi:                  # all edges equally long (regular lattices)
+        d, wb = np.array([float(np.average(lengths, weights=weights))]), np.ones(1)
+    else:
+        hist_w, edges = np.histogram(lengths, bins=256, weights=weights)
+        hist_d, _ = np.histogram(lengths, bins=edges, weights=weights * lengths)
+        nz = hist_w > 0
+        d, wb = hist_d[nz] / hist_w[nz], hist_w[nz] / hist_w[nz].sum()
     d_mean = float(wb @ d)
     kappa = np.geomspace(1e-3, 20.0, 4000) / d_mean
     x = kappa[:, None] * d[None, :]

@@ -38,6 +38,7 @@ __all__ = ["forward_selection", "ForwardSelection"]
 _COLLINEAR_RTOL = 1e-10
 #: largest |cosine| between candidates still treated as orthogonal
 _ORTHOGONAL_ATOL = 1e-8
+_TINY = np.finfo(np.float64).tiny
 
 
 @dataclass(frozen=True)
@@ -226,13 +227,13 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
     Qc = _column_basis(cond)[0] if cond is not None else np.zeros((n, 0))
     m_c = Qc.shape[1]
     Yr = Yc - Qc @ (Qc.T @ Yc)
-    Zr = Z - Z.mean(axis=0)
-    Zr = Zr - Qc @ (Qc.T @ Zr)
+    Zc = Z - Z.mean(axis=0)
+    Zr = Zc - Qc @ (Qc.T @ Zc)
     r2_c = (total_ss - float(np.sum(Yr * Yr))) / total_ss
     base_adj = adjusted_r2(r2_c, n, m_c)
     norms2 = np.einsum("ij,ij->j", Zr, Zr)
-    raw_norms2 = np.einsum("ij,ij->j", Z - Z.mean(axis=0), Z - Z.mean(axis=0))
-    dead = norms2 <= _COLLINEAR_RTOL * np.maximum(raw_norms2, np.finfo(float).tiny)
+    raw_norms2 = np.einsum("ij,ij->j", Zc, Zc)
+    dead = norms2 <= _COLLINEAR_RTOL * np.maximum(raw_norms2, _TINY)
     if dead.all():
         raise InputError("every candidate is constant or collinear with the conditioning "
                          "variables; nothing to select")
@@ -273,19 +274,11 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
             stop_reason=reason, alpha=alpha, ranking=ranking, n_candidates=len(names),
             n_permutations=n_permutations)
 
-    cosines = (Zr.T @ Zr) / np.sqrt(np.outer(np.maximum(norms2, 1e-300), np.maximum(norms2, 1e-300)))
-    alive = ~dead
-    off = np.abs(cosines[np.ix_(alive, alive)] - np.eye(alive.sum()))
-    ranking = "orthogonal" if off.size == 0 or off.max() <= _ORTHOGONAL_ATOL else "sequential"
+    ranker = _make_ranker(Yr, Zr, ~dead, raw_norms2, total_ss)
+    ranking = ranker.kind
     if gtest is not None and gtest.p_value > alpha_global:
         return finish(f"global test not significant (p = {gtest.p_value:.4g} > {alpha_global:g})")
 
-    if ranking == "orthogonal":
-        cross = Zr.T @ Yr
-        fixed_gain = np.where(alive, np.einsum("jp,jp->j", cross, cross)
-                              / np.maximum(norms2, 1e-300) / total_ss, -np.inf)
-    else:
-        Yw, Zw = Yr.copy(), Zr.copy()
     chosen: list[int] = []
     r2_sel = 0.0
     reason = "every candidate was added"
@@ -296,14 +289,7 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
         if n - m_c - len(chosen) - 2 < 1:
             reason = "no residual degrees of freedom left for another variable"
             break
-        if ranking == "orthogonal":
-            gains = fixed_gain.copy()
-        else:
-            w2 = np.einsum("ij,ij->j", Zw, Zw)
-            live = alive & (w2 > _COLLINEAR_RTOL * np.maximum(raw_norms2, 1e-300))
-            cross = Zw.T @ Yw
-            gains = np.where(live, np.einsum("jp,jp->j", cross, cross)
-                             / np.maximum(w2, 1e-300) / total_ss, -np.inf)
+        gains = ranker.gains()
         gains[chosen] = -np.inf
         if not np.isfinite(gains).any():
             reason = "no candidate left (all added or collinear with those added)"
@@ -340,11 +326,58 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
         rows.append(row)
         chosen.append(j)
         r2_sel = r2_new
-        if ranking == "sequential":  # one Gram–Schmidt update of response and candidates
-            q = Zw[:, j] / np.sqrt(np.sum(Zw[:, j] ** 2))
-            Yw -= np.outer(q, q @ Yw)
-            Zw -= np.outer(q, q @ Zw)
+        ranker.enter(j)
     return finish(reason)
+
+
+class _OrthogonalRanking:
+    """Mutually orthogonal candidates: each R² contribution ‖Yᵀu‖²/(‖u‖²·SS) is fixed."""
+
+    kind = "orthogonal"
+
+    def __init__(self, Yr, Zr, alive, norms2, total_ss):
+        cross = Zr.T @ Yr
+        self._gains = np.where(alive, np.einsum("jp,jp->j", cross, cross)
+                               / np.maximum(norms2, _TINY) / total_ss, -np.inf)
+
+    def gains(self) -> np.ndarray:
+        return self._gains.copy()
+
+    def enter(self, j: int) -> None:
+        """Nothing to update: the other contributions do not change."""
+
+
+class _SequentialRanking:
+    """General candidates: response and candidates are orthogonalised against each entry."""
+
+    kind = "sequential"
+
+    def __init__(self, Yr, Zr, alive, raw_norms2, total_ss):
+        self._Y, self._Z = Yr.copy(), Zr.copy()
+        self._alive, self._raw, self._ss = alive, raw_norms2, total_ss
+
+    def gains(self) -> np.ndarray:
+        w2 = np.einsum("ij,ij->j", self._Z, self._Z)
+        live = self._alive & (w2 > _COLLINEAR_RTOL * np.maximum(self._raw, _TINY))
+        cross = self._Z.T @ self._Y
+        return np.where(live, np.einsum("jp,jp->j", cross, cross)
+                        / np.maximum(w2, _TINY) / self._ss, -np.inf)
+
+    def enter(self, j: int) -> None:
+        """One Gram–Schmidt (rank-one QR) update of the response and remaining candidates."""
+        q = self._Z[:, j] / np.sqrt(np.sum(self._Z[:, j] ** 2))
+        self._Y -= np.outer(q, q @ self._Y)
+        self._Z -= np.outer(q, q @ self._Z)
+
+
+def _make_ranker(Yr, Zr, alive, raw_norms2, total_ss):
+    """Orthogonal ranking when the live candidates are orthogonal (|cosine| ≤ 1e-8)."""
+    norms2 = np.einsum("ij,ij->j", Zr, Zr)
+    live = Zr[:, alive] / np.sqrt(norms2[alive])
+    off = live.T @ live - np.eye(live.shape[1])
+    if off.size == 0 or np.abs(off).max() <= _ORTHOGONAL_ATOL:
+        return _OrthogonalRanking(Yr, Zr, alive, norms2, total_ss)
+    return _SequentialRanking(Yr, Zr, alive, raw_norms2, total_ss)
 
 
 # --------------------------------------------------------------------------- validation

@@ -42,6 +42,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                        help="edge weighting of a neighbour graph (default binary)")
     basis.add_argument("--exponent", type=float, default=None, metavar="A",
                        help="exponent of the concave weightings")
+    basis.add_argument("--max-distance", type=float, default=None, metavar="DIST",
+                       help="d_max of the linear / concave-down weightings (default: the "
+                            "longest edge, which then gets weight 0)")
     basis.add_argument("--neighbours", type=int, default=None, metavar="K",
                        help="neighbours per site for --graph k_nearest")
     basis.add_argument("--threshold", type=float, default=None, metavar="DIST",
@@ -83,9 +86,9 @@ def execute(args: argparse.Namespace) -> int:
     common = dict(max_vectors=args.max_vectors, finest_scale=args.finest_scale,
                   sign=args.autocorrelation)
     if args.graph == "distance_based":
-        for name in ("exponent", "neighbours"):
+        for name in ("exponent", "neighbours", "max_distance"):
             if getattr(args, name) is not None:
-                raise InputError(f"--{name} applies to neighbour graphs, not to "
+                raise InputError(f"--{name.replace('_', '-')} applies to neighbour graphs, not to "
                                  "--graph distance_based; drop it")
         if args.weighting != "binary":
             raise InputError("--weighting applies to neighbour graphs, not to "
@@ -94,7 +97,7 @@ def execute(args: argparse.Namespace) -> int:
     else:
         graph = neighbour_graph(survey, args.graph, k=args.neighbours, threshold=args.threshold)
         basis = graph_eigenvectors(graph, weighting=args.weighting, exponent=args.exponent,
-                                   **common)
+                                   max_distance=args.max_distance, **common)
     if basis.n_vectors == 0:
         raise InputError("no spatial vector met the request (sign / finest scale); relax "
                          "--finest-scale or choose --autocorrelation all")

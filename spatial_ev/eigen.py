@@ -18,6 +18,7 @@ formed and memory stays O(n·(neighbours + vectors)).
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -25,6 +26,7 @@ import numpy as np
 import pandas as pd
 import scipy.linalg
 from scipy import sparse, special
+from scipy.sparse import csgraph
 from scipy.sparse.linalg import LinearOperator, eigsh
 from scipy.spatial import ConvexHull, cKDTree
 
@@ -32,7 +34,7 @@ from ._validation import check_int, check_option, check_real
 from .connectivity import (Layout, NeighbourGraph, _band_pairs, _check_coords,
                            _chord_to_distance, _distance_to_chord, _new_layout, _symmetric,
                            _weight_values, _check_weighting, insertion_neighbours, mst_threshold)
-from .errors import InputError
+from .errors import DisconnectedGraphWarning, InputError
 
 __all__ = ["SpatialBasis", "distance_eigenvectors", "graph_eigenvectors", "DENSE_LIMIT"]
 
@@ -434,6 +436,23 @@ def distance_eigenvectors(coords: Any, *, threshold: float | None = None,
     return basis
 
 
+def _check_zero_weights(graph: NeighbourGraph, w: sparse.csr_matrix, weighting: str) -> None:
+    """Edges as long as d_max get weight 0 under linear / concave-down weightings: say so."""
+    dropped = (graph.lengths.nnz - w.nnz) // 2
+    if dropped == 0:
+        return
+    fix = ("pass `max_distance` larger than the longest edge "
+           f"({graph.longest_edge:.6g}) so that every edge keeps a positive weight")
+    if w.nnz == 0:
+        raise InputError(f"weighting={weighting!r} gives every edge weight 0 (all edges are as "
+                         f"long as d_max, e.g. a regular layout); {fix}, or use 'binary'")
+    n_comp = csgraph.connected_components(w, directed=False)[0]
+    if n_comp > graph.n_components:
+        warnings.warn(f"weighting={weighting!r} gives weight 0 to {dropped} edge(s) as long as "
+                      f"d_max, which splits the weighted graph into {n_comp} components; {fix}",
+                      DisconnectedGraphWarning, stacklevel=3)
+
+
 def graph_eigenvectors(graph: NeighbourGraph, *, weighting: str = "binary",
                        exponent: float | None = None, max_distance: float | None = None,
                        max_vectors: int | None = None, finest_scale: float | None = None,
@@ -471,6 +490,7 @@ def graph_eigenvectors(graph: NeighbourGraph, *, weighting: str = "binary",
     full = graph.weights(weighting, exponent=exponent, max_distance=max_distance)
     w = full.copy()
     w.eliminate_zeros()
+    _check_zero_weights(graph, w, weighting)
     layout = _check_coords(graph.coords, distance=graph.metric if graph.metric ==
                            "great_circle" else "euclidean")
     layout = layout._replace(site_ids=graph.site_ids)

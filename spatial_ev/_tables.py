@@ -151,32 +151,44 @@ def species_matrix(table: RawTable, order: np.ndarray, index: pd.Index,
     """Validated species values (float64 ≥ 0, finite, no missing cells), in site order.
 
     ``order`` holds the table's row of each site (from :func:`align`); ``index`` the site ids.
+    All cells are parsed at once; the first offending cell (by column, then row) is reported.
     """
     data = table.data.iloc[order].reset_index(drop=True)
-    if data.shape[1] == 0:
+    n, k = data.shape
+    if k == 0:
         raise InputError(f"species {table.source} has no species columns besides the site ids")
-    out = np.empty(data.shape, dtype=np.float64)
-    for j, col in enumerate(data.columns):
-        numbers, missing, bad = parse_numeric(data[col], decimal=decimal)
-        rule = "species values must be counts, cover or 0/1"
-        if bad.any():
-            raw = data[col].astype(str).to_numpy()[bad].tolist()
-            i = int(np.flatnonzero(bad)[0])
-            raise InputError(f"species {table.source}: column {col!r} {table.where(int(order[i]))} (site "
-                             f"{index[i]!r}) holds {raw[0]!r}, which is not a number "
-                             f"({int(bad.sum())} such cell(s) in the column)"
-                             f"{numeric_hint(raw, decimal)}; {rule}")
+    cells = pd.Series(data.to_numpy(dtype=object).ravel(order="F"), dtype=object)
+    if all(pd.api.types.is_numeric_dtype(t) for t in data.dtypes):
+        cells = cells.astype(np.float64)
+    numbers, missing, bad = (a.reshape(k, n).T for a in parse_numeric(cells, decimal=decimal))
+    rule = "species values must be counts, cover or 0/1"
+    if bad.any():
+        i, j = _first_cell(bad)
+        col = data.columns[j]
+        raw = data[col].astype(str).to_numpy()[bad[:, j]].tolist()
+        raise InputError(f"species {table.source}: column {col!r} {table.where(int(order[i]))} "
+                         f"(site {index[i]!r}) holds {raw[0]!r}, which is not a number "
+                         f"({int(bad.sum())} such cell(s) in the table)"
+                         f"{numeric_hint(raw, decimal)}; {rule}")
+    with np.errstate(invalid="ignore"):
         checks = ((missing, "is empty or missing", "write 0 where the species was absent"),
                   (np.isinf(numbers), "is infinite", rule),
                   (numbers < 0, "is negative", rule))
-        for mask, what, fix in checks:
-            if mask.any():
-                i = int(np.flatnonzero(mask)[0])
-                raise InputError(f"species {table.source}: column {col!r} {table.where(int(order[i]))} "
-                                 f"(site {index[i]!r}) {what} ({numbers[i]!r}; "
-                                 f"{int(mask.sum())} such cell(s) in the column); {fix}")
-        out[:, j] = numbers
-    return pd.DataFrame(out, index=index, columns=pd.Index(list(data.columns), name="species"))
+    for mask, what, fix in checks:
+        if mask.any():
+            i, j = _first_cell(mask)
+            raise InputError(f"species {table.source}: column {data.columns[j]!r} "
+                             f"{table.where(int(order[i]))} (site {index[i]!r}) {what} "
+                             f"({float(numbers[i, j])!r}; {int(mask.sum())} such cell(s) in the "
+                             f"table); {fix}")
+    return pd.DataFrame(numbers, index=index, columns=pd.Index(list(data.columns),
+                                                               name="species"))
+
+
+def _first_cell(mask: np.ndarray) -> tuple[int, int]:
+    """Row and column of the first True cell, scanning column by column."""
+    j = int(np.flatnonzero(mask.any(axis=0))[0])
+    return int(np.flatnonzero(mask[:, j])[0]), j
 
 
 @dataclass

@@ -28,6 +28,7 @@ CSV_SUFFIXES = {".csv": "CSV", ".txt": "CSV", ".tsv": "CSV (tab-separated)"}
 GIS_SUFFIXES = {".gpkg": "GeoPackage", ".geojson": "GeoJSON", ".json": "GeoJSON",
                 ".shp": "Shapefile"}
 _MISSING = {"", "na", "nan", "n/a", "null", "none", "#n/a"}
+_NA_TOKENS = sorted({t for m in _MISSING for t in (m, m.upper(), m.capitalize())} | {"NaN"})
 _DECIMAL_COMMA = re.compile(r"^[+-]?\d*,\d+(?:[eE][+-]?\d+)?$")
 _DECIMAL_POINT = re.compile(r"^[+-]?\d*\.\d+(?:[eE][+-]?\d+)?$")
 
@@ -64,20 +65,22 @@ def file_format(path: str | os.PathLike, *, role: str) -> str:
 
 
 def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None = None,
-                   decimal: str = ".") -> pd.DataFrame:
-    """Read a CSV file as a table of stripped text cells with a checked header.
+                   decimal: str = ".", id_column: str | None = None) -> pd.DataFrame:
+    """Read a CSV file with a checked header; numbers parsed by pandas' C parser.
 
     The header must name every column once. An empty first header cell (a table exported with
-    row names) is named ``"site"``. Rows keep their order; ``frame.attrs["first_line"]`` is the
-    file line number of the first data row (for messages).
+    row names) is named ``"site"``. The id column (``id_column``, else the first) is kept as
+    text; a column holding only numbers (with the given decimal mark) becomes float/int;
+    any other column stays text, with missing cells (empty, ``NA``, ``NaN``, ...) as NaN, so
+    that :func:`parse_numeric` can report the offending cells. Rows keep their order.
 
     Examples
     --------
     >>> import tempfile, pathlib
     >>> f = pathlib.Path(tempfile.mkdtemp()) / "t.csv"
-    >>> _ = f.write_text("site;depth\\nA;1,5\\n")
+    >>> _ = f.write_text("site;depth\nA;1,5\n")
     >>> read_csv_table(f, role="environment", delimiter=";", decimal=",")["depth"].tolist()
-    ['1,5']
+    [1.5]
     """
     p = Path(path)
     delimiter = _check_delimiter(delimiter, decimal, p)
@@ -89,19 +92,8 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     if not text.strip():
         raise InputError(f"{role} file {str(p)!r} is empty; it needs a header row and one row "
                          f"per site")
-    try:
-        frame = pd.read_csv(_stdio.StringIO(text), sep=delimiter, header=None, dtype=str,
-                            keep_default_na=False, skip_blank_lines=True, engine="c")
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
-        msg = " ".join(str(exc).split())
-        raise InputError(f"{role} file {str(p)!r} cannot be read as CSV with delimiter "
-                         f"{delimiter!r}: {msg}; check the delimiter and that every row has "
-                         f"as many fields as the header") from None
-    frame = frame.fillna("")
-    header = [str(h).strip() for h in frame.iloc[0]]
-    body = frame.iloc[1:].reset_index(drop=True)
-    if body.empty:
-        raise InputError(f"{role} file {str(p)!r} has a header but no data rows")
+    header = [str(h).strip() for h in _parse(text, p, role, delimiter, header=None, nrows=1,
+                                             dtype=str, keep_default_na=False).iloc[0]]
     if len(header) == 1:
         first_line = text.lstrip().splitlines()[0]
         others = [d for d in (",", ";", "\t", "|") if d != delimiter and d in first_line]
@@ -121,10 +113,25 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     if dupes:
         raise InputError(f"{role} file {str(p)!r}: column name(s) {dupes} appear more than "
                          f"once in the header; give every column a distinct name")
+    names = [f"c{i}" for i in range(len(header))]
+    id_at = header.index(id_column) if id_column in header else 0
+    body = _parse(text, p, role, delimiter, header=0, names=names, index_col=False,
+                  dtype={names[id_at]: str}, keep_default_na=False, na_values=_NA_TOKENS,
+                  decimal=decimal, skip_blank_lines=True)
+    if body.empty:
+        raise InputError(f"{role} file {str(p)!r} has a header but no data rows")
     body.columns = pd.Index(header, dtype=object)
-    body = body.apply(lambda col: col.str.strip())
-    body.attrs["first_line"] = 2
     return body
+
+
+def _parse(text: str, path: Path, role: str, delimiter: str, **kwargs) -> pd.DataFrame:
+    try:
+        return pd.read_csv(_stdio.StringIO(text), sep=delimiter, engine="c", **kwargs)
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
+        msg = " ".join(str(exc).split())
+        raise InputError(f"{role} file {str(path)!r} cannot be read as CSV with delimiter "
+                         f"{delimiter!r}: {msg}; check the delimiter and that every row has "
+                         f"as many fields as the header") from None
 
 
 def read_vector(path: str | os.PathLike, *, role: str, layer: str | int | None = None):
@@ -190,18 +197,28 @@ def parse_numeric(values: pd.Series, *, decimal: str = ".") -> tuple[np.ndarray,
         numbers = values.to_numpy(dtype=np.float64, na_value=np.nan)
         missing = np.isnan(numbers)
         return numbers, missing, np.zeros(len(values), dtype=bool)
-    text = values.astype(object).where(values.notna(), "").astype(str).str.strip()
-    missing = text.str.lower().isin(_MISSING).to_numpy()
+    cells = values.to_numpy(dtype=object, na_value="")
+    text = cells.astype(str)  # numpy strings: the operations below run in C loops
     if decimal == ",":
-        has_point = text.str.contains(".", regex=False).to_numpy()
-        text = text.str.replace(",", ".", regex=False)
+        has_point = np.char.find(text, ".") >= 0
+        text = np.char.replace(text, ",", ".")
     else:
         has_point = np.zeros(len(text), dtype=bool)
-    candidates = text.where(~missing & ~has_point, None).astype(object)
-    numbers = pd.to_numeric(candidates, errors="coerce").to_numpy(dtype=np.float64,
-                                                                  na_value=np.nan)
+    try:  # fast path: every cell is a number (or "nan")
+        numbers = text.astype(np.float64)
+    except ValueError:
+        pass
+    else:
+        missing = np.isnan(numbers) & ~has_point
+        numbers[has_point] = np.nan
+        return numbers, missing, has_point
+    text = np.char.strip(text)
+    missing = np.isin(np.char.lower(text), list(_MISSING))
+    candidates = text.astype(object)
+    candidates[missing | has_point] = None
+    numbers = pd.to_numeric(pd.Series(candidates, dtype=object), errors="coerce").to_numpy(
+        dtype=np.float64, na_value=np.nan)
     bad = np.isnan(numbers) & ~missing
-    # a literal "nan" is missing, not bad; numbers parsed from text like "NaN" are covered above
     return numbers, missing, bad
 
 

@@ -370,17 +370,17 @@ def _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinate
             "shared_coordinates": shared_coordinates, "delimiter": None}
 
 
-def _read_frame(path, role: str, opts: dict, layer=None):
+def _read_frame(path, role: str, opts: dict, layer=None, site_id=None):
     kind = file_format(path, role=role)
     if kind == "csv":
         return read_csv_table(path, role=role, delimiter=opts["delimiter"],
-                              decimal=opts["decimal"]), None, True
+                              decimal=opts["decimal"], id_column=site_id), None, True
     gdf = read_vector(path, role=role, layer=layer)
     return gdf, gdf.crs, False
 
 
 def _read_table(path, role: str, site_id, opts: dict) -> T.RawTable:
-    frame, crs, is_csv = _read_frame(path, role, opts)
+    frame, crs, is_csv = _read_frame(path, role, opts, site_id=site_id)
     if not is_csv:
         frame = pd.DataFrame(frame.drop(columns=frame.geometry.name))
     source = f"file {str(path)!r}"
@@ -390,7 +390,7 @@ def _read_table(path, role: str, site_id, opts: dict) -> T.RawTable:
 
 
 def _read_site_table(path, site_id, x, y, layer, opts: dict) -> T.RawTable:
-    frame, crs, is_csv = _read_frame(path, "sites", opts, layer)
+    frame, crs, is_csv = _read_frame(path, "sites", opts, layer, site_id)
     source = f"file {str(path)!r}"
     if is_csv:
         if layer is not None:

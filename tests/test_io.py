@@ -35,10 +35,11 @@ class TestReadCsvTable:
         (path.write_bytes if isinstance(content, bytes) else path.write_text)(content)
         return read_csv_table(path, role="species", **kw)
 
-    def test_text_cells_stripped(self, tmp_path):
-        t = self._read(tmp_path, 'site, A ,B\n s1 ," 3 ",4\ns2,5,6\n')
-        assert list(t.columns) == ["site", "A", "B"]
-        assert t["A"].tolist() == ["3", "5"] and t["site"].tolist() == ["s1", "s2"]
+    def test_header_stripped_numbers_parsed_ids_text(self, tmp_path):
+        t = self._read(tmp_path, 'site, A ,B,C\n 01 ," 3 ",4,NA\ns2,5,6,x\n')
+        assert list(t.columns) == ["site", "A", "B", "C"]
+        assert t["A"].tolist() == [3.0, 5.0] and t["site"].tolist() == [" 01 ", "s2"]
+        assert pd.isna(t["C"].iloc[0]) and t["C"].iloc[1] == "x"
 
     def test_utf8_bom_and_utf16(self, tmp_path):
         assert list(self._read(tmp_path, "\ufeffsite,A\ns1,1\n").columns) == ["site", "A"]

@@ -404,6 +404,18 @@ class TestSiteMapFigure:
         assert fig.axes[0].get_xlabel() == "x (map units)"
         assert len(fig.axes[0].collections) == 1
 
+    def test_highlighted_sites_ringed(self):
+        pts = _points()
+        pts["unusual"] = pts["lcbd"] > pts["lcbd"].quantile(0.8)
+        fig = site_map_figure(pts, column="lcbd", palette="sequential", highlight="unusual",
+                              highlight_label="p ≤ 0.05")
+        rings = _collection(fig, "highlight").get_offsets()
+        expected = pts.geometry[pts["unusual"]]
+        np.testing.assert_allclose(rings, np.column_stack([expected.x, expected.y]))
+        assert [t.get_text() for t in fig.axes[0].get_legend().get_texts()] == ["p ≤ 0.05"]
+        with pytest.raises(InputError, match=r"`sites\['lcbd'\]` must be boolean"):
+            site_map_figure(pts, column="lcbd", highlight="lcbd")
+
     def test_validation(self):
         pts = _points()
         with pytest.raises(CRSError, match="geographic CRS"):

@@ -123,6 +123,13 @@ class TestRenderReport:
         finest = context["limits"]["finest_scale"]
         assert f"finer than about {finest / 1000:.3g} km" in limits
 
+    def test_lcbd_caption_names_sites(self, context, page):
+        lcbd = _section(page, "lcbd")
+        top = context["lcbd"]["sites"]["lcbd"].idxmax()
+        assert f"Highest contributions: site {top} (" in lcbd
+        n_sig = int((context["lcbd"]["sites"]["p"] <= 0.05).sum())
+        assert f"Ringed: the {n_sig} site(s) whose LCBD has p ≤ 0.05" in lcbd
+
     def test_triplot_reading_note(self, page):
         triplot = _section(page, "triplot")
         assert "scaling 1 when the question is about sites" in triplot

@@ -143,6 +143,8 @@ def example_context(*, seed: int = 20261202) -> dict[str, Any]:
 
     squares = centred ** 2
     lcbd = squares.sum(axis=1) / squares.sum()
+    # made-up per-site p-values: small only for the most unusual sites (illustrative)
+    lcbd_p = np.where(lcbd > np.quantile(lcbd, 0.93), 0.02, 0.4)
     dists = np.hypot(x[:, None] - x[None, :], y[:, None] - y[None, :])
     np.fill_diagonal(dists, np.inf)
     nearest = dists.min(axis=1)
@@ -200,8 +202,9 @@ def example_context(*, seed: int = 20261202) -> dict[str, Any]:
             "p": [0.001, 0.001, 0.002, 0.001, 0.006, 0.018]}),
             "alpha": 0.05, "corrected_alpha": corrected, "chosen": "gabriel · linear"},
         "scale_maps": scale_maps,
-        "lcbd": {"sites": gpd.GeoDataFrame({"lcbd": lcbd}, geometry=points, index=ids,
-                                           crs=crs), "column": "lcbd"},
+        "lcbd": {"sites": gpd.GeoDataFrame({"lcbd": lcbd, "p": lcbd_p}, geometry=points,
+                                           index=ids, crs=crs),
+                 "column": "lcbd", "p_column": "p", "alpha": 0.05},
         "triplot": {"eigenvalues": eigenvalues, "total_variance": total_variance,
                     "n_labels": 8, "scaling_1": scaling_1, "scaling_2": scaling_2},
         "limits": {"finest_scale": float(3 * np.median(nearest)),

@@ -483,7 +483,9 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     reading = ("distances between sites approximate their community differences"
                if scaling == 1 else
                "angles between species and arrows approximate their correlations")
-    ax.set_title(title or f"Triplot, scaling {scaling}: {reading}", fontsize=9.5)
+    ax.set_title(reading, fontsize=8.5, fontweight="normal", color=st.MUTED)
+    fig.suptitle(title or f"Triplot, scaling {scaling}", x=0.02, ha="left",
+                 fontsize=10.5, fontweight="bold")
     ax.legend(loc="lower left", fontsize=7.5)
     if note:
         ax.text(0.99, 0.01, note, transform=ax.transAxes, ha="right", va="bottom",

@@ -238,7 +238,8 @@ def _distance(value: Any, unit: str) -> str:
 
 def _figure_uri(fig: Figure, *, dpi: int = 110) -> str:
     buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=dpi, metadata={"Software": None})
+    fig.savefig(buffer, format="png", dpi=dpi, bbox_inches="tight",
+                metadata={"Software": None})
     return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
 
 
@@ -308,10 +309,16 @@ def build_figures(context: Mapping[str, Any]) -> dict[str, Figure]:
             value_label="fitted score (centred)")
     lc = context["lcbd"]
     if lc is not None:
-        out["lcbd_map"] = maps.site_map_figure(lc["sites"], column=lc["column"],
+        sites, highlight, label = lc["sites"], None, "highlighted"
+        if lc.get("p_column") is not None:
+            alpha = lc.get("alpha", 0.05)
+            sites = sites.assign(_significant=sites[lc["p_column"]].to_numpy() <= alpha)
+            highlight, label = "_significant", f"LCBD p ≤ {alpha:g}"
+        out["lcbd_map"] = maps.site_map_figure(sites, column=lc["column"],
                                                palette="sequential", unit=unit,
                                                title="Local contribution to beta diversity",
-                                               value_label="LCBD (share of total)")
+                                               value_label="LCBD (share of total)",
+                                               highlight=highlight, highlight_label=label)
     tp = context["triplot"]
     if tp is not None:
         for scaling in (1, 2):
@@ -566,6 +573,11 @@ def render_report(context: Mapping[str, Any], *,
         top = col.sort_values(ascending=False).head(5)
         lcbd_note = ("Highest contributions: " + ", ".join(
             f"site {idx} ({val:.3f})" for idx, val in top.items()) + ".")
+        if lc.get("p_column") is not None:
+            alpha = lc.get("alpha", 0.05)
+            n_sig = int((lc["sites"][lc["p_column"]] <= alpha).sum())
+            lcbd_note += (f" Ringed: the {n_sig} site(s) whose LCBD has p ≤ {alpha:g} in a "
+                          "permutation test (not corrected for testing every site).")
     refs = [REFERENCES[k] for k in sorted(cite.keys)]
     view = {
         "title": context["title"], "subtitle": context.get("subtitle"),

@@ -14,6 +14,7 @@ from typing import Any
 
 import geopandas as gpd
 import numpy as np
+import pandas as pd
 from matplotlib.cm import ScalarMappable
 from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
@@ -119,6 +120,18 @@ def _check_surface(surface: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray] | 
     return x, y, z
 
 
+def _check_highlight(sites: gpd.GeoDataFrame, highlight: Any) -> np.ndarray | None:
+    if highlight is None:
+        return None
+    if not isinstance(highlight, str) or highlight not in sites.columns:
+        raise InputError(f"`highlight` must name a boolean column of `sites`; got {highlight!r}")
+    col = sites[highlight]
+    if not pd.api.types.is_bool_dtype(col):
+        raise InputError(f"`sites[{highlight!r}]` must be boolean (True = highlight); got dtype "
+                         f"{col.dtype}")
+    return col.to_numpy(dtype=bool)
+
+
 def _draw_scale_bar(ax: Any, xlim: tuple[float, float], ylim: tuple[float, float],
                     unit: str) -> None:
     width, height = xlim[1] - xlim[0], ylim[1] - ylim[0]
@@ -145,7 +158,8 @@ def _draw_north_arrow(ax: Any) -> None:
 def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "diverging",
                     surface: Mapping[str, Any] | None = None, unit: str = "m",
                     title: str | None = None, value_label: str | None = None,
-                    north_arrow: str = "grid") -> Figure:
+                    north_arrow: str = "grid", highlight: str | None = None,
+                    highlight_label: str = "highlighted") -> Figure:
     """Map one value per site, optionally over a gridded prediction surface.
 
     Points are drawn as dots, polygons filled; both take the value's colour. With
@@ -173,6 +187,9 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     title : figure title (default: the column name).
     value_label : colour-bar label (default: the column name).
     north_arrow : ``"grid"`` (draw a grid-north arrow) or ``"none"``.
+    highlight : name of a boolean column; its True sites get a heavy dark ring (e.g. sites
+        whose LCBD is significant) and a legend entry ``highlight_label``.
+    highlight_label : legend text for highlighted sites.
 
     Returns
     -------
@@ -191,6 +208,7 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     """
     sites, values = _check_sites(sites, column)
     grid = _check_surface(surface)
+    marked = _check_highlight(sites, highlight)
     check_option("palette", palette, _PALETTES)
     check_option("north_arrow", north_arrow, ("grid", "none"))
     unit = unit_symbol(unit) if unit not in ("m", "km", "ft", "map units") else unit
@@ -223,6 +241,11 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
                                  crs=sites.crs)
         frame.plot(ax=ax, column="_value", cmap=cmap, norm=norm, edgecolor="white",
                    linewidth=0.3, zorder=3)
+    if marked is not None and marked.any():
+        centres = sites.geometry[marked].representative_point()
+        ax.scatter(centres.x, centres.y, s=90, facecolor="none", edgecolor=st.INK,
+                   linewidth=1.6, zorder=4, gid="highlight", label=highlight_label)
+        ax.legend(loc="upper left", fontsize=7.5, framealpha=0.85, frameon=True)
     width, height = max(xmax - xmin, 1e-9), max(ymax - ymin, 1e-9)
     side = max(width, height)
     pad = 0.06 * side

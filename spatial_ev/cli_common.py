@@ -75,7 +75,8 @@ def add_survey_options(parser: argparse.ArgumentParser, *, species: str = "optio
                           "e.g. 'metre', 'kilometre', 'foot'")
     fmt = parser.add_argument_group("CSV format and data cleaning")
     fmt.add_argument("--delimiter", metavar="C", default=None,
-                     help="CSV field separator of every CSV file, e.g. ';' or 'tab' (default: ',', tab for .tsv)")
+                     help="CSV field separator of every CSV file, e.g. ';' or 'tab' "
+                          "(default: ',', tab for .tsv)")
     fmt.add_argument("--decimal", metavar="C", default=".", choices=(".", ","),
                      help="decimal mark of numbers in the CSV files, '.' (default) or ','")
     fmt.add_argument("--incomplete-sites", choices=("error", "drop"), default="error",

@@ -178,7 +178,8 @@ def check_geographic_ranges(lon: np.ndarray, lat: np.ndarray, *, source: str,
         hint = ("; the values would fit with x and y swapped: x must be the longitude and y "
                 "the latitude (swap the coordinate columns)")
     raise CRSError(f"{source}: {int(bad.sum())} {axis} value(s) outside the valid range "
-                   f"(±{90 if bad is bad_lat else 180} degrees), e.g. {float(values[i])!r}{site}, yet "
+                   f"(±{90 if bad is bad_lat else 180} degrees), e.g. {float(values[i])!r}{site}, "
+                   f"yet "
                    f"the CRS is geographic{hint}; if the coordinates are not degrees, give "
                    f"their projected CRS instead")
 

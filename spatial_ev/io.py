@@ -60,8 +60,9 @@ def file_format(path: str | os.PathLike, *, role: str) -> str:
     if suffix in GIS_SUFFIXES:
         return "gis"
     known = ", ".join(sorted(set(CSV_SUFFIXES) | set(GIS_SUFFIXES)))
-    raise InputError(f"{role} file {str(p)!r} has an unknown format {suffix or '(no extension)'!r}; "
-                     f"supported: {known}")
+    shown = suffix or "(no extension)"
+    raise InputError(f"{role} file {str(p)!r} has an unknown format {shown!r}; supported: "
+                     f"{known}")
 
 
 def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None = None,
@@ -78,7 +79,7 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     --------
     >>> import tempfile, pathlib
     >>> f = pathlib.Path(tempfile.mkdtemp()) / "t.csv"
-    >>> _ = f.write_text("site;depth\nA;1,5\n")
+    >>> _ = f.write_text("site;depth\\nA;1,5\\n")
     >>> read_csv_table(f, role="environment", delimiter=";", decimal=",")["depth"].tolist()
     [1.5]
     """

@@ -443,10 +443,11 @@ def _points_from_columns(table: T.RawTable, x, y, opts: dict) -> None:
         if mask.any():
             i = int(np.flatnonzero(mask)[0])
             raw = table.data[name].astype(str).to_numpy()
+            hint = numeric_hint(raw[mask].tolist(), opts["decimal"])
             raise InputError(f"sites {table.source}: coordinate column {name!r} "
                              f"{table.where(i)} (site {table.ids.iloc[i]!r}) holds "
-                             f"{raw[i]!r}, not a finite number{numeric_hint(raw[mask].tolist(), opts['decimal'])}"
-                             f"; every site needs both coordinates")
+                             f"{raw[i]!r}, not a finite number{hint}; every site needs both "
+                             f"coordinates")
         values.append(numbers)
     geo_named = looks_geographic_name(x, "x") or looks_geographic_name(y, "y")
     in_degrees = bool((np.abs(values[0]) <= 180).all() and (np.abs(values[1]) <= 90).all())

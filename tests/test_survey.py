@@ -485,3 +485,78 @@ class TestReadSurveyValidation:
             read_survey(*files, crs=EPSG_UTM, incomplete_sites="ignore")
         with pytest.raises(errors.CRSError, match="either `crs`.*or `local_unit`"):
             read_survey(*files, crs=EPSG_UTM, local_unit="m")
+
+
+class TestReadSurveyMoreInputs:
+    def test_shapefile_without_prj_needs_a_crs(self, tmp_path, layout):
+        ids, x, y, species, env = layout
+        gpd.GeoDataFrame({"core": ids}, geometry=shapely.points(x, y), crs=EPSG_UTM).to_file(
+            tmp_path / "s.shp")
+        (tmp_path / "s.prj").unlink()
+        _raises_nothing_written(tmp_path, errors.CRSError, r"declares no CRS; pass crs=",
+                                read_survey, tmp_path / "s.shp")
+        s = read_survey(tmp_path / "s.shp", crs=EPSG_UTM)
+        assert s.crs.to_epsg() == EPSG_UTM
+
+    def test_layer_option(self, tmp_path, layout):
+        ids, x, y, species, env = layout
+        gdf = gpd.GeoDataFrame({"core": ids}, geometry=shapely.points(x, y), crs=EPSG_UTM)
+        gdf.to_file(tmp_path / "m.gpkg", layer="cores")
+        gdf.iloc[:6].to_file(tmp_path / "m.gpkg", layer="pilot")
+        assert read_survey(tmp_path / "m.gpkg", layer="pilot").n_sites == 6
+        _raises_nothing_written(tmp_path, errors.InputError, "has 2 layers", read_survey,
+                                tmp_path / "m.gpkg")
+
+    def test_leading_zero_ids_match(self, tmp_path):
+        ids, x, y, species, env = _layout(6)
+        pd.DataFrame({"site": [f"0{i}" for i in range(1, 7)], "x": x, "y": y}).to_csv(
+            tmp_path / "s.csv", index=False)
+        species.set_axis(pd.Index(range(1, 7), name="site")).to_csv(tmp_path / "y.csv")
+        s = read_survey(tmp_path / "s.csv", tmp_path / "y.csv", crs=EPSG_UTM)
+        assert s.site_ids.tolist() == ["01", "02", "03", "04", "05", "06"]  # kept as written
+        assert s.species.iloc[:, 0].tolist() == species.iloc[:, 0].astype(float).tolist()
+
+    def test_degrees_with_projected_crs(self, tmp_path):
+        pd.DataFrame({"site": list("abcdef"), "lon": np.linspace(-3, -2, 6),
+                      "lat": np.linspace(50, 51, 6)}).to_csv(tmp_path / "s.csv", index=False)
+        _raises_nothing_written(tmp_path, errors.CRSError, r"hold degrees but the given CRS "
+                                r"EPSG:32630 .* is projected", read_survey, tmp_path / "s.csv",
+                                crs=EPSG_UTM)
+
+    def test_coordinate_as_first_column_hint(self, tmp_path):
+        pd.DataFrame({"x": [1.0, 2, 3, 4, 5], "y": [5.0, 4, 3, 2, 1], "v": 1}).to_csv(
+            tmp_path / "s.csv", index=False)
+        _raises_nothing_written(tmp_path, errors.InputError, "first column 'x' looks like a "
+                                "coordinate", read_survey, tmp_path / "s.csv", local_unit="m")
+
+    def test_merge_refuses_disagreeing_categories(self, tmp_path, layout):
+        ids, x, y, species, env = layout
+        x, y = x.copy(), y.copy()
+        x[4], y[4] = x[1], y[1]
+        env = env.copy()
+        env.iloc[1, 1], env.iloc[4, 1] = "mud", "sand"
+        paths = _write_csvs(tmp_path, ids, x, y, species, env)
+        _raises_nothing_written(tmp_path, errors.InputError, r"'C001', 'C004' share "
+                                r"coordinates but have different categories", read_survey,
+                                *paths, crs=EPSG_UTM, shared_coordinates="merge")
+
+    def test_frames_with_site_id_column_and_summary_is_plain(self, layout):
+        import json
+
+        ids, x, y, species, env = layout
+        sites = pd.DataFrame({"core": ids, "x": x, "y": y})
+        s = Survey.from_frames(sites, species.reset_index(), env.reset_index(), site_id="core",
+                               crs=EPSG_UTM)
+        assert list(s.species.index) == ids and s.environment.shape == (len(ids), 3)
+        text = json.dumps(s.summary())
+        assert '"n_sites": 12' in text
+
+    def test_species_presence_absence_and_cover(self, tmp_path, files, layout):
+        ids, x, y, species, env = layout
+        cover = (species / species.to_numpy().max() * 100).round(1)
+        cover.to_csv(files[1])
+        s = read_survey(*files, crs=EPSG_UTM)
+        np.testing.assert_allclose(s.species.to_numpy(), cover.to_numpy())
+        (species > 0).astype(int).to_csv(files[1])
+        s = read_survey(*files, crs=EPSG_UTM)
+        assert set(np.unique(s.species.to_numpy())) <= {0.0, 1.0}

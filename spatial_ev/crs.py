@@ -6,9 +6,10 @@ distances, so every survey is brought into a *working* CRS whose map units are l
 * a projected CRS is kept as it is (its map units may be metres, feet, ...);
 * geographic coordinates (degrees) are projected to an azimuthal equidistant projection centred
   on the survey, on the survey's own datum. Distances from the centre are exact; for other pairs
-  the scale error grows roughly with the square of the distance from the centre (about 0.01 % at
-  150 km), which is negligible for field surveys up to a few hundred kilometres across. Surveys
-  spanning continents need a CRS chosen by the user;
+  the scale error grows roughly with the square of the distance from the centre (c/sin c − 1 for
+  angular distance c: about 0.01 % at 150 km, 1 % at 1,500 km), which is negligible for field
+  surveys up to a few hundred kilometres across. Beyond 1 % the reader refuses and asks for a
+  projected CRS chosen by the user;
 * local planar coordinates (no CRS) are used as given, in the unit the user declares.
 
 Assumption: the working CRS is a faithful planar representation of the survey; a conformal or
@@ -48,6 +49,8 @@ _LOCAL_UNITS = {
     "mile": "mile", "miles": "mile", "mi": "mile",
     "grid cell": "grid cell", "cell": "grid cell", "cells": "grid cell",
 }
+
+MAX_SCALE_ERROR = 0.01  # largest tolerated distance distortion of the local projection
 
 _LAT_NAMES = {"lat", "latitude", "lat_dd", "latitude_dd", "decimallatitude", "lat_deg", "y_lat"}
 _LON_NAMES = {"lon", "long", "lng", "longitude", "lon_dd", "longitude_dd", "decimallongitude",
@@ -216,14 +219,24 @@ def local_metric_crs(lon: np.ndarray, lat: np.ndarray,
     cx, cy, cz = mean / norm
     lat0 = round(float(np.degrees(np.arcsin(np.clip(cz, -1, 1)))), 6)
     lon0 = round(float(np.degrees(np.arctan2(cy, cx))), 6)
+    # perpendicular scale of the azimuthal equidistant projection at angular distance c from
+    # the centre is c / sin(c) [derived]; the farthest site bounds the distortion
+    c = float(np.arccos(np.clip(xyz @ (mean / norm), -1.0, 1.0)).max())
+    scale_error = c / np.sin(c) - 1.0 if c > 1e-12 else 0.0
+    if scale_error > MAX_SCALE_ERROR:
+        raise CRSError(f"the sites extend {np.degrees(c):.1f} degrees from their centre; a "
+                       f"local azimuthal equidistant projection would distort distances by up "
+                       f"to {100 * scale_error:.1f} %; give the survey in a projected CRS "
+                       f"suited to its region")
     base = (geodetic_crs or pyproj.CRS(4326)).geodetic_crs
     name = f"Azimuthal equidistant centred on {lat0:.6f}, {lon0:.6f} ({base.name})"
     crs = ProjectedCRS(conversion=AzimuthalEquidistantConversion(lat0, lon0),
                        geodetic_crs=base, name=name)
     note = (f"geographic coordinates (degrees, {base.name}) were projected to an azimuthal "
             f"equidistant projection centred on the survey (latitude {lat0:.6f}, longitude "
-            f"{lon0:.6f}); distances are in metres, exact from the centre and within about "
-            f"0.01 % for pairs within 150 km of it")
+            f"{lon0:.6f}); distances are in metres, exact from the centre; scale error at "
+            f"most {100 * scale_error:.2g} % (farthest site {np.degrees(c) * 111.2:.0f} km "
+            f"from the centre)")
     return crs, note
 
 

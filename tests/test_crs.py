@@ -73,6 +73,12 @@ class TestLocalMetricCrs:
         _, _, d = pyproj.Geod(ellps="WGS84").inv(lon0, lat0, -18.0, 66.0)
         assert np.hypot(x, y) == pytest.approx(d, rel=1e-9)
 
+    def test_continental_extent_rejected(self):
+        with pytest.raises(errors.CRSError, match=r"would distort distances by up to 1\.[0-9] %"):
+            local_metric_crs(np.array([-10.0, 30.0]), np.array([40.0, 60.0]))
+        crs, note = local_metric_crs(np.array([-10.0, 10.0]), np.array([45.0, 55.0]))
+        assert "scale error at most 0.33 %" in note  # c = 0.141 rad: c/sin(c) - 1 [derived]
+
     def test_whole_globe_rejected(self):
         with pytest.raises(errors.CRSError, match="whole globe"):
             local_metric_crs(np.array([0.0, 180.0]), np.array([0.0, 0.0]))

@@ -170,6 +170,35 @@ class TestRenderReport:
         assert "No spatial vector was selected." in _section(page, "selected")
         assert "no spatial structure to map" in _section(page, "scale_maps")
 
+    def test_summary_style_column_names(self, context):
+        space = context["selected_space"].rename(columns={"vector": "name",
+                                                          "scale_class": "class"})
+        env = context["selected_environment"].rename(columns={"variable": "name",
+                                                              "r2_adj_cum": "r2_adj"})
+        page = render_report(_light(context, selected_space=space, selected_environment=env))
+        selected = _section(page, "selected")
+        assert "<td>sv001</td>" in selected and "<td>soil_pH</td>" in selected
+        assert "0.191" in selected and "medium" in selected
+
+    def test_map_units_without_distance_unit(self, context):
+        data = dict(context["data"], distance_unit=None)
+        page = render_report(_light(context, data=data,
+                                    selected_space=context["selected_space"]))
+        assert "scale (map units)" in _section(page, "selected")
+
+    def test_errors_name_the_context_entry(self, context):
+        bad = dict(context["partition"], fractions=context["partition"]["fractions"].drop(
+            columns="testable"))
+        with pytest.raises(InputError, match=r"context\['partition'\]: `fractions` lacks "
+                                             r"column\(s\) 'testable'"):
+            render_report(_light(context, partition=bad))
+        with pytest.raises(InputError, match=r"context\['selected_space'\]: needs a column "
+                                             r"'vector' or 'name'"):
+            render_report(_light(context, selected_space=context["selected_space"].drop(
+                columns="vector")))
+        with pytest.raises(InputError, match=r"context\['lcbd'\] lacks the entry 'column'"):
+            render_report(_light(context, lcbd={"sites": context["lcbd"]["sites"]}))
+
     def test_validation(self, context):
         with pytest.raises(InputError, match="`context` must be a mapping"):
             render_report([("title", "x")])  # type: ignore[arg-type]

@@ -233,9 +233,12 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
         xmin, xmax = min(xmin, gx[0]), max(xmax, gx[-1])
         ymin, ymax = min(ymin, gy[0]), max(ymax, gy[-1])
     if set(sites.geometry.geom_type) == {"Point"}:
-        size = float(np.clip(4000.0 / len(sites), 6.0, 60.0))
+        # many sites: smaller dots without outlines (outlines would hide the colours), and
+        # rasterised in vector output so an SVG of 100,000 sites stays light
+        size = float(np.clip(4000.0 / len(sites), 2.0, 60.0))
         ax.scatter(sites.geometry.x, sites.geometry.y, c=values, cmap=cmap, norm=norm, s=size,
-                   edgecolor=st.INK, linewidth=0.35, zorder=3, gid="sites")
+                   edgecolor=st.INK, linewidth=0.35 if len(sites) <= 2000 else 0.0, zorder=3,
+                   gid="sites", rasterized=len(sites) > 5000)
     else:
         frame = gpd.GeoDataFrame({"_value": values}, geometry=sites.geometry.to_numpy(),
                                  crs=sites.crs)

@@ -1,0 +1,230 @@
+"""Turn an :class:`~spatial_ev.analysis.Analysis` into the report context and map layers.
+
+Only reading and re-shaping here: every number comes from the analysis result. The context
+follows the contract documented in :mod:`spatial_ev.report.html`.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+from typing import Any
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+
+from .. import __version__
+
+__all__ = ["analysis_context", "map_layers"]
+
+_TREND = {True: "covariable", False: "none"}
+
+
+def _scheme_parts(name: str) -> dict[str, Any]:
+    if name == "distance":
+        return {"family": "distance", "method": "distance_based", "weighting": "truncated"}
+    if name == "none":
+        return {"family": "distance", "method": "none selected", "weighting": "-"}
+    graph, _, weighting = name.partition("/")
+    return {"family": "graph", "method": graph, "weighting": weighting}
+
+
+def _surface(grid_scores: pd.DataFrame | None, column: str) -> dict | None:
+    """Rebuild the regular grid (1-D x, y; 2-D values with NaN outside the hull)."""
+    if grid_scores is None or grid_scores.empty:
+        return None
+    gx = np.unique(grid_scores["x"].to_numpy())
+    gy = np.unique(grid_scores["y"].to_numpy())
+    values = np.full((gy.size, gx.size), np.nan)
+    ix = np.searchsorted(gx, grid_scores["x"].to_numpy())
+    iy = np.searchsorted(gy, grid_scores["y"].to_numpy())
+    values[iy, ix] = grid_scores[column].to_numpy()
+    return {"x": gx, "y": gy, "values": values}
+
+
+def _site_frame(analysis, values: pd.DataFrame) -> gpd.GeoDataFrame:
+    sites = analysis.survey.sites
+    return gpd.GeoDataFrame(values.copy(), geometry=sites.geometry.reindex(values.index),
+                            crs=sites.crs)
+
+
+def analysis_context(analysis, *, title: str | None = None,
+                     subtitle: str | None = None) -> dict[str, Any]:
+    """Build the report context (see :mod:`spatial_ev.report.html`) from an analysis.
+
+    Parameters
+    ----------
+    analysis : spatial_ev.analysis.Analysis
+    title, subtitle : str, optional
+        Page title and subtitle.
+
+    Returns
+    -------
+    dict
+
+    Examples
+    --------
+    >>> ctx = analysis_context(result)  # doctest: +SKIP
+    >>> ctx["data"]["n_sites"]  # doctest: +SKIP
+    220
+    """
+    a = analysis
+    survey = a.survey
+    info = survey.summary()
+    unit = survey.distance_unit
+    basis = a.basis
+    settings = a.settings
+    reasons: dict[str, str] = {}
+
+    data = {
+        "n_sites": survey.n_sites, "n_species": survey.n_species,
+        "n_variables": 0 if survey.environment is None else survey.environment.shape[1],
+        "crs": info["crs"], "source_crs": info["source_crs"],
+        "projection_note": info["projection_note"], "distance_unit": unit,
+        "geometry_type": survey.geometry_type,
+        "extent": {k: info["extent"][k] for k in ("xmin", "ymin", "xmax", "ymax")},
+        "spacing": {"nearest_min": info["spacing"]["min"],
+                    "nearest_median": info["spacing"]["median"],
+                    "nearest_max": info["spacing"]["max"]},
+        "species_names": [str(c) for c in survey.species.columns],
+        "variable_names": info["environment_columns"],
+        "dropped": {k: [str(v) for v in vals] for k, vals in info["dropped"].items()},
+    }
+    chosen = settings["chosen_scheme"]
+    env_sel = a.environment_selection
+    methods = {
+        "transformation": settings["transformation"],
+        "trend": _TREND[a.trend_kept],
+        "basis": {**_scheme_parts(chosen), "threshold": basis.threshold,
+                  "n_vectors": basis.n_vectors, "sign": "positive"},
+        "schemes_compared": list(a.weighting.table.index),
+        "corrected_alpha": a.weighting.alpha_corrected if a.weighting.n_schemes > 1 else None,
+        "chosen_scheme": chosen, "alpha": settings["alpha"],
+        "selection": "forward_double_stop",
+        "n_permutations": settings["n_permutations"],
+        "permutation_method": "reduced_residual", "seed": settings["seed"],
+    }
+
+    partition = None
+    if a.fractions is not None:
+        f, t = a.fractions, a.fraction_tests or {}
+        partition = {"fractions": pd.DataFrame({
+            "name": ["[a] environment only", "[b] shared", "[c] space only", "[d] unexplained"],
+            "members": [("environment",), ("environment", "space"), ("space",), ()],
+            "r2_adj": [f["environment_only"], f["shared"], f["space_only"], f["unexplained"]],
+            "testable": [True, False, True, False],
+            "p": [t.get("environment_only"), None, t.get("space_only"), None]}),
+            "alpha": settings["alpha"]}
+    else:
+        reasons["partition"] = ("no environmental table was given, so the analysis is spatial "
+                                "only and there is nothing to partition")
+
+    selected_env = a.environment_table() if env_sel is not None else None
+    if env_sel is None:
+        reasons.setdefault("selected", "no environmental table was given")
+    space_table = a.space_table()
+
+    classes = pd.DataFrame({
+        "name": [fit.scale_class.name for fit in a.scale_fits],
+        "low": [fit.scale_class.bounds[0] for fit in a.scale_fits],
+        "high": [min(fit.scale_class.bounds[1], float(basis.scale.max()) * 1.05)
+                 for fit in a.scale_fits]})
+    classes["low"] = classes["low"].clip(lower=float(basis.scale.min()) * 0.95)
+    scal = {"r2": a.scalogram["r2"], "scale": a.scalogram["scale"],
+            "selected": list(a.selected_space), "classes": classes}
+    basis_moran = {"moran_i": basis.moran_i, "scale": basis.scale,
+                   "selected": list(a.selected_space), "expected": -1.0 / (survey.n_sites - 1)}
+
+    wt = a.weighting.table
+    weighting = None
+    if len(wt) > 1:
+        weighting = {"table": pd.DataFrame({"scheme": list(wt.index),
+                                            "r2_adj": wt["r2_adj"].to_numpy(dtype=float),
+                                            "p": wt["global_p"].to_numpy(dtype=float)}),
+                     "alpha": settings["alpha"], "corrected_alpha": a.weighting.alpha_corrected,
+                     "chosen": a.weighting.best}
+    else:
+        reasons["weighting"] = f"one scheme was named ({chosen}); nothing was compared"
+
+    scale_maps = []
+    for fit in a.scale_fits:
+        if fit.site_scores is None:
+            continue
+        sc = fit.scale_class
+        entry = {"name": sc.name, "scale_range": sc.scale_range, "vectors": list(sc.vectors),
+                 "r2_adj": fit.r2_adj, "p": fit.p_value,
+                 "sites": _site_frame(a, fit.site_scores[["axis_1"]].rename(
+                     columns={"axis_1": "fitted"})),
+                 "column": "fitted"}
+        surface = _surface(fit.grid_scores, "axis_1")
+        if surface is not None:
+            entry["surface"] = surface
+        scale_maps.append(entry)
+    if not scale_maps:
+        reasons["scale_maps"] = ("no spatial vector was selected, so there is no spatial "
+                                 "structure to map")
+
+    lcbd_frame = a.beta.to_frame()
+    lcbd = {"sites": _site_frame(a, lcbd_frame), "column": "lcbd",
+            "p_column": "p" if "p" in lcbd_frame else None, "alpha": settings["alpha"]}
+
+    rda = a.ordination
+    triplot = {"eigenvalues": None, "total_variance": rda.total_variance, "n_labels": 10}
+    has_axes = len(rda.canonical_eigenvalues) >= 2 or \
+        (len(rda.canonical_eigenvalues) == 0 and len(rda.residual_eigenvalues) >= 2)
+    if has_axes:
+        eig = rda.canonical_eigenvalues if len(rda.canonical_eigenvalues) \
+            else rda.residual_eigenvalues
+        triplot["eigenvalues"] = eig
+        for scaling in (1, 2):
+            triplot[f"scaling_{scaling}"] = {
+                "sites": rda.site_scores(scaling),
+                "species": rda.species_scores(scaling),
+                "variables": rda.biplot_scores(scaling) if len(rda.canonical_eigenvalues)
+                else None}
+    else:
+        triplot = None
+        reasons["triplot"] = ("the ordination has fewer than two axes (a single selected "
+                              "environmental variable); a triplot needs two")
+
+    notes = list(a.notes)
+    limits = {"finest_scale": float(basis.scale.min()),
+              "broadest_scale": float(basis.scale.max()),
+              "n_positive_vectors": int(basis.n_vectors), "notes": notes}
+
+    return {
+        "title": title or "Spatial structure of the survey community",
+        "subtitle": subtitle or f"{survey.n_sites} sites, {survey.n_species} species",
+        "illustrative": False, "version": __version__,
+        "generated": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "missing_reasons": reasons, "data": data, "methods": methods, "partition": partition,
+        "selected_environment": selected_env, "selected_space": space_table,
+        "scalogram": scal, "basis_moran": basis_moran, "weighting": weighting,
+        "scale_maps": scale_maps or None, "lcbd": lcbd, "triplot": triplot, "limits": limits,
+    }
+
+
+def map_layers(analysis) -> dict[str, gpd.GeoDataFrame]:
+    """GeoPackage layers: one per scale class (site scores, original geometry), the LCBD layer,
+    and one grid layer per scale class with the structure predicted at unsampled points.
+
+    Examples
+    --------
+    >>> sorted(map_layers(result))[:2]  # doctest: +SKIP
+    ['lcbd', 'scale_broad']
+    """
+    a = analysis
+    crs = a.survey.sites.crs
+    layers: dict[str, gpd.GeoDataFrame] = {}
+    for fit in a.scale_fits:
+        if fit.site_scores is None:
+            continue
+        key = fit.scale_class.name.replace(" ", "_")
+        layers[f"scale_{key}"] = _site_frame(a, fit.site_scores)
+        if fit.grid_scores is not None and not fit.grid_scores.empty:
+            g = fit.grid_scores
+            layers[f"scale_{key}_grid"] = gpd.GeoDataFrame(
+                g.drop(columns=["x", "y"]), geometry=gpd.points_from_xy(g["x"], g["y"]),
+                crs=crs)
+    layers["lcbd"] = _site_frame(a, a.beta.to_frame())
+    return layers

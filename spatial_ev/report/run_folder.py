@@ -1,0 +1,171 @@
+"""Write a whole-analysis run folder: summary, manifest, tables, figures, maps and report.
+
+Layout of a run folder::
+
+    summary.json      machine-readable results (the public contract)
+    manifest.json     versions, inputs' SHA-256, every parameter, the seed
+    report.html       self-contained report (figures embedded)
+    figures/          every figure as PNG and SVG
+    tables/           CSV tables (fractions, selections, scalogram, LCBD, ...)
+    maps.gpkg         one layer per scale class (sites), predicted grids, LCBD
+    inputs/           (demo only) the survey files that were analysed
+
+The folder is written inside :func:`~spatial_ev.report.folder.atomic_folder`: whole or absent.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import platform
+import sys
+from collections.abc import Callable, Mapping
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from .. import __version__
+from .context import analysis_context, map_layers
+from .folder import atomic_folder
+from .html import write_report
+from .layers import write_layers, write_table
+
+__all__ = ["write_run_folder", "manifest"]
+
+_LIBRARIES = ("numpy", "scipy", "pandas", "geopandas", "shapely", "pyproj", "pyogrio",
+              "matplotlib", "jinja2", "rich", "threadpoolctl")
+
+
+def _sha256(path: str | os.PathLike) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _blas() -> list[dict[str, Any]]:
+    from threadpoolctl import threadpool_info
+
+    return [{"api": i.get("internal_api"), "kernel": i.get("architecture"),
+             "threads": i.get("num_threads"), "version": i.get("version")}
+            for i in threadpool_info()]
+
+
+def manifest(analysis, *, inputs: Mapping[str, str | os.PathLike] | None = None,
+             parameters: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """Provenance of a run: versions, inputs' SHA-256, parameters and seed.
+
+    Examples
+    --------
+    >>> manifest(result)["package"]["version"]  # doctest: +SKIP
+    '0.1.0'
+    """
+    versions = {}
+    for lib in _LIBRARIES:
+        try:
+            versions[lib] = metadata.version(lib)
+        except metadata.PackageNotFoundError:  # pragma: no cover - optional
+            versions[lib] = None
+    files = {}
+    sources = dict(inputs) if inputs is not None else dict(analysis.survey.sources)
+    for role, path in sources.items():
+        if path is not None and Path(path).is_file():
+            files[role] = {"path": str(path), "sha256": _sha256(path),
+                           "bytes": Path(path).stat().st_size}
+    return {
+        "package": {"name": "spatial_ev", "version": __version__},
+        "python": sys.version.split()[0], "platform": platform.platform(),
+        "libraries": versions, "blas": _blas(),
+        "openblas_coretype": os.environ.get("OPENBLAS_CORETYPE"),
+        "inputs": files,
+        "parameters": {**analysis.settings, **(dict(parameters) if parameters else {})},
+        "seed": analysis.settings["seed"],
+    }
+
+
+def _tables(analysis) -> dict[str, pd.DataFrame]:
+    a = analysis
+    out: dict[str, pd.DataFrame] = {}
+    if a.fractions is not None:
+        tests = a.fraction_tests or {}
+        out["fractions"] = pd.DataFrame(
+            {"fraction": ["[a]", "[b]", "[c]", "[d]"],
+             "r2_adj": [a.fractions[k] for k in ("environment_only", "shared", "space_only",
+                                                 "unexplained")],
+             "testable": [True, False, True, False],
+             "p": [tests.get("environment_only"), None, tests.get("space_only"), None]},
+            index=pd.Index(["environment_only", "shared", "space_only", "unexplained"],
+                           name="key"))
+    if a.environment_selection is not None:
+        out["environment_selection_steps"] = a.environment_selection.steps
+    if a.space_selection is not None:
+        out["space_selection_steps"] = a.space_selection.steps
+    out["selected_space"] = a.space_table().set_index("vector")
+    out["weighting_schemes"] = a.weighting.table
+    out["spatial_basis"] = a.basis.to_frame()
+    out["scalogram"] = a.scalogram
+    out["scale_classes"] = pd.DataFrame(
+        [{"class": f.scale_class.name, "lower": f.scale_class.bounds[0],
+          "upper": f.scale_class.bounds[1], "n_vectors": len(f.scale_class.vectors),
+          "vectors": " ".join(f.scale_class.vectors), "r2_adj": f.r2_adj, "p": f.p_value}
+         for f in a.scale_fits]).set_index("class")
+    out["lcbd"] = a.beta.to_frame()
+    if a.selected_space:
+        out["selected_vectors_at_sites"] = a.basis.vectors[list(a.selected_space)]
+    return out
+
+
+def write_run_folder(analysis, out: str | os.PathLike, *, overwrite: bool = False,
+                     inputs: Mapping[str, str | os.PathLike] | None = None,
+                     parameters: Mapping[str, Any] | None = None,
+                     title: str | None = None,
+                     before_commit: Callable[[Path], None] | None = None) -> Path:
+    """Write the run folder of an analysis, atomically.
+
+    Parameters
+    ----------
+    analysis : spatial_ev.analysis.Analysis
+    out : path
+        The folder to create; an existing one is replaced only with ``overwrite=True``.
+    inputs : mapping, optional
+        Role → input file, hashed into the manifest (default: the survey's sources).
+    parameters : mapping, optional
+        Extra parameters to record (e.g. the command line).
+    title : str, optional
+        Report title.
+    before_commit : callable, optional
+        Called with the temporary folder before it is renamed into place (e.g. to copy the
+        analysed input files into it).
+
+    Returns
+    -------
+    pathlib.Path
+        ``out``.
+
+    Examples
+    --------
+    >>> write_run_folder(result, "run-1")  # doctest: +SKIP
+    PosixPath('run-1')
+    """
+    out = Path(out)
+    summary = analysis.summary_dict()
+    context = analysis_context(analysis, title=title)
+    with atomic_folder(out, overwrite=overwrite) as tmp:
+        (tmp / "summary.json").write_text(json.dumps(summary, indent=2, allow_nan=False) + "\n",
+                                          encoding="utf-8")
+        tables = tmp / "tables"
+        tables.mkdir()
+        for name, table in _tables(analysis).items():
+            write_table(tables / f"{name}.csv", table)
+        write_layers(tmp / "maps.gpkg", map_layers(analysis))
+        write_report(context, tmp)
+        if before_commit is not None:
+            before_commit(tmp)
+        record = manifest(analysis, inputs=inputs, parameters=parameters)
+        (tmp / "manifest.json").write_text(json.dumps(record, indent=2, default=str) + "\n",
+                                           encoding="utf-8")
+    return out

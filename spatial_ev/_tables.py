@@ -122,9 +122,13 @@ def check_ids(table: RawTable) -> pd.Index:
     return keys
 
 
-def align(table: RawTable, keys: pd.Index, site_keys: pd.Index, sites_source: str) -> np.ndarray:
-    """Positions of the site table's ids in ``table``; raises on ids missing on either side."""
-    order = keys.get_indexer(site_keys)
+def align(table: RawTable, site_keys: pd.Index, sites_source: str) -> np.ndarray:
+    """Positions of the site table's ids in ``table``; raises on ids that match no site,
+    duplicated ids, or ids missing on either side."""
+    keys = id_keys(table.ids)
+    if keys.isin(site_keys).any():
+        keys = check_ids(table)
+    order = keys.get_indexer(site_keys) if keys.is_unique else np.full(len(site_keys), -1)
     missing = site_keys[order < 0]
     extra = keys[~keys.isin(site_keys)]
     if len(missing) == 0 and len(extra) == 0:
@@ -135,13 +139,19 @@ def align(table: RawTable, keys: pd.Index, site_keys: pd.Index, sites_source: st
                          f"site ids; put one row per site and one column per "
                          f"{'species' if table.role == 'species' else 'variable'}, with the "
                          f"site ids in the first column")
-    parts = []
-    if len(missing):
-        parts.append(f"{len(missing)} site(s) of the sites table {sites_source} are missing "
-                     f"from it: {listed(missing)}")
-    if len(extra):
-        parts.append(f"{len(extra)} of its site id(s) are not in the sites table: "
-                     f"{listed(extra)}")
+    if not keys.isin(site_keys).any():
+        parts = [f"none of its ids (column {table.id_name!r}, e.g. {keys[0]!r}) matches a site "
+                 f"id of the sites table {sites_source} (e.g. {site_keys[0]!r}); is "
+                 f"{table.id_name!r} the site-id column? Put the ids in the first column or "
+                 f"pass site_id= (--site-id)"]
+    else:
+        parts = []
+        if len(missing):
+            parts.append(f"{len(missing)} site(s) of the sites table {sites_source} are "
+                         f"missing from it: {listed(missing)}")
+        if len(extra):
+            parts.append(f"{len(extra)} of its site id(s) are not in the sites table: "
+                         f"{listed(extra)}")
     raise InputError(f"{table.role} {table.source}: {'; '.join(parts)}; every table needs "
                      f"exactly one row per site with the same ids (column {table.id_name!r})")
 

@@ -174,6 +174,9 @@ class Survey:
                  f"{self.site_ids.name!r}"]
         for role, src in self.sources.items():
             lines.append(f"  {role} source: {src}")
+        attributes = [str(c) for c in self.sites.columns if c != self.sites.geometry.name]
+        if attributes:
+            lines.append(f"  other site attributes (not analysed): {T.listed(attributes, 8)}")
         if self.species is None:
             lines.append("species: none given")
         else:
@@ -482,11 +485,11 @@ def _assemble(site_table: T.RawTable, tables: dict, opts: dict, sources: dict) -
     species = env_cols = None
     if "species" in tables:
         t = tables["species"]
-        order = T.align(t, T.check_ids(t), site_keys, site_table.source)
+        order = T.align(t, site_keys, site_table.source)
         species = T.species_matrix(t, order, index, opts["decimal"])
     if "environment" in tables:
         t = tables["environment"]
-        order = T.align(t, T.check_ids(t), site_keys, site_table.source)
+        order = T.align(t, site_keys, site_table.source)
         env_cols = T.environment_columns(t, order, index, opts["decimal"])
 
     keep = np.ones(len(index), dtype=bool)

@@ -560,3 +560,10 @@ class TestReadSurveyMoreInputs:
         (species > 0).astype(int).to_csv(files[1])
         s = read_survey(*files, crs=EPSG_UTM)
         assert set(np.unique(s.species.to_numpy())) <= {0.0, 1.0}
+
+    def test_species_table_without_id_column(self, tmp_path, files, layout):
+        ids, x, y, species, env = layout
+        species.to_csv(files[1], index=False)
+        _raises_nothing_written(tmp_path, errors.InputError, r"none of its ids \(column 'BTX01'"
+                                r".*is 'BTX01' the site-id column\?", read_survey, *files,
+                                crs=EPSG_UTM)

@@ -63,6 +63,8 @@ class ForwardSelection:
         are too many candidates for the number of sites).
     r2_adj_limit : float
         The adjusted-R² ceiling used by the second stopping rule (``inf`` = none).
+    ceiling : str
+        How the ceiling was applied: ``"strict"`` or ``"keep_last"``.
     stop_reason : str
         Why selection ended.
     alpha : float
@@ -81,6 +83,7 @@ class ForwardSelection:
     global_test: Any = field(repr=False)
     r2_adj_global: float | None
     r2_adj_limit: float
+    ceiling: str
     stop_reason: str
     alpha: float
     ranking: str
@@ -132,6 +135,7 @@ def forward_selection(
     seed: None | int | np.random.Generator = None,
     global_test: str = "required",
     r2_adj_limit: float | None = None,
+    ceiling: str = "strict",
     max_variables: int | None = None,
     engine: str = "local",
     scheduler: Any = None,
@@ -160,6 +164,11 @@ def forward_selection(
     r2_adj_limit : float, optional
         Ceiling for the adjusted R² of the selected model; default the adjusted R² of the global
         model; ``numpy.inf`` disables the second stopping rule.
+    ceiling : {"strict", "keep_last"}
+        "strict": a candidate that would lift the adjusted R² above the ceiling is not added
+        (as in Blanchet et al. 2008). "keep_last": it is added if significant, then selection
+        stops. With one real variable among weak ones, "strict" selects nothing in about half
+        of the cases because the global model's adjusted R² is diluted (see Notes).
     max_variables : int, optional
         Stop after this many variables.
     engine, scheduler :
@@ -178,10 +187,13 @@ def forward_selection(
     (spatial eigenvectors), each one's contribution is ‖Yᵀu‖²/SS and never changes, so they
     are ranked once. Otherwise the remaining candidates are orthogonalised against each entry
     (one rank-one update per step) and their contributions recomputed in one matrix product.
-    The adjusted-R² ceiling is applied as published: a candidate that would lift the selected
-    model above the global model's adjusted R² is not added, even the first one (then nothing is
-    selected although the global test was significant; ``stop_reason`` says so). Each entry is
-    tested by a partial permutation test with reduced-model residual permutation
+    With ``ceiling="strict"`` a candidate that would lift the selected model above the global
+    model's adjusted R² is not added, even the first one: then nothing is selected although the
+    global test was significant, and ``stop_reason`` says so. Simulated with one real variable
+    among 3–9 pure-noise candidates (n = 40–200), this happened in 52–58% of significant global
+    tests; ``ceiling="keep_last"`` always kept it but added more false variables (0.18–0.34
+    per analysis instead of 0.05–0.17; 300 replicates per setting, 99 permutations). Each entry
+    is tested by a partial permutation test with reduced-model residual permutation
     (Freedman & Lane 1983). Selected models are optimistic: a p-value of a variable after
     selection is not a valid test of that variable.
 
@@ -197,6 +209,7 @@ def forward_selection(
     alpha = check_real("alpha", alpha, low=0, high=1, low_inclusive=False)
     n_permutations = check_int("n_permutations", n_permutations, low=1)
     global_test = check_option("global_test", global_test, ["required", "skip"])
+    ceiling = check_option("ceiling", ceiling, ["strict", "keep_last"])
     if r2_adj_limit is not None:
         if not (isinstance(r2_adj_limit, (int, float)) and r2_adj_limit == np.inf):
             r2_adj_limit = check_real("r2_adj_limit", r2_adj_limit, high=1)
@@ -205,13 +218,13 @@ def forward_selection(
     check_option("engine", engine, ["local", "dask"])
     return _select(Yc, Z, names, cond, alpha_global=alpha, alpha=alpha,
                    n_permutations=n_permutations, rng=check_rng(seed),
-                   global_test=global_test, r2_adj_limit=r2_adj_limit,
+                   global_test=global_test, r2_adj_limit=r2_adj_limit, ceiling=ceiling,
                    max_variables=max_variables, engine=engine, scheduler=scheduler,
                    progress=progress)
 
 
 def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, global_test,
-            r2_adj_limit, max_variables, engine, scheduler, progress,
+            r2_adj_limit, max_variables, engine, scheduler, progress, ceiling="strict",
             global_result=None) -> ForwardSelection:
     """Forward selection on clean inputs (Yc centred; Z, cond raw columns)."""
     n = Yc.shape[0]
@@ -242,10 +255,13 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
                       f"collinear with the conditioning variables and were not considered",
                       DroppedVariablesWarning, stacklevel=3)
 
-    # global model
-    Qg = _column_basis(Zr[:, ~dead], Qc)[0]
-    m_g = Qg.shape[1]
-    r2_g = float(np.sum((Qg.T @ Yr) ** 2)) / total_ss
+    # global model: with orthogonal candidates its R² is the sum of their contributions
+    ranker = _make_ranker(Yr, Zr, ~dead, raw_norms2, total_ss)
+    if ranker.kind == "orthogonal":
+        m_g, r2_g = int(np.count_nonzero(~dead)), float(np.sum(ranker.gains()[~dead]))
+    else:
+        Qg = _column_basis(Zr[:, ~dead], Qc)[0]
+        m_g, r2_g = Qg.shape[1], float(np.sum((Qg.T @ Yr) ** 2)) / total_ss
     r2_adj_global = None
     if n - m_c - m_g - 1 > 0:
         r2_adj_global = adjusted_r2(r2_c + r2_g, n, m_c + m_g) - base_adj
@@ -271,10 +287,9 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
         return ForwardSelection(
             selected=tuple(r["variable"] for r in rows if r["added"]), steps=steps,
             global_test=gtest, r2_adj_global=r2_adj_global, r2_adj_limit=float(limit),
-            stop_reason=reason, alpha=alpha, ranking=ranking, n_candidates=len(names),
+            ceiling=ceiling, stop_reason=reason, alpha=alpha, ranking=ranking, n_candidates=len(names),
             n_permutations=n_permutations)
 
-    ranker = _make_ranker(Yr, Zr, ~dead, raw_norms2, total_ss)
     ranking = ranker.kind
     if gtest is not None and gtest.p_value > alpha_global:
         return finish(f"global test not significant (p = {gtest.p_value:.4g} > {alpha_global:g})")
@@ -301,16 +316,16 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
         row = {"variable": names[j], "r2": r2_new, "r2_adj": adj_new,
                "r2_adj_gain": adj_new - adj_prev, "pseudo_f": np.nan, "p_value": np.nan,
                "added": False}
-        if adj_new > limit:
+        crossing = adj_new > limit
+        what = "the global model's adjusted R²" if r2_adj_limit is None else "r2_adj_limit"
+        if crossing and ceiling == "strict":
             row["decision"] = f"not added: adjusted R² {adj_new:.4f} would exceed {limit:.4f}"
             rows.append(row)
-            reason = "adjusted R² would exceed the limit (global model's adjusted R²)" \
-                if r2_adj_limit is None else "adjusted R² would exceed r2_adj_limit"
+            reason = f"adjusted R² would exceed {what}"
             if not chosen:
-                reason += ("; the first candidate alone exceeds it, so under the published "
-                           "rule nothing is selected: the global model is diluted by weak "
-                           "candidates (offer fewer candidates, or pass r2_adj_limit=numpy.inf "
-                           "to rely on the p-value rule alone)")
+                reason += ("; the first candidate alone exceeds it, so under the strict rule "
+                           "nothing is selected: the global model is diluted by weak "
+                           "candidates (offer fewer candidates, or use ceiling='keep_last')")
             break
         if progress is not None:
             progress(f"step {len(chosen) + 1}: testing {names[j]}")
@@ -327,6 +342,10 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
         chosen.append(j)
         r2_sel = r2_new
         ranker.enter(j)
+        if crossing:  # ceiling="keep_last": the crossing variable is kept, then stop
+            row["decision"] = f"added; adjusted R² {adj_new:.4f} reaches {limit:.4f}"
+            reason = f"adjusted R² reached {what}"
+            break
     return finish(reason)
 
 
@@ -507,6 +526,7 @@ def compare_weighting_schemes(
     seed: None | int | np.random.Generator = None,
     conditioning: Any = None,
     sign: str = "positive",
+    ceiling: str = "strict",
     engine: str = "local",
     scheduler: Any = None,
     progress: Callable[[str], None] | None = None,
@@ -541,6 +561,8 @@ def compare_weighting_schemes(
         Variables removed first (all tests partial).
     sign : {"positive", "negative", "all"}
         Which eigenvectors are candidates (by the sign of their Moran's I).
+    ceiling : {"strict", "keep_last"}
+        Adjusted-R² stopping rule of the forward selections (see :func:`forward_selection`).
     engine, scheduler, progress :
         As in :func:`forward_selection`.
 
@@ -566,6 +588,7 @@ def compare_weighting_schemes(
     alpha = check_real("alpha", alpha, low=0, high=1, low_inclusive=False, high_inclusive=False)
     n_permutations = check_int("n_permutations", n_permutations, low=1)
     check_option("sign", sign, ["positive", "negative", "all"])
+    check_option("ceiling", ceiling, ["strict", "keep_last"])
     check_option("engine", engine, ["local", "dask"])
     k = len(parsed)
     level = sidak_level(alpha, k)
@@ -624,7 +647,7 @@ def compare_weighting_schemes(
         sel = _select(Yc, vectors.to_numpy(), tuple(map(str, vectors.columns)), cond,
                       alpha_global=level, alpha=alpha, n_permutations=n_permutations, rng=rng,
                       global_test="required", r2_adj_limit=None, max_variables=None,
-                      engine=engine, scheduler=scheduler, progress=progress,
+                      ceiling=ceiling, engine=engine, scheduler=scheduler, progress=progress,
                       global_result=gtest)
         row["n_selected"], row["r2_adj"] = len(sel.selected), sel.r2_adj
         if sel.selected and (best_sel is None or sel.r2_adj > best_sel.r2_adj):

@@ -101,7 +101,7 @@ class TestForwardSelection:
         assert sel.r2_adj <= sel.r2_adj_global
         assert not last["added"] and last["r2_adj"] > sel.r2_adj_global
         assert np.isnan(last["p_value"])                     # not tested: the ceiling came first
-        assert sel.stop_reason.startswith("adjusted R² would exceed")
+        assert sel.stop_reason.startswith("adjusted R² would exceed the global model's")
         free = forward_selection(Y, X, n_permutations=199, seed=1, r2_adj_limit=np.inf)
         assert len(free.selected) >= len(sel.selected)
 
@@ -116,8 +116,11 @@ class TestForwardSelection:
         assert sel.global_test.p_value <= 0.05 and sel.selected == ()
         assert sel.steps.iloc[0]["variable"] == "b"
         assert "first candidate alone exceeds it" in sel.stop_reason
-        relaxed = forward_selection(Y, X, n_permutations=199, seed=1, r2_adj_limit=np.inf)
-        assert relaxed.selected[0] == "b"
+        kept = forward_selection(Y, X, n_permutations=199, seed=1, ceiling="keep_last")
+        assert kept.selected == ("b",) and kept.ceiling == "keep_last"
+        assert kept.stop_reason == "adjusted R² reached the global model's adjusted R²"
+        assert kept.steps.iloc[0]["p_value"] <= 0.05
+        assert kept.r2_adj > kept.r2_adj_global
 
     def test_conditioning_gives_partial_statistics(self):
         # With conditioning C the steps report R²(S + C) − R²(C) and R²adj(S + C) − R²adj(C)
@@ -224,9 +227,11 @@ class TestForwardSelectionValidation:
         with pytest.raises(InputError, match=r"`alpha` must be > 0 and <= 1; got 0.0"):
             forward_selection(self.Y, self.X, alpha=0.0)
 
-    def test_global_test_option(self):
+    def test_string_options(self):
         with pytest.raises(InputError, match=r"`global_test` must be one of 'required', 'skip'"):
             forward_selection(self.Y, self.X, global_test="off")
+        with pytest.raises(InputError, match=r"`ceiling` must be one of 'strict', 'keep_last'"):
+            forward_selection(self.Y, self.X, ceiling="loose")
 
     def test_duplicate_names(self):
         X = self.X.set_axis(["a", "a", "c"], axis=1)

@@ -285,11 +285,19 @@ def _check_partition(Y, groups, conditioning):
 
 
 def _check_rows(name, arr, rows, n, y_rows):
+    """Same number of rows as Y and, when both carry site ids, the same ids in the same order.
+
+    A default 0..n−1 index (a table built from a bare array) carries no site ids.
+    """
     if arr.shape[0] != n:
         raise InputError(f"`{name}` has {arr.shape[0]} rows but `Y` has {n}; every table must "
                          f"have one row per site")
-    if rows is not None and y_rows is not None and not rows.equals(y_rows):
+    if _has_ids(rows) and _has_ids(y_rows) and not rows.equals(y_rows):
         diff = next(i for i, (a, b) in enumerate(zip(rows, y_rows)) if a != b)
         raise InputError(f"`{name}` rows are not the sites of `Y` in the same order: row {diff} "
                          f"is {rows[diff]!r} but `Y` has {y_rows[diff]!r}; reindex it like `Y`")
 
+
+def _has_ids(index) -> bool:
+    return index is not None and not (isinstance(index, pd.RangeIndex) and index.start == 0
+                                      and index.step == 1 and index.name is None)

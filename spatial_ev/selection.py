@@ -626,8 +626,7 @@ def compare_weighting_schemes(
         if vectors.shape[0] != Yc.shape[0]:
             raise InputError(f"`coords` has {vectors.shape[0]} sites but `Y` has "
                              f"{Yc.shape[0]} rows; give one row of `Y` per site")
-        if not isinstance(vectors.index, pd.RangeIndex):  # site ids given with the coordinates
-            _check_rows("coords", vectors.to_numpy(), vectors.index, Yc.shape[0], y_rows)
+        _check_rows("coords", vectors.to_numpy(), vectors.index, Yc.shape[0], y_rows)
         row["n_vectors"] = vectors.shape[1]
         n_model = vectors.shape[1] + (cond.shape[1] if cond is not None else 0)
         if vectors.shape[1] == 0 or Yc.shape[0] - n_model - 1 <= 0:

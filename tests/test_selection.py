@@ -366,3 +366,15 @@ class TestCompareWeightingSchemesValidation:
         shuffled = self.Y.iloc[::-1]
         with pytest.raises(InputError, match=r"`coords` rows are not the sites of `Y`.*reindex"):
             compare_weighting_schemes(shuffled, self.xy, schemes=["distance"], n_permutations=99)
+
+
+class TestSiteIdentity:
+    def test_table_from_bare_array_has_no_site_ids(self):
+        rng = np.random.default_rng(3141592653)
+        ids = pd.Index([f"s{i}" for i in range(30)], name="site")
+        Y = pd.DataFrame(rng.normal(size=(30, 2)), index=ids)
+        X = pd.DataFrame(rng.normal(size=(30, 3)))              # default 0..n-1 index
+        sel = forward_selection(Y, X, n_permutations=19, seed=1)
+        assert sel.n_candidates == 3 and list(X.columns) == [0, 1, 2]
+        with pytest.raises(InputError, match=r"row 0 is 5 but `Y` has 's0'"):
+            forward_selection(Y, X.set_axis(range(5, 35)), n_permutations=19, seed=1)

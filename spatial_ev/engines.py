@@ -13,6 +13,8 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor, as_completed
 from typing import Any, TypeVar
 
+from threadpoolctl import threadpool_limits
+
 from ._compat import import_distributed
 from ._validation import check_int, check_option
 from .errors import InputError
@@ -51,14 +53,18 @@ def _check_run(function, tasks, engine, scheduler, n_workers, progress):
 
 
 def _run_local(function, tasks, n_workers, report):
-    if n_workers is None or n_workers == 1 or len(tasks) <= 1:
+    threads = min(n_workers or os.cpu_count() or 1, len(tasks))
+    if threads <= 1:
         results = []
         for task in tasks:
             results.append(function(task))
             report()
         return results
     results: list = [None] * len(tasks)
-    with ThreadPoolExecutor(max_workers=n_workers) as pool:
+    # one BLAS thread per task thread: the threads already fill the cores, and BLAS threads on
+    # top of them would compete for the same cores (measured: slower, and much noisier)
+    with threadpool_limits(limits=1, user_api="blas"), \
+            ThreadPoolExecutor(max_workers=threads) as pool:
         futures = {pool.submit(function, task): i for i, task in enumerate(tasks)}
         for future in as_completed(futures):
             results[futures[future]] = future.result()
@@ -116,15 +122,18 @@ def run_tasks(function: Callable[[T], R], tasks: Sequence[T], *, engine: str = "
     tasks : sequence
         Task descriptions (small picklable objects, e.g. ``(start, stop)`` ranges).
     engine : {"local", "dask"}
-        ``"local"``: in this process, sequentially when ``n_workers`` is None or 1 (numpy's
-        BLAS already uses every core for the large products), otherwise on a thread pool of
-        ``n_workers`` threads (numpy releases the GIL). ``"dask"``: on a ``dask.distributed``
-        cluster, given by ``scheduler`` or a temporary in-process LocalCluster.
+        ``"local"``: in this process, on a pool of ``n_workers`` threads (default: one per
+        core; numpy releases the GIL). While the pool runs, BLAS is limited to one thread per
+        call (process-wide, restored afterwards), so that task threads and BLAS threads do not
+        compete for the cores. ``n_workers=1`` runs the tasks one after the other in the
+        calling thread with BLAS untouched. ``"dask"``: on a ``dask.distributed`` cluster,
+        given by ``scheduler`` or a temporary in-process LocalCluster.
     scheduler : str or distributed.Client, optional
         Scheduler address (``"tcp://host:8786"``) or an existing Client (reused, not closed).
         Only with ``engine="dask"``; None starts a LocalCluster of ``n_workers`` threads.
     n_workers : int, optional
-        Threads of the local pool, or workers of the temporary LocalCluster.
+        Threads of the local pool (default: ``os.cpu_count()``), or workers of the temporary
+        LocalCluster (default: up to 4).
     progress : callable, optional
         ``progress(done, total)``, called in the calling thread after each finished task.
 

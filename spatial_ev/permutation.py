@@ -24,7 +24,7 @@ product: either the rows of R are gathered for a chunk of permutations and multi
 (``(k x n) @ (n x chunk*p)``), or -- when Q has fewer columns than R -- the rows of Q are
 gathered with the inverse permutations (``Q[Π⁻¹]^T R``); the smaller side is gathered. With
 more species than sites R is first reduced to its n x rank(R) singular-value form, which keeps
-every sum of squares. Memory is O(batch * n * min(p, k)) per batch (about 16 MiB by default;
+every sum of squares. Memory is O(batch * n * min(p, k)) per batch (about 8 MiB by default;
 see ``_GATHER_BYTES``).
 
 Reproducibility. Permutations are drawn in fixed blocks of 128 from
@@ -66,8 +66,8 @@ __all__ = ["permutation_test", "PermutationTest", "axis_tests", "term_tests", "p
 BLOCK_SIZE = 128
 TIE_TOLERANCE = 1e-10
 RESTRICTIONS = ("free", "blocks", "cyclic", "toroidal")
-_GATHER_BYTES = 16 * 2 ** 20
-_DEFAULT_CHUNK = 1024
+_GATHER_BYTES = 8 * 2 ** 20
+_DEFAULT_CHUNK = 2 * BLOCK_SIZE
 
 
 # ----------------------------------------------------------------------------------------------
@@ -216,17 +216,18 @@ class _Kernel:
             inverse = np.empty_like(perms)
             np.put_along_axis(inverse, perms, np.arange(n)[None, :], axis=1)
             g = self.basis.take(inverse.T, axis=0).reshape(n, m * k)   # (n, m*k)
-            prod = (g.T @ self.response).reshape(m, k, p)
+            prod = (g.T @ self.response).reshape(m, k, p)                # (m, k, p)
+            ss = np.einsum("mkp,mkp->mk", prod, prod)
         else:
             g = self.response.take(perms.T, axis=0).reshape(n, m * p)  # (n, m*p)
-            prod = (self.basis.T @ g).reshape(k, m, p).transpose(1, 0, 2)
-        ss = np.einsum("mkp,mkp->mk", prod, prod)                      # (m, k)
+            prod = (self.basis.T @ g).reshape(k, m, p)                   # (k, m, p)
+            ss = np.einsum("kmp,kmp->km", prod, prod).T
         ss_w = ss[:, :self.q].sum(axis=1)
         ss_x = ss[:, self.q:].sum(axis=1)
         resid = np.maximum(self.ss_total - ss_w - ss_x, 0.0) / self.df_residual
         if self.statistic == "f":
             return ss_x / (k - self.q) / resid
-        block = prod[:, self.q:, :]
+        block = prod[:, self.q:, :] if gather_basis else prod[self.q:].transpose(1, 0, 2)
         gram = block @ block.transpose(0, 2, 1) if k - self.q <= p \
             else block.transpose(0, 2, 1) @ block
         return np.linalg.eigvalsh(gram)[:, -1] / resid
@@ -343,13 +344,13 @@ def _reduce(response: np.ndarray) -> np.ndarray:
 
 
 def _null(kernels: list[_Kernel], n_permutations: int, chunk_size: int, engine: str,
-          scheduler, progress) -> list[np.ndarray]:
+          scheduler, n_workers, progress) -> list[np.ndarray]:
     """Null distributions of several kernels, all tasks sent to the engine at once."""
     ranges = [(a, min(a + chunk_size, n_permutations))
               for a in range(0, n_permutations, chunk_size)]
     tasks = [(i, r) for i in range(len(kernels)) for r in ranges]
     out = run_tasks(_MultiKernel(tuple(kernels)), tasks, engine=engine, scheduler=scheduler,
-                    progress=progress)
+                    n_workers=n_workers, progress=progress)
     per = len(ranges)
     return [np.concatenate(out[i * per:(i + 1) * per]) if per else np.zeros(0)
             for i in range(len(kernels))]
@@ -388,7 +389,8 @@ def permutation_test(Y, X, *, conditioning=None, n_permutations: int = 999,
                      seed: None | int | np.random.Generator = None, chunk_size: int | None = None,
                      engine: str = "local", scheduler: Any = None, restriction: str = "free",
                      blocks=None, grid_shape: tuple[int, int] | None = None,
-                     progress: Callable[[int, int], Any] | None = None) -> PermutationTest:
+                     progress: Callable[[int, int], Any] | None = None,
+                     n_workers: int | None = None) -> PermutationTest:
     """Permutation test of the (partial) RDA of Y on X, with a batched engine.
 
     Parameters
@@ -404,8 +406,9 @@ def permutation_test(Y, X, *, conditioning=None, n_permutations: int = 999,
     seed : None, int or numpy Generator
         One draw from it fixes every permutation (see the module notes on reproducibility).
     chunk_size : int, optional
-        Permutations per task handed to the engine (default 1024); does not change results.
-        Memory stays O(batch * n * min(p, rank)) with batches of about 16 MiB inside a task.
+        Permutations per task handed to the engine (default 256); does not change results.
+        Memory stays O(batch * n * min(p, rank)) per thread, with gathers of about 8 MiB
+        (cache-sized batches) inside a task.
     engine : {"local", "dask"}
         See :func:`spatial_ev.engines.run_tasks`; ``scheduler`` is its address or Client.
     restriction : {"free", "blocks", "cyclic", "toroidal"}
@@ -413,6 +416,9 @@ def permutation_test(Y, X, *, conditioning=None, n_permutations: int = 999,
         ``grid_shape=(n_rows, n_cols)`` the complete regular grid for "toroidal".
     progress : callable, optional
         ``progress(done, total)`` after each finished task.
+    n_workers : int, optional
+        Threads (local) or workers (temporary dask LocalCluster); see
+        :func:`~spatial_ev.engines.run_tasks`. Does not change results.
 
     Returns
     -------
@@ -432,7 +438,7 @@ def permutation_test(Y, X, *, conditioning=None, n_permutations: int = 999,
     model = _prepare(Y, X, conditioning, require_x=True)
     scheme = _check_scheme(model.n, seed, restriction, blocks, grid_shape, model.rows)
     observed, kernel = _test(model, scheme)
-    null = _null([kernel], n_permutations, chunk_size, engine, scheduler, progress)[0]
+    null = _null([kernel], n_permutations, chunk_size, engine, scheduler, n_workers, progress)[0]
     fraction = _fraction(model)
     return PermutationTest(
         statistic=float(observed), p_value=_p_value(observed, null), null_distribution=null,
@@ -450,7 +456,8 @@ def axis_tests(Y, X, *, conditioning=None, method: str = "forward", max_axes: in
                n_permutations: int = 999, seed: None | int | np.random.Generator = None,
                chunk_size: int | None = None, engine: str = "local", scheduler: Any = None,
                restriction: str = "free", blocks=None, grid_shape: tuple[int, int] | None = None,
-               progress: Callable[[int, int], Any] | None = None) -> pd.DataFrame:
+               progress: Callable[[int, int], Any] | None = None,
+               n_workers: int | None = None) -> pd.DataFrame:
     """Permutation test of each canonical axis of a (partial) RDA, one axis at a time.
 
     Axes are tested one by one, never all at once (testing every axis against the permuted
@@ -506,7 +513,7 @@ def axis_tests(Y, X, *, conditioning=None, method: str = "forward", max_axes: in
         stat, kernel = _test(sub, scheme, "first_axis")
         observed.append(stat)
         kernels.append(kernel)
-    nulls = _null(kernels, n_permutations, chunk_size, engine, scheduler, progress)
+    nulls = _null(kernels, n_permutations, chunk_size, engine, scheduler, n_workers, progress)
     total = float(np.einsum("ij,ij->", model.y, model.y))
     return pd.DataFrame({
         "variance": s[:n_axes] ** 2 / (model.n - 1),
@@ -546,7 +553,8 @@ def term_tests(Y, terms: Mapping[str, Any], *, conditioning=None, n_permutations
                seed: None | int | np.random.Generator = None, chunk_size: int | None = None,
                engine: str = "local", scheduler: Any = None, restriction: str = "free",
                blocks=None, grid_shape: tuple[int, int] | None = None,
-               progress: Callable[[int, int], Any] | None = None) -> pd.DataFrame:
+               progress: Callable[[int, int], Any] | None = None,
+               n_workers: int | None = None) -> pd.DataFrame:
     """Test each term given all the other terms (and ``conditioning``).
 
     Each term's unique contribution is tested by reduced-model residual permutation
@@ -559,7 +567,7 @@ def term_tests(Y, terms: Mapping[str, Any], *, conditioning=None, n_permutations
     Y : DataFrame or array, shape (n_sites, n_species)
     terms : mapping of str to DataFrame or array, each (n_sites, n_variables_t)
     conditioning, n_permutations, seed, chunk_size, engine, scheduler, restriction, blocks, \
-grid_shape, progress
+grid_shape, progress, n_workers
         As in :func:`permutation_test`.
 
     Returns
@@ -583,7 +591,8 @@ grid_shape, progress
     first = next(iter(models.values()))
     scheme = _check_scheme(first.n, seed, restriction, blocks, grid_shape, first.rows)
     tests = [_test(model, scheme) for model in models.values()]
-    nulls = _null([k for _, k in tests], n_permutations, chunk_size, engine, scheduler, progress)
+    nulls = _null([k for _, k in tests], n_permutations, chunk_size, engine, scheduler,
+                  n_workers, progress)
     fractions = [_fraction(model) for model in models.values()]
     return pd.DataFrame({
         "df": [f.rank for f in fractions],

@@ -69,6 +69,37 @@ def _group_table(groups: list[str]) -> pd.DataFrame:
                          "p": [0.01 if len(c) == 1 else None for c in combos] + [None]})
 
 
+class TestObjectInterface:
+    def test_no_pyplot_figures_and_no_style_leak(self):
+        import matplotlib
+        import matplotlib.pyplot as plt
+
+        before = dict(matplotlib.rcParams)
+        names, scale, r2, moran = _basis(10)
+        partition_figure(_two_group_table())
+        scalogram_figure(r2, scale)
+        moran_scale_figure(moran, scale)
+        site_map_figure(_points(), column="score")
+        polys = gpd.GeoDataFrame({"v": [1.0, 2.0]}, geometry=[shapely.box(0, 0, 1, 1),
+                                                              shapely.box(1, 0, 2, 1)])
+        site_map_figure(polys, column="v", north_arrow="none")  # drawn through geopandas
+        assert plt.get_fignums() == []  # nothing registered in pyplot's global state
+        assert dict(matplotlib.rcParams) == before
+
+
+    def test_user_labels_shown_as_typed(self, tmp_path):
+        # "$...$" would be parsed as mathematics (and an unknown command would crash drawing)
+        name = r"$\undefinedcommand$ sp."
+        sites, species, variables, eig = _scores()
+        species = species.rename(index={species.index[0]: name})
+        species.iloc[0] = [9.0, 9.0, 9.0]  # the longest, so it is labelled
+        fig = triplot_figure(sites, species, variables.rename(index={"pH": name}), eig,
+                             scaling=1, n_labels=1)
+        save_figure(fig, tmp_path, "triplot", formats=("png",))
+        assert [t.get_text() for t in fig.axes[0].texts if t.get_gid() == "species-label"] \
+            == [name]
+
+
 class TestUnitSymbol:
     def test_known_units(self):
         assert unit_symbol("metre") == "m"
@@ -82,6 +113,14 @@ class TestSaveFigure:
         paths = save_figure(partition_figure(_two_group_table()), tmp_path, "partition")
         assert paths["png"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
         assert "<svg" in paths["svg"].read_text()[:2000]
+
+    def test_same_figure_same_bytes(self, tmp_path):
+        (tmp_path / "a").mkdir()
+        (tmp_path / "b").mkdir()
+        first = save_figure(partition_figure(_two_group_table()), tmp_path / "a", "p")
+        second = save_figure(partition_figure(_two_group_table()), tmp_path / "b", "p")
+        for fmt in ("png", "svg"):
+            assert first[fmt].read_bytes() == second[fmt].read_bytes(), fmt
 
     def test_bad_stem(self, tmp_path):
         with pytest.raises(InputError, match="`stem` must contain only letters"):

@@ -65,6 +65,7 @@ RC: dict[str, Any] = {
     "hatch.color": "#5b6472",
     "hatch.linewidth": 0.8,
     "svg.fonttype": "none",
+    "text.parse_math": False,  # user labels such as "sp. $1" are shown as typed
     "savefig.facecolor": "white",
 }
 

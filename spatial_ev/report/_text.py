@@ -279,12 +279,15 @@ def data_rows(data: Mapping | None, unit: str) -> list[tuple[str, str]]:
                      f"{distance(sp.get('nearest_min'), unit)} – "
                      f"{distance(sp.get('nearest_max'), unit)}"))
     for key, label in (("species_names", "Species names"), ("variable_names", "Variables")):
-        names = [str(n) for n in data.get(key) or ()]
+        names = list(data.get(key) or ())
         if names:
-            shown = ", ".join(names[:40]) + (f", … ({len(names) - 40} more)"
-                                             if len(names) > 40 else "")
-            rows.append((label, shown))
+            rows.append((label, _name_list(names)))
     for what, names in (data.get("dropped") or {}).items():
         if names:
-            rows.append((f"Dropped {what}", ", ".join(map(str, names))))
+            rows.append((f"Dropped {what} ({len(names):,})", _name_list(list(names))))
     return rows
+
+
+def _name_list(names: list, limit: int = 40) -> str:
+    shown = ", ".join(map(str, names[:limit]))
+    return shown + (f", … ({len(names) - limit:,} more)" if len(names) > limit else "")

@@ -17,6 +17,7 @@ import re
 from collections.abc import Iterable, Sequence
 from pathlib import Path
 
+import matplotlib
 import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
@@ -104,8 +105,12 @@ def save_figure(fig: Figure, folder: str | os.PathLike, stem: str, *,
         if fmt not in ("png", "svg", "pdf"):
             raise InputError(f"`formats` entries must be 'png', 'svg' or 'pdf'; got {fmt!r}")
         path = folder / f"{stem}.{fmt}"
-        fig.savefig(path, format=fmt, dpi=dpi, bbox_inches="tight",
-                    metadata={"Software": None} if fmt == "png" else None)
+        # no creation date or software stamp, fixed SVG ids: the same figure gives the same
+        # bytes, so output folders can be compared by checksum
+        metadata = {"png": {"Software": None}, "svg": {"Date": None},
+                    "pdf": {"CreationDate": None}}[fmt]
+        with matplotlib.rc_context({"svg.fonttype": "none", "svg.hashsalt": "spatial_ev"}):
+            fig.savefig(path, format=fmt, dpi=dpi, bbox_inches="tight", metadata=metadata)
         out[fmt] = path
     return out
 
@@ -448,8 +453,10 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     ax.axvline(0, color=st.GRID, lw=1.0, zorder=0)
     s_xy = sites.iloc[:, list(axes)].to_numpy(float)  # type: ignore[union-attr]
     p_xy = species.iloc[:, list(axes)].to_numpy(float)  # type: ignore[union-attr]
-    ax.scatter(s_xy[:, 0], s_xy[:, 1], s=16, color=st.group_colour(0), alpha=0.75,
-               edgecolor="white", linewidth=0.4, zorder=2, gid="site-scores", label="sites")
+    ax.scatter(s_xy[:, 0], s_xy[:, 1], s=16 if len(s_xy) <= 2000 else 3,
+               color=st.group_colour(0), alpha=0.75, edgecolor="white",
+               linewidth=0.4 if len(s_xy) <= 2000 else 0.0, zorder=2, gid="site-scores",
+               label="sites", rasterized=len(s_xy) > 5000)
     ax.scatter(p_xy[:, 0], p_xy[:, 1], s=22, marker="^", color=st.group_colour(2),
                zorder=3, gid="species-scores", label="species")
     length = np.hypot(p_xy[:, 0], p_xy[:, 1])

@@ -21,8 +21,8 @@ import pandas as pd
 
 from ._validation import as_matrix, check_int, check_option, check_rng
 from .canonical import explained_fraction
-from .permutation import permutation_test
 from .errors import InputError
+from .permutation import permutation_test
 
 __all__ = ["partition_variation", "VariationPartition"]
 

@@ -27,8 +27,8 @@ import numpy as np
 import pandas as pd
 
 from ._validation import as_matrix, check_int, check_option, check_real, check_rng
-from .errors import DroppedVariablesWarning, InputError
 from .canonical import _column_basis, adjusted_r2
+from .errors import DroppedVariablesWarning, InputError
 from .partition import _check_rows
 from .permutation import permutation_test
 
@@ -287,8 +287,8 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
         return ForwardSelection(
             selected=tuple(r["variable"] for r in rows if r["added"]), steps=steps,
             global_test=gtest, r2_adj_global=r2_adj_global, r2_adj_limit=float(limit),
-            ceiling=ceiling, stop_reason=reason, alpha=alpha, ranking=ranking, n_candidates=len(names),
-            n_permutations=n_permutations)
+            ceiling=ceiling, stop_reason=reason, alpha=alpha, ranking=ranking,
+            n_candidates=len(names), n_permutations=n_permutations)
 
     ranking = ranker.kind
     if gtest is not None and gtest.p_value > alpha_global:

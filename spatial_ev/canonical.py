@@ -74,9 +74,9 @@ def _check_explanatory(name: str, X, n_sites: int, rows: pd.Index | None):
     if rows is not None and xrows is not None and not xrows.equals(rows):
         bad = int(np.flatnonzero(np.asarray(xrows) != np.asarray(rows))[0]) \
             if len(xrows) == len(rows) else 0
-        raise InputError(f"`{name}` and `Y` list different sites or a different order (row {bad}:"
-                         f" {xrows[bad]!r} vs {rows[bad]!r}); align them first, e.g. "
-                         f"`{name}.loc[Y.index]`")
+        raise InputError(f"`{name}` and `Y` list different sites or a different order: row "
+                         f"{bad} is site {xrows[bad]!r} in `{name}` but {rows[bad]!r} in `Y`; "
+                         f"align them first, e.g. `{name}.loc[Y.index]`")
     if xcols is None:
         xcols = pd.Index([f"x{i + 1}" for i in range(x.shape[1])])
     return x, xcols

@@ -28,7 +28,7 @@ import pandas as pd
 
 from ._validation import as_matrix, check_int, check_option, check_real, check_rng
 from .canonical import _column_basis, adjusted_r2
-from .errors import DroppedVariablesWarning, InputError
+from .errors import DisconnectedGraphWarning, DroppedVariablesWarning, InputError
 from .partition import _check_rows
 from .permutation import permutation_test
 
@@ -425,11 +425,15 @@ def _check_selection_data(Y, candidates, conditioning):
 
 # --------------------------------------------------------------------------- weighting schemes
 
-#: default candidate schemes: five graphs x two edge weightings, plus distance-based vectors
+#: default candidate schemes (k = 10): Delaunay, Gabriel, relative-neighbourhood and
+#: distance-band graphs with binary and linear edge weights, the minimum spanning tree with
+#: binary weights, and distance-based vectors. The linear weighting gives the longest edge
+#: weight 0, which always splits a tree, so the tree is not offered with linear weights.
 DEFAULT_SCHEMES = tuple(f"{graph}/{weighting}"
                         for graph in ("delaunay", "gabriel", "relative_neighbourhood",
-                                      "minimum_spanning_tree", "distance_band")
-                        for weighting in ("binary", "linear")) + ("distance",)
+                                      "distance_band")
+                        for weighting in ("binary", "linear")) \
+    + ("minimum_spanning_tree/binary", "distance")
 
 
 def sidak_level(alpha: float, n_tests: int) -> float:
@@ -550,7 +554,7 @@ def compare_weighting_schemes(
         ``"<graph>/<weighting>"`` (graph: a :func:`neighbour_graph` method; weighting: binary,
         linear, concave_down, concave_up — the concave ones as ``"gabriel/concave_down:0.5"``
         with the exponent) or ``"distance"`` (distance-based eigenvectors). Default
-        :data:`DEFAULT_SCHEMES` (11 schemes).
+        :data:`DEFAULT_SCHEMES` (10 schemes).
     alpha : float, default 0.05
         Family-wise level.
     n_permutations : int, default 999
@@ -613,15 +617,22 @@ def compare_weighting_schemes(
         if progress is not None:
             progress(f"scheme {name}: building eigenvectors")
         try:
-            if graph_method is None:
-                basis = distance_eigenvectors(coords, sign=sign)
-            else:
-                graph = neighbour_graph(coords, method=graph_method)
-                basis = graph_eigenvectors(graph, weighting=weighting, exponent=exponent,
-                                           sign=sign)
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always", DisconnectedGraphWarning)
+                if graph_method is None:
+                    basis = distance_eigenvectors(coords, sign=sign)
+                else:
+                    graph = neighbour_graph(coords, method=graph_method)
+                    basis = graph_eigenvectors(graph, weighting=weighting, exponent=exponent,
+                                               sign=sign)
         except InputError as exc:  # recorded in the table, the scheme still counts in k
             row["note"] = f"not built: {exc}"
             continue
+        for w in caught:  # pass every warning on; a split weighted graph also goes in the note
+            if issubclass(w.category, DisconnectedGraphWarning):
+                row["note"] = ("weighted graph disconnected: some vectors contrast its "
+                               "components")
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         vectors = basis.vectors
         if vectors.shape[0] != Yc.shape[0]:
             raise InputError(f"`coords` has {vectors.shape[0]} sites but `Y` has "

@@ -10,7 +10,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from spatial_ev.errors import DroppedVariablesWarning, InputError
+from spatial_ev.errors import DisconnectedGraphWarning, DroppedVariablesWarning, InputError
 from spatial_ev.selection import (DEFAULT_SCHEMES, ForwardSelection, WeightingComparison,
                                   compare_weighting_schemes, forward_selection, sidak_level)
 
@@ -305,8 +305,18 @@ class TestCompareWeightingSchemes:
         assert "Chosen:" in out.summary()
 
     def test_default_schemes(self):
-        assert len(DEFAULT_SCHEMES) == 11 and DEFAULT_SCHEMES[-1] == "distance"
+        assert len(DEFAULT_SCHEMES) == 10 and DEFAULT_SCHEMES[-1] == "distance"
         assert "gabriel/linear" in DEFAULT_SCHEMES
+        assert "minimum_spanning_tree/linear" not in DEFAULT_SCHEMES   # a tree would split
+
+    def test_split_weighted_graph_is_noted(self):
+        # Linear weights give the longest edge weight 0: a spanning tree always splits.
+        xy, Y = _broad_scale_survey(40, 1122, signal=1.0)
+        with pytest.warns(DisconnectedGraphWarning):
+            out = compare_weighting_schemes(Y, xy, schemes=["minimum_spanning_tree/linear"],
+                                            n_permutations=99, seed=3)
+        assert out.table.loc["minimum_spanning_tree/linear", "note"].startswith(
+            "weighted graph disconnected")
 
     def test_no_structure_gives_no_best(self):
         xy, Y = _broad_scale_survey(40, 5647382910, signal=0.0)
@@ -352,8 +362,9 @@ class TestCompareWeightingSchemesValidation:
             compare_weighting_schemes(self.Y, self.xy, schemes="distance")
 
     def test_too_few_permutations_for_corrected_level(self):
+        # Šidák level for k = 10 is 0.005116 (REFERENCES.md [derived]): 1/(N + 1) must reach it
         with pytest.raises(InputError, match=r"n_permutations = 99 cannot reach the corrected "
-                                             r"level 0.004652 for 11 schemes.*at least 214"):
+                                             r"level 0.005116 for 10 schemes.*at least 195"):
             compare_weighting_schemes(self.Y, self.xy, n_permutations=99)
 
     def test_site_count_mismatch(self):

@@ -22,6 +22,7 @@ from .errors import InputError
 __all__ = ["run_tasks", "ENGINES"]
 
 ENGINES = ("local", "dask")
+CONNECT_TIMEOUT = "20s"  # how long to wait for a remote dask scheduler
 
 T = TypeVar("T")
 R = TypeVar("R")
@@ -87,7 +88,7 @@ def _run_dask(function, tasks, scheduler, n_workers, report):
             client = own_client = distributed.Client(own_cluster)
         elif isinstance(scheduler, str):
             try:
-                client = own_client = distributed.Client(scheduler, timeout="20s")
+                client = own_client = distributed.Client(scheduler, timeout=CONNECT_TIMEOUT)
             except (OSError, TimeoutError) as exc:
                 raise InputError(f"could not reach the dask scheduler at {scheduler!r} ({exc}); "
                                  "check the address or use engine='local'") from None

@@ -79,6 +79,8 @@ def add_survey_options(parser: argparse.ArgumentParser, *, species: str = "optio
                           "(default: ',', tab for .tsv)")
     fmt.add_argument("--decimal", metavar="C", default=".", choices=(".", ","),
                      help="decimal mark of numbers in the CSV files, '.' (default) or ','")
+    fmt.add_argument("--encoding", metavar="NAME", default=None,
+                     help="text encoding of the CSV files (default: UTF-8; e.g. cp1252)")
     fmt.add_argument("--incomplete-sites", choices=("error", "drop"), default="error",
                      help="sites with missing environmental values: stop with an error "
                           "(default) or drop them with a warning listing them")
@@ -109,5 +111,5 @@ def survey_from_args(args: argparse.Namespace) -> Survey:
     return read_survey(
         args.sites, getattr(args, "species", None), getattr(args, "environment", None),
         site_id=args.site_id, x=args.x, y=args.y, crs=args.crs, local_unit=args.local_unit,
-        delimiter=delimiter, decimal=args.decimal, layer=args.layer,
+        delimiter=delimiter, decimal=args.decimal, encoding=args.encoding, layer=args.layer,
         incomplete_sites=args.incomplete_sites, shared_coordinates=args.shared_coordinates)

@@ -66,7 +66,8 @@ def file_format(path: str | os.PathLike, *, role: str) -> str:
 
 
 def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None = None,
-                   decimal: str = ".", id_column: str | None = None) -> pd.DataFrame:
+                   decimal: str = ".", id_column: str | None = None,
+                   encoding: str | None = None) -> pd.DataFrame:
     """Read a CSV file with a checked header; numbers parsed by pandas' C parser.
 
     The header must name every column once. An empty first header cell (a table exported with
@@ -74,6 +75,8 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     text; a column holding only numbers (with the given decimal mark) becomes float/int;
     any other column stays text, with missing cells (empty, ``NA``, ``NaN``, ...) as NaN, so
     that :func:`parse_numeric` can report the offending cells. Rows keep their order.
+    Text is UTF-8 (with or without a byte-order mark; UTF-16 with a mark) unless
+    ``encoding`` names another codec (e.g. ``"cp1252"`` for older spreadsheet exports).
 
     Examples
     --------
@@ -89,7 +92,7 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
         raw = p.read_bytes()
     except OSError as exc:
         raise InputError(f"{role} file {str(p)!r} cannot be read ({exc.strerror})") from None
-    text = _decode(raw, p, role)
+    text = _decode(raw, p, role, encoding)
     if not text.strip():
         raise InputError(f"{role} file {str(p)!r} is empty; it needs a header row and one row "
                          f"per site")
@@ -254,7 +257,18 @@ def _check_delimiter(delimiter: str | None, decimal: str, path: Path) -> str:
     return delimiter
 
 
-def _decode(raw: bytes, path: Path, role: str) -> str:
+def _decode(raw: bytes, path: Path, role: str, encoding: str | None = None) -> str:
+    if encoding is not None:
+        try:
+            return raw.decode(encoding)
+        except LookupError:
+            raise InputError(f"`encoding` {encoding!r} is not a known text encoding; use e.g. "
+                             f"'utf-8', 'cp1252' or 'latin-1'") from None
+        except UnicodeDecodeError as exc:
+            line = raw[:exc.start].count(b"\n") + 1
+            raise InputError(f"{role} file {str(path)!r} is not valid {encoding} text (byte "
+                             f"{raw[exc.start]:#04x} on line {line}); check the encoding "
+                             f"option") from None
     if raw.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
         return raw.decode("utf-16")
     try:
@@ -263,7 +277,8 @@ def _decode(raw: bytes, path: Path, role: str) -> str:
         line = raw[:exc.start].count(b"\n") + 1
         raise InputError(f"{role} file {str(path)!r} is not UTF-8 text (byte "
                          f"{raw[exc.start]:#04x} on line {line}); save it as UTF-8 (spreadsheets: "
-                         f"'CSV UTF-8')") from None
+                         f"'CSV UTF-8') or name its encoding, e.g. encoding='cp1252' "
+                         f"(--encoding cp1252)") from None
 
 
 def _one_line(exc: BaseException) -> str:

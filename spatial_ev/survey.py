@@ -281,7 +281,8 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
                 environment: str | os.PathLike | None = None, *, site_id: str | None = None,
                 x: str | None = None, y: str | None = None, crs: Any = None,
                 local_unit: str | None = None, delimiter: str | None = None,
-                decimal: str = ".", layer: str | int | None = None,
+                decimal: str = ".", encoding: str | None = None,
+                layer: str | int | None = None,
                 incomplete_sites: str = "error", shared_coordinates: str = "error") -> Survey:
     """Read, align and validate survey files.
 
@@ -311,6 +312,8 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
         CSV field separator; default ``","`` (tab for ``.tsv``).
     decimal : {".", ","}
         Decimal mark of numbers in the CSV files.
+    encoding : str, optional
+        Text encoding of the CSV files; default UTF-8 (byte-order marks recognised).
     layer : str or int, optional
         Layer of a multi-layer GIS site file.
     incomplete_sites : {"error", "drop"}
@@ -345,6 +348,7 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
     """
     opts = _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinates)
     opts["delimiter"] = delimiter
+    opts["encoding"] = encoding
     for role, path in (("sites", sites), ("species", species), ("environment", environment)):
         if path is not None:
             file_format(path, role=role)  # every file exists and has a known format
@@ -370,14 +374,15 @@ def _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinate
     return {"crs": None if crs is None else parse_crs(crs),
             "local_unit": None if local_unit is None else normalise_local_unit(local_unit),
             "decimal": decimal, "incomplete_sites": incomplete_sites,
-            "shared_coordinates": shared_coordinates, "delimiter": None}
+            "shared_coordinates": shared_coordinates, "delimiter": None, "encoding": None}
 
 
 def _read_frame(path, role: str, opts: dict, layer=None, site_id=None):
     kind = file_format(path, role=role)
     if kind == "csv":
         return read_csv_table(path, role=role, delimiter=opts["delimiter"],
-                              decimal=opts["decimal"], id_column=site_id), None, True
+                              decimal=opts["decimal"], id_column=site_id,
+                              encoding=opts["encoding"]), None, True
     gdf = read_vector(path, role=role, layer=layer)
     return gdf, gdf.crs, False
 

@@ -50,6 +50,12 @@ class TestReadCsvTable:
         with pytest.raises(errors.InputError, match=r"not UTF-8 text \(byte 0xe9 on line 2\)"):
             self._read(tmp_path, "site,A\ncaf\xe9,1\n".encode("latin-1"))
 
+    def test_declared_encoding(self, tmp_path):
+        t = self._read(tmp_path, "site,A\ncaf\xe9,1\n".encode("cp1252"), encoding="cp1252")
+        assert t["site"].tolist() == ["caf\xe9"]
+        with pytest.raises(errors.InputError, match="`encoding` 'klingon' is not a known"):
+            self._read(tmp_path, "site,A\n", encoding="klingon")
+
     def test_empty_and_header_only(self, tmp_path):
         with pytest.raises(errors.InputError, match="is empty"):
             self._read(tmp_path, "\n  \n")

@@ -1,0 +1,161 @@
+"""Tests of spatial_ev.analysis (the whole chain) on the demo survey and small invented surveys."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from conftest import make_small_survey_tables
+from spatial_ev.analysis import analyse
+from spatial_ev.errors import InputError
+from spatial_ev.survey import Survey, read_survey
+
+CONTRACT_KEYS = {"n_sites", "n_species", "transformation", "crs", "distance_unit",
+                 "spatial_basis", "global_tests", "selected", "fractions", "fraction_tests",
+                 "scales", "permutations", "seed", "version"}
+
+
+def small_survey(environment: bool = True, **kwargs) -> Survey:
+    sites, species, env = make_small_survey_tables(**kwargs)
+    frame = sites.set_index("site").rename(columns={"easting": "x", "northing": "y"})
+    return Survey.from_frames(frame, species.set_index("site"),
+                              env.set_index("site") if environment else None, crs="EPSG:32633")
+
+
+@pytest.fixture(scope="module")
+def demo_result(repo_root):
+    folder = repo_root / "data_demo"
+    survey = read_survey(folder / "sites.gpkg", folder / "species.csv",
+                         folder / "environment.csv")
+    # 299 permutations: the smallest round number that reaches the Šidák level of 11 schemes
+    return analyse(survey, n_permutations=299, seed=20240917)
+
+
+class TestAnalyseDemo:
+    @pytest.mark.slow
+    def test_recovers_true_fractions(self, demo_result, repo_root):
+        # The demo's expected fractions are the adjusted-R² partition (Peres-Neto et al. 2006,
+        # Ecology 87:2614-2625) obtained with the true generating predictors, averaged over
+        # redraws of the sampling noise (data_demo/README.md). The analysis has to find the
+        # spatial predictors itself (eigenvectors + forward selection with double stopping,
+        # Blanchet et al. 2008, which is conservative by design), so its spatial fraction can
+        # only approximate the oracle's. Tolerance 0.08 per fraction: measured deviations on
+        # this survey are 0.01-0.07 (README table); a wrong fraction formula, a lost trend or a
+        # failed selection moves a fraction by 0.15 or more.
+        truth = json.loads((repo_root / "data_demo" / "truth.json").read_text())
+        expected = truth["expected_fractions"]
+        for key, value in expected.items():
+            assert demo_result.fractions[key] == pytest.approx(value, abs=0.08), key
+        assert sum(demo_result.fractions.values()) == pytest.approx(1.0, abs=1e-12)
+        assert demo_result.fraction_tests["environment_only"] <= 0.05
+        assert demo_result.fraction_tests["space_only"] <= 0.05
+
+    @pytest.mark.slow
+    def test_true_variables_selected(self, demo_result, repo_root):
+        truth = json.loads((repo_root / "data_demo" / "truth.json").read_text())
+        selected = set(demo_result.selected_environment)
+        for name in ("elevation_m", "salinity_psu", "organic_matter_mg_g"):
+            assert name in selected
+        assert "chlorophyll_ug_g" not in selected  # decoy: unrelated to the community
+        assert truth["true_environment_variables"]
+
+    @pytest.mark.slow
+    def test_summary_contract(self, demo_result):
+        summary = demo_result.summary_dict()
+        assert CONTRACT_KEYS <= set(summary)
+        text = json.dumps(summary, allow_nan=False)  # plain JSON, no NaN
+        assert json.loads(text) == summary
+        assert summary["n_sites"] == 220 and summary["n_species"] == 40
+        assert summary["spatial_basis"]["n_vectors"] == demo_result.basis.n_vectors
+        assert set(summary["fractions"]) == {"environment_only", "shared", "space_only",
+                                             "unexplained"}
+        for entry in summary["selected"]["space"]:
+            assert set(entry) >= {"name", "moran_i", "scale", "p"}
+        vectors = [v for c in summary["scales"] for v in c["vectors"]]
+        assert sorted(vectors) == sorted(demo_result.selected_space)
+
+    @pytest.mark.slow
+    def test_scale_classes_respect_bounds(self, demo_result):
+        for fit in demo_result.scale_fits:
+            lower, upper = fit.scale_class.bounds
+            for name in fit.scale_class.vectors:
+                assert lower < demo_result.basis.scale[name] <= upper
+            if fit.site_scores is not None:
+                assert list(fit.site_scores.index) == list(demo_result.survey.site_ids)
+                assert fit.grid_scores is not None and len(fit.grid_scores) > 100
+
+
+class TestAnalyseSmall:
+    def test_same_seed_same_summary(self):
+        survey = small_survey()
+        a = analyse(survey, spatial_weighting="single", schemes="distance",
+                    n_permutations=99, seed=123456789)
+        b = analyse(survey, spatial_weighting="single", schemes="distance",
+                    n_permutations=99, seed=123456789)
+        assert a.summary_dict() == b.summary_dict()
+
+    def test_spatial_only(self):
+        res = analyse(small_survey(environment=False), spatial_weighting="single",
+                      schemes="gabriel/binary", n_permutations=99, seed=20261202)
+        summary = res.summary_dict()
+        assert summary["fractions"] is None and summary["fraction_tests"] is None
+        assert summary["global_tests"]["environment"] is None
+        assert any("spatial only" in note for note in res.notes)
+
+    def test_grid_prediction_reproduces_sites(self):
+        # The basis extension (Gower 1968 add-a-point, Nyström form) is exact at the sampled
+        # sites [derived], so a "grid" made of the site coordinates must give the site scores.
+        from spatial_ev.analysis import _fit_classes
+
+        res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
+                      n_permutations=99, seed=4242)
+        grid = res.survey.coords.reset_index(drop=True)
+        fits = _fit_classes(res.response - res.response.mean(), res.basis,
+                            [f.scale_class for f in res.scale_fits], None, grid,
+                            np.random.default_rng(1), {"n_permutations": 19, "engine": "local",
+                                                       "scheduler": None})
+        for fit in fits:
+            if fit.site_scores is not None:
+                np.testing.assert_allclose(fit.grid_scores[["axis_1"]].to_numpy(),
+                                           fit.site_scores[["axis_1"]].to_numpy(), atol=1e-8)
+
+    def test_no_structure_selects_nothing_spatial(self):
+        # Species drawn independently of space and environment: the global spatial test
+        # protects against false selection (Blanchet et al. 2008) — with this seed nothing is
+        # selected; fractions then follow the documented zero-by-construction rule.
+        rng = np.random.default_rng(987654321)
+        survey = small_survey()
+        noise = pd.DataFrame(rng.poisson(3.0, size=survey.species.shape) + 1.0,
+                             index=survey.species.index, columns=survey.species.columns)
+        null = Survey.from_frames(survey.sites, noise)
+        res = analyse(null, spatial_weighting="single", schemes="distance", n_permutations=199,
+                      seed=55555)
+        assert res.selected_space == ()
+        assert res.scale_fits and all(f.site_scores is None for f in res.scale_fits)
+
+    # --- input validation -------------------------------------------------------------
+    def test_needs_species(self):
+        sites, _, _ = make_small_survey_tables()
+        frame = sites.set_index("site").rename(columns={"easting": "x", "northing": "y"})
+        with pytest.raises(InputError, match="no species table"):
+            analyse(Survey.from_frames(frame, crs="EPSG:32633"))
+
+    def test_not_a_survey(self):
+        with pytest.raises(InputError, match="must be a Survey"):
+            analyse(pd.DataFrame({"a": [1]}))
+
+    def test_bad_alpha(self):
+        with pytest.raises(InputError, match="alpha"):
+            analyse(small_survey(), alpha=0.9)
+
+    def test_bad_seed(self):
+        with pytest.raises(InputError, match="seed"):
+            analyse(small_survey(), seed=-3)
+
+    def test_single_needs_one_scheme(self):
+        with pytest.raises(InputError, match="exactly one scheme"):
+            analyse(small_survey(), spatial_weighting="single",
+                    schemes=["distance", "gabriel/binary"])

@@ -1,0 +1,153 @@
+"""Tests of ``spatial-ev run`` and ``spatial-ev demo`` (run folder contract, config, errors)."""
+
+from __future__ import annotations
+
+import json
+
+import geopandas as gpd
+import pytest
+
+from conftest import make_small_survey_tables
+from spatial_ev.cli import main
+
+FAST = ["--weighting", "distance", "--permutations", "99", "--seed", "20261202", "--quiet"]
+RUN_FILES = {"summary.json", "manifest.json", "report.html", "maps.gpkg", "figures", "tables"}
+
+
+def run_args(paths, out, *extra):
+    return ["run", "--sites", str(paths["sites"]), "--species", str(paths["species"]),
+            "--environment", str(paths["environment"]), "--x", "easting", "--y", "northing",
+            "--crs", "EPSG:32633", "--out", str(out), *FAST, *extra]
+
+
+def leftovers(folder):
+    return [p.name for p in folder.iterdir() if ".partial-" in p.name or ".old-" in p.name]
+
+
+class TestRun:
+    def test_csv_projected(self, small_survey_files, tmp_path, capsys):
+        out = tmp_path / "run1"
+        assert main(run_args(small_survey_files, out)) == 0
+        assert RUN_FILES <= {p.name for p in out.iterdir()}
+        summary = json.loads((out / "summary.json").read_text())
+        assert summary["n_sites"] == 64 and summary["n_species"] == 12
+        assert summary["crs"].startswith("EPSG:32633")
+        assert summary["distance_unit"] == "metre"
+        assert summary["permutations"] == 99 and summary["seed"] == 20261202
+        manifest = json.loads((out / "manifest.json").read_text())
+        assert set(manifest["inputs"]) == {"sites", "species", "environment"}
+        assert all(len(v["sha256"]) == 64 for v in manifest["inputs"].values())
+        assert manifest["parameters"]["n_permutations"] == 99
+        layers = set(gpd.list_layers(out / "maps.gpkg")["name"])
+        assert "lcbd" in layers
+        assert "run folder written" in capsys.readouterr().out
+
+    def test_geopackage_sites(self, small_survey_files, tmp_path):
+        sites, _, _ = make_small_survey_tables()
+        gdf = gpd.GeoDataFrame(sites[["site"]], crs="EPSG:32633",
+                               geometry=gpd.points_from_xy(sites["easting"], sites["northing"]))
+        gdf.to_file(tmp_path / "sites.gpkg", layer="cores")
+        out = tmp_path / "run-gpkg"
+        args = ["run", "--sites", str(tmp_path / "sites.gpkg"),
+                "--species", str(small_survey_files["species"]),
+                "--environment", str(small_survey_files["environment"]), "--out", str(out),
+                *FAST]
+        assert main(args) == 0
+        assert json.loads((out / "summary.json").read_text())["n_sites"] == 64
+
+    def test_geographic_csv_is_projected(self, tmp_path):
+        sites, species, env = make_small_survey_tables(geographic=True)
+        for name, frame in (("sites", sites), ("species", species), ("environment", env)):
+            frame.to_csv(tmp_path / f"{name}.csv", index=False)
+        out = tmp_path / "run-geo"
+        args = ["run", "--sites", str(tmp_path / "sites.csv"), "--x", "lon", "--y", "lat",
+                "--crs", "EPSG:4326", "--species", str(tmp_path / "species.csv"),
+                "--environment", str(tmp_path / "environment.csv"), "--out", str(out), *FAST]
+        assert main(args) == 0
+        summary = json.loads((out / "summary.json").read_text())
+        assert summary["distance_unit"] == "metre"
+        assert "4326" not in summary["crs"]  # analysed in a local metric projection
+        # scales in metres, not degrees: the grid spacing is 50 m
+        assert summary["resolvable_scales"]["finest"] > 20
+
+    def test_config_file_same_keys(self, small_survey_files, tmp_path):
+        config = tmp_path / "analysis.toml"
+        config.write_text(
+            'sites = "sites.csv"\nspecies = "species.csv"\nenvironment = "environment.csv"\n'
+            'x = "easting"\ny = "northing"\ncrs = "EPSG:32633"\nweighting = "distance"\n'
+            'permutations = 99\nseed = 7\nout = "from-config"\n', encoding="utf-8")
+        assert main(["run", "--config", str(config), "--quiet", "--seed", "11"]) == 0
+        summary = json.loads((tmp_path / "from-config" / "summary.json").read_text())
+        assert summary["seed"] == 11  # the command line overrides the file
+        assert summary["permutations"] == 99
+
+    def test_existing_folder_needs_overwrite(self, small_survey_files, tmp_path, capsys):
+        out = tmp_path / "exists"
+        out.mkdir()
+        (out / "keep.txt").write_text("x")
+        assert main(run_args(small_survey_files, out)) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "already exists" in err[0] and "--overwrite" in err[0]
+        assert (out / "keep.txt").exists()
+        assert main(run_args(small_survey_files, out, "--overwrite")) == 0
+        assert not (out / "keep.txt").exists() and (out / "summary.json").exists()
+        assert leftovers(tmp_path) == []
+
+    # --- bad input: exit 2, one line, nothing written ---------------------------------
+    def test_site_missing_from_species(self, small_survey_files, tmp_path, capsys):
+        lines = small_survey_files["species"].read_text().splitlines()
+        small_survey_files["species"].write_text("\n".join(lines[:-1]) + "\n")
+        out = tmp_path / "bad"
+        assert main(run_args(small_survey_files, out)) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "P063" in err[0]
+        assert not out.exists() and leftovers(tmp_path) == []
+
+    def test_species_required(self, small_survey_files, tmp_path, capsys):
+        args = ["run", "--sites", str(small_survey_files["sites"]), "--x", "easting", "--y",
+                "northing", "--crs", "EPSG:32633", "--out", str(tmp_path / "o"), *FAST]
+        assert main(args) == 2
+        assert "needs a species table" in capsys.readouterr().err
+
+    def test_unknown_config_key(self, tmp_path, capsys):
+        config = tmp_path / "analysis.toml"
+        config.write_text('sites = "a.csv"\ncolour = "red"\n', encoding="utf-8")
+        assert main(["run", "--config", str(config)]) == 2
+        err = capsys.readouterr().err
+        assert "unknown key 'colour'" in err and str(config) in err
+
+    def test_too_few_permutations(self, small_survey_files, tmp_path, capsys):
+        args = run_args(small_survey_files, tmp_path / "o")
+        args[args.index("99")] = "5"
+        assert main(args) == 2
+        assert "at least 19" in capsys.readouterr().err
+
+
+class TestDemo:
+    def test_demo_writes_inputs_and_truth(self, tmp_path, capsys):
+        out = tmp_path / "demo"
+        assert main(["demo", "--out", str(out), *FAST]) == 0
+        assert RUN_FILES | {"inputs"} <= {p.name for p in out.iterdir()}
+        assert {p.name for p in (out / "inputs").iterdir()} == {
+            "sites.gpkg", "species.csv", "environment.csv", "truth.json"}
+        printed = capsys.readouterr().out
+        assert "true fractions of the generating model" in printed
+        summary = json.loads((out / "summary.json").read_text())
+        assert summary["n_sites"] == 220
+
+
+@pytest.mark.browser
+class TestRunReportInBrowser:
+    def test_real_report_displays(self, tmp_path):
+        # The run's own report (not an example page) opened in headless Chromium: every figure
+        # loads, the page records no script or image errors, the screenshot is not blank.
+        from spatial_ev.report.browser import inspect_in_browser
+
+        out = tmp_path / "run"
+        assert main(["demo", "--out", str(out), *FAST]) == 0
+        check = inspect_in_browser(out / "report.html")
+        assert check.problems() == []
+        # partition, scalogram, Moran's I, >= 1 scale map, LCBD, two triplots
+        assert check.images_total >= 7 and check.images_broken == ()
+        assert check.page_errors == () and check.console_messages == ()
+        assert check.screenshot_std > 5.0

@@ -186,7 +186,8 @@ def inspect_in_browser(html_path: str | os.PathLike, *,
         beside the page).
     width : window width in CSS pixels.
     time_budget_ms : virtual time given to the page's scripts before the DOM is read.
-    max_height : cap on the screenshot height in pixels (very long pages are cut).
+    max_height : cap on the screenshot height in pixels (longer pages are cut; the window is
+        as tall as the page, which costs time and memory on very long pages).
     timeout : seconds each Chromium run may take.
 
     Returns
@@ -225,7 +226,7 @@ def inspect_in_browser(html_path: str | os.PathLike, *,
         height = 0
     console, browser_errors = _page_lines(stderr, url)
 
-    shot_height = min(max(height, 900), max_height)
+    shot_height = min(max(height, 200), max_height) if height > 0 else min(900, max_height)
     _run(chromium, [f"--window-size={width},{shot_height}",
                     f"--virtual-time-budget={time_budget_ms}", f"--screenshot={shot}"],
          url, timeout)

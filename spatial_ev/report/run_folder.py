@@ -74,7 +74,7 @@ def manifest(analysis, *, inputs: Mapping[str, str | os.PathLike] | None = None,
     sources = dict(inputs) if inputs is not None else dict(analysis.survey.sources)
     for role, path in sources.items():
         if path is not None and Path(path).is_file():
-            files[role] = {"path": str(path), "sha256": _sha256(path),
+            files[role] = {"path": str(Path(path).resolve()), "sha256": _sha256(path),
                            "bytes": Path(path).stat().st_size}
     return {
         "package": {"name": "spatial_ev", "version": __version__},

@@ -152,6 +152,8 @@ def align(table: RawTable, site_keys: pd.Index, sites_source: str) -> np.ndarray
         if len(extra):
             parts.append(f"{len(extra)} of its site id(s) are not in the sites table: "
                          f"{listed(extra)}")
+        if len(missing) and pd.Index(missing.str.lower()).isin(extra.str.lower()).any():
+            parts.append("some ids differ only in upper/lower case; ids are matched exactly")
     raise InputError(f"{table.role} {table.source}: {'; '.join(parts)}; every table needs "
                      f"exactly one row per site with the same ids (column {table.id_name!r})")
 

@@ -61,8 +61,13 @@ def file_format(path: str | os.PathLike, *, role: str) -> str:
         return "gis"
     known = ", ".join(sorted(set(CSV_SUFFIXES) | set(GIS_SUFFIXES)))
     shown = suffix or "(no extension)"
+    hint = ""
+    if suffix in {".xlsx", ".xls", ".xlsm", ".ods"}:
+        hint = "; export the sheet as CSV (UTF-8) from the spreadsheet program"
+    elif suffix == ".zip":
+        hint = "; unpack the archive and give the .shp, .gpkg or .csv file inside"
     raise InputError(f"{role} file {str(p)!r} has an unknown format {shown!r}; supported: "
-                     f"{known}")
+                     f"{known}{hint}")
 
 
 def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None = None,
@@ -231,12 +236,12 @@ def numeric_hint(bad_values: list[str], decimal: str) -> str:
 
     Examples
     --------
-    >>> numeric_hint(["1,5"], ".")
-    "; the file seems to use a decimal comma: pass decimal=',' (command line: --decimal ,)"
+    >>> numeric_hint(["1,5"], ".").split(":")[0]
+    '; the file seems to use a decimal comma'
     """
     if decimal == "." and any(_DECIMAL_COMMA.match(v) for v in bad_values):
         return ("; the file seems to use a decimal comma: pass decimal=',' "
-                "(command line: --decimal ,)")
+                "(command line: --decimal ,), or remove thousands separators")
     if decimal == "," and any(_DECIMAL_POINT.match(v) for v in bad_values):
         return ("; decimal=',' was given but the value uses a decimal point: check the "
                 "decimal option")

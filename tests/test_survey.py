@@ -567,3 +567,15 @@ class TestReadSurveyMoreInputs:
         _raises_nothing_written(tmp_path, errors.InputError, r"none of its ids \(column 'BTX01'"
                                 r".*is 'BTX01' the site-id column\?", read_survey, *files,
                                 crs=EPSG_UTM)
+
+    def test_ids_differing_in_case(self, tmp_path, files, layout):
+        ids, x, y, species, env = layout
+        species.set_axis(pd.Index([i.lower() for i in ids[:3]] + ids[3:], name="core")
+                         ).to_csv(files[1])
+        _raises_nothing_written(tmp_path, errors.InputError, "differ only in upper/lower case",
+                                read_survey, *files, crs=EPSG_UTM)
+
+    def test_spreadsheet_hint(self, tmp_path):
+        (tmp_path / "sites.xlsx").write_bytes(b"PK")
+        _raises_nothing_written(tmp_path, errors.InputError, "export the sheet as CSV",
+                                read_survey, tmp_path / "sites.xlsx")

@@ -68,8 +68,9 @@ def add_survey_options(parser: argparse.ArgumentParser, *, species: str = "optio
     ids.add_argument("--y", metavar="COL", default=None,
                      help="y / northing / latitude column of a CSV site table")
     ids.add_argument("--crs", metavar="CRS", default=None,
-                     help="coordinate reference system of a CSV site table (EPSG code such as "
-                          "'EPSG:32632' or '4326', or WKT); GIS files carry their own")
+                     help="coordinate reference system of CSV coordinates, or of a GIS file "
+                          "that declares none (EPSG code such as 'EPSG:32632' or '4326', or "
+                          "WKT); a GIS file's own CRS is always used")
     ids.add_argument("--local-unit", metavar="UNIT", default=None,
                      help="declare CSV coordinates local planar (no CRS) in this unit, "
                           "e.g. 'metre', 'kilometre', 'foot'")
@@ -86,7 +87,8 @@ def add_survey_options(parser: argparse.ArgumentParser, *, species: str = "optio
                           "(default) or drop them with a warning listing them")
     fmt.add_argument("--shared-coordinates", choices=("error", "merge"), default="error",
                      help="sites at identical coordinates: stop with an error (default) or merge "
-                          "them (species summed, environment averaged) with a warning")
+                          "each group into its first site (species and numeric variables "
+                          "averaged; categories must agree) with a warning")
     return parser
 
 

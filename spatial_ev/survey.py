@@ -548,6 +548,13 @@ def _check_geometry(table: T.RawTable, index: pd.Index) -> tuple[gpd.GeoSeries, 
         raise InputError(f"sites {table.source} mixes points and polygons (e.g. polygon site "
                          f"{first_poly!r}); use one geometry type, e.g. polygon centroids as "
                          f"points")
+    invalid = ~shapely.is_valid(geometry.to_numpy())
+    if invalid.any():
+        i = int(np.flatnonzero(invalid)[0])
+        reason = shapely.is_valid_reason(geometry.to_numpy()[i])
+        raise InputError(f"sites {table.source}: {int(invalid.sum())} invalid polygon(s), e.g. "
+                         f"site {index[i]!r} ({reason}): {T.listed(index[invalid])}; repair "
+                         f"them (e.g. 'fix geometries' in a GIS, or shapely.make_valid)")
     if geometry.has_z.any():
         warnings.warn(f"sites {table.source}: geometries have z coordinates "
                       f"({int(geometry.has_z.sum())} site(s)); only x and y are used",

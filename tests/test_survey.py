@@ -579,3 +579,14 @@ class TestReadSurveyMoreInputs:
         (tmp_path / "sites.xlsx").write_bytes(b"PK")
         _raises_nothing_written(tmp_path, errors.InputError, "export the sheet as CSV",
                                 read_survey, tmp_path / "sites.xlsx")
+
+    def test_invalid_polygon(self, tmp_path, layout):
+        ids, x, y, species, env = layout
+        geom = _polygons(x, y)
+        a, b = x[2], y[2]
+        geom[2] = shapely.Polygon([(a, b), (a + 9, b + 9), (a + 9, b), (a, b + 9)])  # bow tie
+        gpd.GeoDataFrame({"core": ids}, geometry=geom, crs=EPSG_UTM).to_file(
+            tmp_path / "s.gpkg")
+        _raises_nothing_written(tmp_path, errors.InputError, r"1 invalid polygon\(s\), e.g. "
+                                r"site 'C002' \(Self-intersection", read_survey,
+                                tmp_path / "s.gpkg")

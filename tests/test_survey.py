@@ -10,6 +10,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import shapely
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from spatial_ev import errors
 from spatial_ev.survey import Survey, read_survey
@@ -590,3 +592,16 @@ class TestReadSurveyMoreInputs:
         _raises_nothing_written(tmp_path, errors.InputError, r"1 invalid polygon\(s\), e.g. "
                                 r"site 'C002' \(Self-intersection", read_survey,
                                 tmp_path / "s.gpkg")
+
+
+class TestAlignmentProperty:
+    @settings(max_examples=10, deadline=None)
+    @given(st.permutations(list(range(12))), st.permutations(list(range(12))))
+    def test_row_order_of_tables_never_matters(self, species_order, env_order):
+        ids, x, y, species, env = _layout()
+        sites = pd.DataFrame({"x": x, "y": y}, index=pd.Index(ids, name="core"))
+        reference = Survey.from_frames(sites, species, env, crs=EPSG_UTM)
+        shuffled = Survey.from_frames(sites, species.iloc[list(species_order)],
+                                      env.iloc[list(env_order)], crs=EPSG_UTM)
+        pd.testing.assert_frame_equal(shuffled.species, reference.species)
+        pd.testing.assert_frame_equal(shuffled.environment, reference.environment)

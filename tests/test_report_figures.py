@@ -436,6 +436,28 @@ class TestSiteMapFigure:
         ax = fig.axes[0]
         mesh = [c for c in ax.collections if isinstance(c, QuadMesh)]
         assert len(mesh) == 1 and mesh[0].get_zorder() < _collection(fig, "sites").get_zorder()
+        assert mesh[0].get_array().mask[0, 0]
+
+    def test_surface_clipped_to_hull(self):
+        tri = gpd.GeoDataFrame({"v": [0.0, 1.0, -1.0]},
+                               geometry=gpd.points_from_xy([0, 100, 0], [0, 0, 100]))
+        g = np.linspace(0, 100, 11)
+        full = {"x": g, "y": g, "values": np.ones((11, 11))}
+        mesh = [c for c in site_map_figure(tri, column="v", surface=full,
+                                           unit="m").axes[0].collections
+                if isinstance(c, QuadMesh)][0]
+        shown = ~np.ma.getmaskarray(mesh.get_array()).reshape(11, 11)
+        mx, my = np.meshgrid(g, g)
+        np.testing.assert_array_equal(shown, mx + my <= 100)  # the triangle's cells only
+        mesh = [c for c in site_map_figure(tri, column="v", surface=full, clip="none",
+                                           unit="m").axes[0].collections
+                if isinstance(c, QuadMesh)][0]
+        assert not np.ma.getmaskarray(mesh.get_array()).any()
+        far = {"x": g + 1e6, "y": g, "values": np.ones((11, 11))}
+        with pytest.raises(InputError, match="no cell inside the convex hull"):
+            site_map_figure(tri, column="v", surface=far)
+
+    def test_polygons(self):
         polys = gpd.GeoDataFrame({"v": [1.0, 2.0]}, geometry=[shapely.box(0, 0, 10, 10),
                                                               shapely.box(10, 0, 20, 10)])
         fig = site_map_figure(polys, column="v", palette="sequential", unit="map units",

@@ -180,6 +180,14 @@ class TestRenderReport:
         assert "<td>sv001</td>" in selected and "<td>soil_pH</td>" in selected
         assert "0.191" in selected and "medium" in selected
 
+    def test_weighting_without_correction_says_so(self, context):
+        weighting = dict(context["weighting"], corrected_alpha=None)
+        page = render_report(_light(context, weighting=weighting))
+        assert "No correction for trying several schemes" in _section(page, "weighting")
+        assert "No correction" not in _section(self_page := render_report(
+            _light(context, weighting=context["weighting"])), "weighting")
+        assert "stricter level (solid line)" in _section(self_page, "weighting")
+
     def test_map_units_without_distance_unit(self, context):
         data = dict(context["data"], distance_unit=None)
         page = render_report(_light(context, data=data,

@@ -15,6 +15,7 @@ from typing import Any
 import geopandas as gpd
 import numpy as np
 import pandas as pd
+import shapely
 from matplotlib.cm import ScalarMappable
 from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
@@ -120,6 +121,18 @@ def _check_surface(surface: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray] | 
     return x, y, z
 
 
+def _clip_to_hull(grid: tuple[np.ndarray, np.ndarray, np.ndarray], sites: gpd.GeoDataFrame
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    x, y, z = grid
+    hull = sites.geometry.union_all().convex_hull
+    mx, my = np.meshgrid(x, y)
+    inside = shapely.intersects_xy(hull, mx, my)
+    if not inside.any():
+        raise InputError("`surface` has no cell inside the convex hull of the sites; check that "
+                         "it uses the same coordinates as `sites`")
+    return x, y, np.where(inside, z, np.nan)
+
+
 def _check_highlight(sites: gpd.GeoDataFrame, highlight: Any) -> np.ndarray | None:
     if highlight is None:
         return None
@@ -159,7 +172,7 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
                     surface: Mapping[str, Any] | None = None, unit: str = "m",
                     title: str | None = None, value_label: str | None = None,
                     north_arrow: str = "grid", highlight: str | None = None,
-                    highlight_label: str = "highlighted") -> Figure:
+                    highlight_label: str = "highlighted", clip: str = "hull") -> Figure:
     """Map one value per site, optionally over a gridded prediction surface.
 
     Points are drawn as dots, polygons filled; both take the value's colour. With
@@ -190,6 +203,9 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     highlight : name of a boolean column; its True sites get a heavy dark ring (e.g. sites
         whose LCBD is significant) and a legend entry ``highlight_label``.
     highlight_label : legend text for highlighted sites.
+    clip : ``"hull"`` hides surface cells outside the convex hull of the sites (an
+        interpolation says nothing beyond the surveyed area); ``"none"`` draws the surface as
+        given (NaN cells are always hidden).
 
     Returns
     -------
@@ -211,6 +227,9 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     marked = _check_highlight(sites, highlight)
     check_option("palette", palette, _PALETTES)
     check_option("north_arrow", north_arrow, ("grid", "none"))
+    check_option("clip", clip, ("hull", "none"))
+    if grid is not None and clip == "hull":
+        grid = _clip_to_hull(grid, sites)
     unit = unit_symbol(unit) if unit not in ("m", "km", "ft", "map units") else unit
 
     all_values = values if grid is None else np.concatenate([values,

@@ -1,0 +1,145 @@
+"""Tests of spatial_ev.weighting_choice (Šidák level, comparison of spatial weighting schemes)."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from spatial_ev.errors import DisconnectedGraphWarning, InputError
+from spatial_ev.weighting_choice import (DEFAULT_SCHEMES, WeightingComparison,
+                                         compare_weighting_schemes, sidak_level)
+
+
+class TestSidakLevel:
+    @pytest.mark.parametrize("k, expected", [(1, 0.05), (2, 0.025321), (5, 0.010206),
+                                             (10, 0.005116)])
+    def test_check_values(self, k, expected):
+        # Šidák correction for choosing a weighting scheme among k (Bauman, Drouet, Fortin &
+        # Dray 2018, Ecology 99:2159–2166); values of REFERENCES.md [derived].
+        assert sidak_level(0.05, k) == pytest.approx(expected, abs=5e-7)
+
+    def test_validation(self):
+        with pytest.raises(InputError, match=r"`n_tests` must be >= 1; got 0"):
+            sidak_level(0.05, 0)
+        with pytest.raises(InputError, match=r"`alpha` must be > 0 and < 1; got 1.0"):
+            sidak_level(1.0, 3)
+
+
+def _broad_scale_survey(n: int, seed: int, signal: float):
+    rng = np.random.default_rng(seed)
+    xy = pd.DataFrame(rng.uniform(0, 1000, size=(n, 2)), columns=["x", "y"],
+                      index=pd.Index([f"st{i:03d}" for i in range(n)], name="station"))
+    wave = np.sin(xy["x"].to_numpy() / 180) + np.cos(xy["y"].to_numpy() / 240)
+    Y = pd.DataFrame(signal * np.outer(wave, [1.0, -0.5, 0.8]) + rng.normal(size=(n, 3)),
+                     index=xy.index, columns=["sp1", "sp2", "sp3"])
+    return xy, Y
+
+
+class TestCompareWeightingSchemes:
+    SCHEMES = ["gabriel/binary", "delaunay/linear", "distance"]
+
+    def test_best_scheme_and_corrected_level(self):
+        xy, Y = _broad_scale_survey(50, 1029384756, signal=1.5)
+        out = compare_weighting_schemes(Y, xy, schemes=self.SCHEMES, n_permutations=199,
+                                        seed=777)
+        assert isinstance(out, WeightingComparison)
+        # Bauman et al. 2018: each global test judged at α' = 1 − (1 − α)^(1/k) [derived]
+        assert out.alpha_corrected == pytest.approx(1 - 0.95 ** (1 / 3), rel=1e-12)
+        table = out.table
+        assert list(table.index) == self.SCHEMES
+        assert (table["significant"] == (table["global_p"] <= out.alpha_corrected)).all()
+        assert np.allclose(table["global_p_sidak"], 1 - (1 - table["global_p"]) ** 3)
+        significant = table[table["significant"]]
+        assert out.best == significant["r2_adj"].idxmax()
+        assert table.loc[out.best, "chosen"] and table["chosen"].sum() == 1
+        assert set(out.selection.selected) <= set(out.basis.vectors.columns)
+        assert out.selection.r2_adj == pytest.approx(table.loc[out.best, "r2_adj"])
+        assert (table["n_vectors"] > 0).all()
+        again = compare_weighting_schemes(Y, xy, schemes=self.SCHEMES, n_permutations=199,
+                                          seed=777)
+        pd.testing.assert_frame_equal(again.table, out.table)
+        assert "Chosen:" in out.summary()
+
+    def test_default_schemes_stay_connected(self):
+        assert len(DEFAULT_SCHEMES) == 8 and DEFAULT_SCHEMES[-1] == "distance"
+        assert "gabriel/linear" in DEFAULT_SCHEMES
+        assert "minimum_spanning_tree/linear" not in DEFAULT_SCHEMES   # a tree would split
+        xy, Y = _broad_scale_survey(60, 90210, signal=1.0)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", DisconnectedGraphWarning)
+            out = compare_weighting_schemes(Y, xy, n_permutations=199, seed=11)
+        assert list(out.table.index) == list(DEFAULT_SCHEMES)
+        assert out.alpha_corrected == pytest.approx(1 - 0.95 ** (1 / 8), rel=1e-12)
+
+    def test_split_weighted_graph_is_noted(self):
+        # Linear weights give the longest edge weight 0: a spanning tree always splits.
+        xy, Y = _broad_scale_survey(40, 1122, signal=1.0)
+        with pytest.warns(DisconnectedGraphWarning):
+            out = compare_weighting_schemes(Y, xy, schemes=["minimum_spanning_tree/linear"],
+                                            n_permutations=99, seed=3)
+        assert out.table.loc["minimum_spanning_tree/linear", "note"].startswith(
+            "weighted graph disconnected")
+
+    def test_no_structure_gives_no_best(self):
+        xy, Y = _broad_scale_survey(40, 5647382910, signal=0.0)
+        out = compare_weighting_schemes(Y, xy, schemes=self.SCHEMES[:2], n_permutations=199,
+                                        seed=4321)
+        assert (out.table["global_p"] > out.alpha_corrected).all()
+        assert out.best is None and out.selection is None
+        assert "no spatial structure was detected" in out.summary()
+
+    @pytest.mark.slow
+    def test_family_wise_error_under_null(self):
+        # Bauman et al. 2018: with the Šidák correction, choosing among k schemes keeps the
+        # family-wise type I error at or below alpha (tests are positively dependent). Count of
+        # false detections must not exceed the binomial 99% upper bound around alpha.
+        reps, alpha = 150, 0.05
+        rng = np.random.default_rng(8080808080)
+        hits = 0
+        for _ in range(reps):
+            xy = rng.uniform(0, 1000, size=(30, 2))
+            y = rng.normal(size=(30, 1))
+            out = compare_weighting_schemes(y, xy, schemes=self.SCHEMES, n_permutations=99,
+                                            seed=int(rng.integers(2**32)))
+            hits += out.best is not None
+        assert hits <= stats.binom.interval(0.99, reps, alpha)[1]
+
+
+class TestCompareWeightingSchemesValidation:
+    def setup_method(self):
+        self.xy, self.Y = _broad_scale_survey(25, 1234, signal=1.0)
+
+    def test_scheme_strings(self):
+        with pytest.raises(InputError, match=r"entry 'gabriel' is not 'distance' or"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=["gabriel"])
+        with pytest.raises(InputError, match=r"entry 'gabrial/binary': graph must be one of"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=["gabrial/binary"])
+        with pytest.raises(InputError, match=r"exponent 'x' is not a number"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=["gabriel/concave_down:x"])
+        with pytest.raises(InputError, match=r"lists a scheme twice"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=["distance", "distance"])
+        with pytest.raises(InputError, match=r"`schemes` is empty"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=[])
+        with pytest.raises(InputError, match=r"`schemes` must be a list"):
+            compare_weighting_schemes(self.Y, self.xy, schemes="distance")
+
+    def test_too_few_permutations_for_corrected_level(self):
+        # Šidák level for k = 10 is 0.005116 (REFERENCES.md [derived]): 1/(N + 1) must reach it
+        ten = list(DEFAULT_SCHEMES) + ["relative_neighbourhood/linear", "gabriel/concave_up:1"]
+        with pytest.raises(InputError, match=r"n_permutations = 99 cannot reach the corrected "
+                                             r"level 0.005116 for 10 schemes.*at least 195"):
+            compare_weighting_schemes(self.Y, self.xy, schemes=ten, n_permutations=99)
+
+    def test_site_count_mismatch(self):
+        with pytest.raises(InputError, match=r"`coords` has 25 sites but `Y` has 24 rows"):
+            compare_weighting_schemes(self.Y.iloc[:24], self.xy, schemes=["distance"],
+                                      n_permutations=99)
+
+    def test_site_order_mismatch(self):
+        shuffled = self.Y.iloc[::-1]
+        with pytest.raises(InputError, match=r"`coords` rows are not the sites of `Y`.*reindex"):
+            compare_weighting_schemes(shuffled, self.xy, schemes=["distance"], n_permutations=99)

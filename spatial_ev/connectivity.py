@@ -316,7 +316,7 @@ class NeighbourGraph:
         Examples
         --------
         >>> g = neighbour_graph([[0, 0], [1, 0], [3, 0]], method="delaunay")
-        >>> g.weights("linear", max_distance=4).toarray()[0, 1]
+        >>> float(g.weights("linear", max_distance=4).toarray()[0, 1])
         0.75
         """
         weighting, exponent, d_max = _check_weighting(self, weighting, exponent, max_distance)

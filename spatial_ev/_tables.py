@@ -53,7 +53,7 @@ def _plain(value):
 
 
 def split_ids(frame: pd.DataFrame, *, role: str, source: str, site_id: str | None,
-              from_file: bool, use_index: bool = False) -> tuple[str, pd.Series, pd.DataFrame]:
+              use_index: bool = False) -> tuple[str, pd.Series, pd.DataFrame]:
     """Pick the site-id column (``site_id`` or the first column) and split it off."""
     if site_id is not None:
         if site_id in frame.columns:

@@ -250,7 +250,7 @@ class Survey:
             if isinstance(frame, gpd.GeoDataFrame):
                 frame = pd.DataFrame(frame.drop(columns=frame.geometry.name))
             id_name, ids, data = T.split_ids(frame, role=role, source="frame", site_id=site_id,
-                                             from_file=False, use_index=use_index)
+                                             use_index=use_index)
             tables[role] = T.RawTable(role, "frame", id_name, ids, data, from_file=False,
                                       crs=frame_crs)
         use_index = site_id is None or site_id not in sites.columns
@@ -258,14 +258,12 @@ class Survey:
             geometry = sites.geometry.reset_index(drop=True)
             attributes = pd.DataFrame(sites.drop(columns=sites.geometry.name))
             id_name, ids, attributes = T.split_ids(attributes, role="sites", source="frame",
-                                                   site_id=site_id, from_file=False,
-                                                   use_index=use_index)
+                                                   site_id=site_id, use_index=use_index)
             site_table = T.RawTable("sites", "frame", id_name, ids, attributes, from_file=False,
                                     crs=sites.crs, extra={"geometry": geometry})
         else:
             id_name, ids, attributes = T.split_ids(sites, role="sites", source="frame",
-                                                   site_id=site_id, from_file=False,
-                                                   use_index=use_index)
+                                                   site_id=site_id, use_index=use_index)
             site_table = T.RawTable("sites", "frame", id_name, ids, attributes, from_file=False)
             _points_from_columns(site_table, x, y, opts)
         sources = {"sites": "in-memory sites frame"}
@@ -388,8 +386,7 @@ def _read_table(path, role: str, site_id, opts: dict) -> T.RawTable:
     if not is_csv:
         frame = pd.DataFrame(frame.drop(columns=frame.geometry.name))
     source = f"file {str(path)!r}"
-    id_name, ids, data = T.split_ids(frame, role=role, source=source, site_id=site_id,
-                                     from_file=True)
+    id_name, ids, data = T.split_ids(frame, role=role, source=source, site_id=site_id)
     return T.RawTable(role, source, id_name, ids, data, crs=crs, extra={"csv": is_csv})
 
 
@@ -399,8 +396,7 @@ def _read_site_table(path, site_id, x, y, layer, opts: dict) -> T.RawTable:
     if is_csv:
         if layer is not None:
             raise InputError(f"`layer` ({layer!r}) applies to GIS files; sites {source} is CSV")
-        id_name, ids, data = T.split_ids(frame, role="sites", source=source, site_id=site_id,
-                                         from_file=True)
+        id_name, ids, data = T.split_ids(frame, role="sites", source=source, site_id=site_id)
         table = T.RawTable("sites", source, id_name, ids, data, extra={"csv": True})
         _points_from_columns(table, x, y, opts)
         return table
@@ -412,7 +408,7 @@ def _read_site_table(path, site_id, x, y, layer, opts: dict) -> T.RawTable:
         raise InputError(f"sites {source} has no attribute columns to take site ids from; "
                          f"add a site-id field to the layer")
     id_name, ids, attributes = T.split_ids(attributes, role="sites", source=source,
-                                           site_id=site_id, from_file=True)
+                                           site_id=site_id)
     return T.RawTable("sites", source, id_name, ids, attributes, crs=crs,
                       extra={"geometry": frame.geometry.reset_index(drop=True)})
 

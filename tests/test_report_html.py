@@ -130,6 +130,25 @@ class TestRenderReport:
         n_sig = int((context["lcbd"]["sites"]["p"] <= 0.05).sum())
         assert f"Ringed: the {n_sig} site(s) whose LCBD has p ≤ 0.05" in lcbd
 
+    def test_at_a_glance(self, page, context):
+        start = page.index('id="at-a-glance"')
+        glance = page[start:page.index("</aside>", start)]
+        assert ("[a] environment only: 14.2% of the variation in composition, significant "
+                "(p = 0.001).") in glance
+        assert "[b] shared: 8.7% of the variation in composition." in glance
+        assert "3 environmental variable(s) kept: soil_moisture, soil_pH, canopy_cover." \
+            in glance
+        assert "6 spatial vector(s) kept: sv001, sv002, sv004, sv009, sv015, sv023." in glance
+        assert "broad (4 km–16 km, adjusted R² 0.083)" in glance
+        negative = context["partition"]["fractions"].copy()
+        negative.loc[1, "r2_adj"] = -0.02
+        negative.loc[2, "p"] = 0.2
+        page = render_report(_light(context, partition={"fractions": negative}))
+        assert "[b] shared: 0.0% of the variation in composition (adjusted R² -0.020, read " \
+               "as zero)." in page
+        assert "[c] space only: 12.1% of the variation in composition, not significant " \
+               "(p = 0.200)." in page
+
     def test_triplot_reading_note(self, page):
         triplot = _section(page, "triplot")
         assert "scaling 1 when the question is about sites" in triplot

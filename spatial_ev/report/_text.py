@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 
 __all__ = ["REFERENCES", "Citations", "methods_paragraphs", "limits_items", "data_rows",
-           "num", "pvalue", "distance"]
+           "glance_items", "num", "pvalue", "distance"]
 
 REFERENCES: dict[str, str] = {
     "Bauman et al. 2018a": "Bauman, D., Drouet, T., Fortin, M.-J. & Dray, S. (2018a). Optimizing "
@@ -291,3 +291,45 @@ def data_rows(data: Mapping | None, unit: str) -> list[tuple[str, str]]:
 def _name_list(names: list, limit: int = 40) -> str:
     shown = ", ".join(map(str, names[:limit]))
     return shown + (f", … ({len(names) - limit:,} more)" if len(names) > limit else "")
+
+
+def glance_items(context: Mapping, unit: str) -> list[str]:
+    """Plain-language key results read from the context (partition, selections, scales)."""
+    items = []
+    part = context.get("partition")
+    if part is not None:
+        alpha = part.get("alpha", 0.05)
+        for _, row in part["fractions"].iterrows():
+            share = float(row["r2_adj"])
+            text = f"{row['name']}: {max(share, 0.0):.1%} of the variation in composition"
+            if share < 0:
+                text += f" (adjusted R² {share:.3f}, read as zero)"
+            if row["testable"]:
+                p = row["p"]
+                if p is None or (isinstance(p, float) and np.isnan(p)):
+                    text += ", not tested"
+                else:
+                    verdict = "significant" if float(p) <= alpha else "not significant"
+                    text += f", {verdict} (p = {pvalue(p)})"
+            items.append(text + ".")
+    env = context.get("selected_environment")
+    if env is not None:
+        col = "variable" if "variable" in env.columns else "name"
+        items.append(f"{len(env)} environmental variable(s) kept: "
+                     f"{', '.join(map(str, env[col])) or 'none'}." if len(env) else
+                     "No environmental variable was kept.")
+    space = context.get("selected_space")
+    if space is not None:
+        col = "vector" if "vector" in space.columns else "name"
+        items.append(f"{len(space)} spatial vector(s) kept: {', '.join(map(str, space[col]))}."
+                     if len(space) else "No spatial vector was kept.")
+    maps = context.get("scale_maps")
+    if maps:
+        parts = [f"{m.get('name', m.get('class'))} ({distance(m['scale_range'][0], unit)}–"
+                 f"{distance(m['scale_range'][1], unit)}, adjusted R² {num(m.get('r2_adj'))})"
+                 for m in maps]
+        items.append("Spatial structure was found at these scales: " + "; ".join(parts) + ".")
+    elif maps is not None:
+        items.append("No spatial structure was selected at any scale.")
+    return items
+

@@ -106,7 +106,7 @@ from matplotlib.figure import Figure
 from ..errors import InputError
 from . import figures as figs
 from . import maps
-from ._text import (REFERENCES, Citations, data_rows, distance, limits_items,
+from ._text import (REFERENCES, Citations, data_rows, distance, glance_items, limits_items,
                     methods_paragraphs, num, pvalue)
 
 __all__ = ["render_report", "build_figures", "write_report", "example_context", "SECTIONS",
@@ -362,6 +362,7 @@ def render_report(context: Mapping[str, Any], *,
         "version": context.get("version"), "generated": context.get("generated"),
         "sections": SECTIONS, "reasons": reasons, "context": context,
         "data_rows": data_rows(context["data"], unit), "methods": methods,
+        "glance": glance_items(context, unit),
         "figures": uris, "scale_maps": _scale_map_captions(context, unit, uris),
         "lcbd_note": _lcbd_note(context["lcbd"]), "limits": limits, "references": refs,
         **_tables(context, unit),

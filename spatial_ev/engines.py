@@ -9,8 +9,10 @@ the number of workers or the order in which tasks finish.
 from __future__ import annotations
 
 import os
-from collections.abc import Callable, Sequence
+import threading
+from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor, as_completed
+from contextlib import contextmanager
 from typing import Any, TypeVar
 
 from threadpoolctl import threadpool_limits
@@ -53,6 +55,30 @@ def _check_run(function, tasks, engine, scheduler, n_workers, progress):
     return tasks, engine, n_workers
 
 
+_BLAS_LOCK = threading.Lock()
+_blas_users = 0
+_blas_limiter = None
+
+
+@contextmanager
+def _one_blas_thread() -> Iterator[None]:
+    """Limit BLAS to one thread while any local pool runs (reference counted, so that
+    overlapping pools started from different threads restore the original setting once)."""
+    global _blas_users, _blas_limiter
+    with _BLAS_LOCK:
+        if _blas_users == 0:
+            _blas_limiter = threadpool_limits(limits=1, user_api="blas")
+        _blas_users += 1
+    try:
+        yield
+    finally:
+        with _BLAS_LOCK:
+            _blas_users -= 1
+            if _blas_users == 0:
+                _blas_limiter.restore_original_limits()
+                _blas_limiter = None
+
+
 def _run_local(function, tasks, n_workers, report):
     threads = min(n_workers or os.cpu_count() or 1, len(tasks))
     if threads <= 1:
@@ -64,8 +90,7 @@ def _run_local(function, tasks, n_workers, report):
     results: list = [None] * len(tasks)
     # one BLAS thread per task thread: the threads already fill the cores, and BLAS threads on
     # top of them would compete for the same cores (measured: slower, and much noisier)
-    with threadpool_limits(limits=1, user_api="blas"), \
-            ThreadPoolExecutor(max_workers=threads) as pool:
+    with _one_blas_thread(), ThreadPoolExecutor(max_workers=threads) as pool:
         futures = {pool.submit(function, task): i for i, task in enumerate(tasks)}
         for future in as_completed(futures):
             results[futures[future]] = future.result()

@@ -44,6 +44,24 @@ class TestRunTasks:
         run_tasks(record, range(8), n_workers=4)
         assert len(seen) > 1
 
+    def test_blas_threads_restored_after_overlapping_pools(self):
+        threadpoolctl = pytest.importorskip("threadpoolctl")
+
+        def blas_threads():
+            return [i["num_threads"] for i in threadpoolctl.threadpool_info()
+                    if i["user_api"] == "blas"]
+
+        before = blas_threads()
+        inside = []
+
+        def outer(task):
+            inside.append(blas_threads())
+            return run_tasks(slow_square, range(4), n_workers=2)
+
+        run_tasks(outer, range(3), n_workers=3)
+        assert all(t == [1] * len(before) for t in inside)
+        assert blas_threads() == before
+
     def test_progress_counts_every_task(self):
         calls = []
         run_tasks(slow_square, range(5), n_workers=2,

@@ -74,8 +74,9 @@ class WeightingComparison:
         NaN when not significant), ``chosen`` (bool) and ``note`` (e.g. why a scheme could not
         be built).
     best : str or None
-        The chosen scheme (largest adjusted R² among significant schemes), None when no scheme
-        is significant at the corrected level.
+        The chosen scheme (largest adjusted R² of the selected vectors among significant
+        schemes), None when no scheme is significant at the corrected level or no significant
+        scheme kept a vector.
     selection : ForwardSelection or None
         Forward selection under the chosen scheme.
     basis : SpatialBasis or None
@@ -111,7 +112,11 @@ class WeightingComparison:
             lines.append(f" {mark}{name:<34s} {int(row['n_vectors']):>5d} vectors  "
                          f"p = {row['global_p']:.4f}  selected {int(row['n_selected']):>3d}  "
                          f"R²adj {r2}  {row['note']}")
-        if self.best is None:
+        if self.best is None and self.table["significant"].any():
+            lines.append("Some schemes have a significant global test but their forward "
+                         "selection kept no vector (see the stopping rule of "
+                         "forward_selection); no scheme was chosen.")
+        elif self.best is None:
             lines.append("No scheme has a significant global test at the corrected level: no "
                          "spatial structure was detected with these schemes.")
         else:

@@ -92,6 +92,15 @@ class TestCompareWeightingSchemes:
         assert out.best is None and out.selection is None
         assert "no spatial structure was detected" in out.summary()
 
+    def test_summary_when_significant_scheme_keeps_nothing(self):
+        table = pd.DataFrame({"n_vectors": [12], "global_pseudo_f": [3.1], "global_p": [0.002],
+                              "global_p_sidak": [0.002], "significant": [True],
+                              "n_selected": [0], "r2_adj": [0.0], "chosen": [False],
+                              "note": [""]}, index=pd.Index(["distance"], name="scheme"))
+        out = WeightingComparison(table=table, best=None, selection=None, basis=None,
+                                  alpha=0.05, alpha_corrected=0.05, n_schemes=1)
+        assert "selection kept no vector" in out.summary()
+
     @pytest.mark.slow
     def test_family_wise_error_under_null(self):
         # Bauman et al. 2018: with the Šidák correction, choosing among k schemes keeps the

@@ -89,6 +89,13 @@ def _check_geometry(table: T.RawTable, index: pd.Index) -> tuple[gpd.GeoSeries, 
         raise InputError(f"sites {table.source}: {int(missing.sum())} site(s) have no geometry "
                          f"(null or empty): {T.listed(index[missing])}; give every site a "
                          f"location or remove it")
+    geoms = geometry.to_numpy()
+    single = (geometry.geom_type == "MultiPoint").to_numpy() & \
+        (shapely.get_num_geometries(geoms) == 1)
+    if single.any():  # one-part multipoints (common in Shapefiles) are points, losslessly
+        geoms = geoms.copy()
+        geoms[single] = shapely.get_geometry(geoms[single], 0)
+        geometry = gpd.GeoSeries(geoms, crs=geometry.crs)
     kinds = geometry.geom_type.map({"Point": "point", "Polygon": "polygon",
                                     "MultiPolygon": "polygon"})
     unsupported = kinds.isna().to_numpy()

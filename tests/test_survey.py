@@ -404,6 +404,21 @@ class TestReadSurveyValidation:
         _raises_nothing_written(tmp_path, errors.InputError, r"have no geometry.*'C003'",
                                 read_survey, tmp_path / "s.gpkg")
 
+    def test_single_part_multipoints_are_points(self, tmp_path, layout):
+        ids, x, y, species, env = layout
+        geom = [shapely.MultiPoint([(a, b)]) for a, b in zip(x, y)]
+        gpd.GeoDataFrame({"core": ids}, geometry=geom, crs=EPSG_UTM).to_file(
+            tmp_path / "s.gpkg")
+        s = read_survey(tmp_path / "s.gpkg")
+        assert s.geometry_type == "point" and (s.sites.geom_type == "Point").all()
+        np.testing.assert_array_equal(s.coords["x"], x)
+        geom[0] = shapely.MultiPoint([(x[0], y[0]), (x[0] + 5, y[0])])
+        gpd.GeoDataFrame({"core": ids}, geometry=geom, crs=EPSG_UTM).to_file(
+            tmp_path / "s2.gpkg")
+        _raises_nothing_written(tmp_path, errors.InputError, r"\['MultiPoint'\] are not "
+                                r"supported \(e.g. site 'C000'\)", read_survey,
+                                tmp_path / "s2.gpkg")
+
     def test_lines_are_not_sites(self, tmp_path, layout):
         ids, x, y, species, env = layout
         geom = [shapely.LineString([(a, b), (a + 1, b + 1)]) for a, b in zip(x, y)]

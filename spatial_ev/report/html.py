@@ -355,6 +355,9 @@ def render_report(context: Mapping[str, Any], *,
     reasons = dict(context.get("missing_reasons") or {})
     methods = methods_paragraphs(context, cite, unit)
     limits = limits_items(context, cite, unit)
+    tables = _tables(context, unit)  # validates the tabular entries first
+    scale_maps = _scale_map_captions(context, unit, uris)
+    glance = glance_items(context, unit)
     refs = [REFERENCES[k] for k in sorted(cite.keys)]
     view = {
         "title": context["title"], "subtitle": context.get("subtitle"),
@@ -362,10 +365,10 @@ def render_report(context: Mapping[str, Any], *,
         "version": context.get("version"), "generated": context.get("generated"),
         "sections": SECTIONS, "reasons": reasons, "context": context,
         "data_rows": data_rows(context["data"], unit), "methods": methods,
-        "glance": glance_items(context, unit),
-        "figures": uris, "scale_maps": _scale_map_captions(context, unit, uris),
+        "glance": glance,
+        "figures": uris, "scale_maps": scale_maps,
         "lcbd_note": _lcbd_note(context["lcbd"]), "limits": limits, "references": refs,
-        **_tables(context, unit),
+        **tables,
     }
     return _environment().get_template("report.html").render(**view)
 

@@ -291,7 +291,8 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
     environment : path, optional
         CSV (or GIS attribute table), sites × variables. Numeric columns stay numeric; text
         columns are categories, coded as indicator columns ``name[level]`` with the first
-        level (sorted) as the reference.
+        level (sorted) as the reference. Classes coded as numbers (1, 2, 3) are read as
+        numbers: write them as text labels to have them treated as categories.
     site_id : str, optional
         Site-id column, the same name in every table; default: each table's first column.
     x, y : str, optional

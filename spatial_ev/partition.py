@@ -21,6 +21,7 @@ import pandas as pd
 
 from ._validation import as_matrix, check_int, check_option, check_rng
 from .canonical import explained_fraction
+from .engines import ENGINES
 from .errors import InputError
 from .permutation import permutation_test
 
@@ -159,7 +160,7 @@ def partition_variation(
     """
     Yc, blocks, names, cond, n, labels_index = _check_partition(Y, groups, conditioning)
     n_permutations = check_int("n_permutations", n_permutations, low=0)
-    check_option("engine", engine, ["local", "dask"])
+    check_option("engine", engine, ENGINES)
     rng = check_rng(seed)
     k = len(names)
 

@@ -27,6 +27,7 @@ import pandas as pd
 
 from ._validation import as_matrix, check_int, check_option, check_real, check_rng
 from .canonical import _column_basis, adjusted_r2
+from .engines import ENGINES
 from .errors import DroppedVariablesWarning, InputError
 from .partition import _check_rows
 from .permutation import permutation_test
@@ -214,7 +215,7 @@ def forward_selection(
             r2_adj_limit = check_real("r2_adj_limit", r2_adj_limit, high=1)
     if max_variables is not None:
         max_variables = check_int("max_variables", max_variables, low=1)
-    check_option("engine", engine, ["local", "dask"])
+    check_option("engine", engine, ENGINES)
     return _select(Yc, Z, names, cond, alpha_global=alpha, alpha=alpha,
                    n_permutations=n_permutations, rng=check_rng(seed),
                    global_test=global_test, r2_adj_limit=r2_adj_limit, ceiling=ceiling,

@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from ._validation import as_matrix, check_int, check_option, check_real, check_rng
+from .engines import ENGINES
 from .errors import DisconnectedGraphWarning, InputError
 from .partition import _check_rows
 from .permutation import permutation_test
@@ -199,7 +200,7 @@ def compare_weighting_schemes(
     n_permutations = check_int("n_permutations", n_permutations, low=1)
     check_option("sign", sign, ["positive", "negative", "all"])
     check_option("ceiling", ceiling, ["strict", "keep_last"])
-    check_option("engine", engine, ["local", "dask"])
+    check_option("engine", engine, ENGINES)
     k = len(parsed)
     level = sidak_level(alpha, k)
     if 1.0 / (n_permutations + 1) > level:

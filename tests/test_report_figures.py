@@ -192,14 +192,17 @@ class TestPartitionFigure:
         with pytest.raises(InputError, match="lacks column\\(s\\) 'testable'"):
             partition_figure(table.drop(columns="testable"))
         bad = table.copy()
-        bad.loc[0, "r2_adj"] = 1.7
-        with pytest.raises(InputError, match="proportions of total variation"):
+        bad.loc[0, "r2_adj"] = np.nan
+        with pytest.raises(InputError, match=r"`fractions\['r2_adj'\]` has a missing or "
+                                             "infinite value at position 0"):
             partition_figure(bad)
         bad = table.copy()
         bad["p"] = bad["p"].astype(object)
         bad.loc[0, "p"] = 1.5
         with pytest.raises(InputError, match=r"p-values must lie in \(0, 1\]; got 1.5"):
             partition_figure(bad)
+        with pytest.raises(InputError, match="parameter `alpha` must be > 0.0"):
+            partition_figure(table, alpha=0.0)
         with pytest.raises(InputError, match="2 to 4 explanatory groups"):
             partition_figure(_group_table(list("abcde")))
         with pytest.raises(InputError, match="must be a pandas DataFrame"):
@@ -337,6 +340,9 @@ class TestWeightingFigure:
     def test_validation(self):
         with pytest.raises(InputError, match="`chosen` 'knn' is not one of the schemes"):
             weighting_figure(self.TABLE, chosen="knn")
+        with pytest.raises(InputError, match="parameter `corrected_alpha` must be > 0.0 and "
+                                             "<= 0.05; got 0.1"):
+            weighting_figure(self.TABLE, corrected_alpha=0.1)
         bad = self.TABLE.assign(p=[0.1, None, 0.2])
         with pytest.raises(InputError, match="must hold a p-value for every scheme"):
             weighting_figure(bad)

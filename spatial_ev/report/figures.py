@@ -26,6 +26,7 @@ from matplotlib.patheffects import withStroke
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 from matplotlib.transforms import blended_transform_factory
 
+from .._validation import check_real
 from ..errors import InputError
 from . import _checks as ck
 from . import _style as st
@@ -119,13 +120,11 @@ def save_figure(fig: Figure, folder: str | os.PathLike, stem: str, *,
 
 def _check_fractions(fractions: object) -> tuple[pd.DataFrame, list[str] | None]:
     frame = ck.check_frame("fractions", fractions, ("name", "r2_adj", "testable", "p"))
+    # adjusted R² fractions are shares of total variation, but with few sites and many
+    # predictors they can fall below -1; any finite value is drawn as given
     values = ck.check_numeric("fractions['r2_adj']", frame["r2_adj"])
-    if np.any(np.abs(values) > 1.0 + 1e-9):
-        raise InputError("`fractions['r2_adj']` must be proportions of total variation "
-                         f"(between -1 and 1); got {values.tolist()}")
     rows = []
-    for i, (name, v, testable, p) in enumerate(zip(frame["name"], values, frame["testable"],
-                                                   frame["p"])):
+    for name, v, testable, p in zip(frame["name"], values, frame["testable"], frame["p"]):
         rows.append({"name": str(name), "r2_adj": float(v), "testable": bool(testable),
                      "p": ck.check_p(p)})
     clean = pd.DataFrame(rows)
@@ -187,6 +186,7 @@ def partition_figure(fractions: pd.DataFrame, *, alpha: float = 0.05,
     4
     """
     table, groups = _check_fractions(fractions)
+    alpha = check_real("alpha", alpha, low=0.0, high=1.0, low_inclusive=False)
     n = len(table)
     y = np.arange(n)[::-1].astype(float)
     fig = Figure(figsize=(8.0, 1.5 + 0.42 * n), layout="constrained")
@@ -532,6 +532,10 @@ def weighting_figure(table: pd.DataFrame, *, alpha: float = 0.05,
     [0.025321]
     """
     frame = ck.check_frame("table", table, ("scheme", "r2_adj", "p"))
+    alpha = check_real("alpha", alpha, low=0.0, high=1.0, low_inclusive=False)
+    if corrected_alpha is not None:
+        corrected_alpha = check_real("corrected_alpha", corrected_alpha, low=0.0, high=alpha,
+                                     low_inclusive=False)
     r2 = ck.check_numeric("table['r2_adj']", frame["r2_adj"])
     p = np.array([ck.check_p(v) for v in frame["p"]], dtype=float)
     if np.isnan(p).any():

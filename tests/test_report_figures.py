@@ -237,6 +237,13 @@ class TestScalogramFigure:
         lo, hi = ax.get_xlim()
         assert lo < 300 and hi > 12_000  # the class bands are inside the axis
 
+    def test_many_selected_only_largest_named(self):
+        names, scale, r2, _ = _basis()
+        fig = scalogram_figure(r2, scale, selected=list(names[:20]))
+        named = [t.get_text() for t in fig.axes[0].texts if t.get_text().startswith("sv")]
+        assert sorted(named) == sorted(r2[names[:20]].nlargest(10).index)
+        assert len(_collection(fig, "selected-vector").get_offsets()) == 20
+
     def test_validation(self):
         names, scale, r2, _ = _basis()
         with pytest.raises(InputError, match="names vector\\(s\\) \\['sv999'\\]"):

@@ -293,8 +293,9 @@ def scalogram_figure(r2: pd.Series, scale: pd.Series, *, selected: Iterable[str]
 
     Vectors are placed at their scale in map units on a logarithmic axis (fine structures on
     the left, broad on the right); each is a stem whose height is its R² (share of the total
-    variation of the transformed community table). Selected vectors are coloured and named;
-    the others are grey. Scale classes, when given, are shaded bands with their names on top.
+    variation of the transformed community table). Selected vectors are coloured and named
+    (only the ten with the largest R² when more than fifteen are selected); the others are
+    grey. Scale classes, when given, are shaded bands with their names on top.
 
     Parameters
     ----------
@@ -343,7 +344,8 @@ def scalogram_figure(r2: pd.Series, scale: pd.Series, *, selected: Iterable[str]
     ax.vlines(scale[mask], 0, r2[mask], color=accent, lw=2.0, zorder=4)
     ax.scatter(scale[mask], r2[mask], s=34, color=accent, zorder=5, gid="selected-vector",
                edgecolor="white", linewidth=0.6)
-    for name in sel:
+    named = sel if len(sel) <= 15 else list(r2[sel].nlargest(10).index)  # avoid clutter
+    for name in named:
         ax.annotate(str(name), (scale[name], r2[name]), xytext=(0, 5),
                     textcoords="offset points", ha="center", fontsize=7, color=accent)
     lo, hi = float(scale.min()), float(scale.max())
@@ -398,6 +400,8 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     Parameters
     ----------
     site_scores : DataFrame, sites × axes (columns are axis names, e.g. ``RDA1``, ``RDA2``).
+        With a single constrained axis, pass the first residual axis (e.g. ``PC1``) as the
+        second column, with its eigenvalue in ``eigenvalues``.
     species_scores : DataFrame, species × the same axes.
     variable_scores : DataFrame, explanatory variables × the same axes, or None.
     eigenvalues : Series indexed by axis name (at least the plotted axes), variance of each axis.

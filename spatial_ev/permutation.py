@@ -19,7 +19,10 @@ p-value: ``(k + 1) / (N + 1)`` with k the number of permuted statistics >= the o
 identity permutation, symmetric designs) never turns a tie into a miss.
 
 Batched engine. For an orthonormal basis Q = [Q_W | Q_X] (n x k) and permuted residuals ΠR,
-the sums of squares are ``||Q^T Π R||²`` split by block. Many permutations share one matrix
+the sums of squares are ``||Q^T Π R||²`` split by block. When X spans more dimensions than
+the residual space (many spatial eigenvectors on few sites, up to 5,000 sites), the basis of
+the residual space (orthogonal complement of [1, W, X]) replaces Q_X, and SS_X = ||ΠR||² -
+SS_W - SS_residual, which is cheaper. Many permutations share one matrix
 product: either the rows of R are gathered for a chunk of permutations and multiplied by Q^T
 (``(k x n) @ (n x chunk*p)``), or -- when Q has fewer columns than R -- the rows of Q are
 gathered with the inverse permutations (``Q[Π⁻¹]^T R``); the smaller side is gathered. With
@@ -54,6 +57,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import scipy.linalg
 
 from ._validation import check_int, check_option, check_rng
 from .canonical import _Model, _check_explanatory, _check_response, _fraction, _prepare
@@ -68,6 +72,7 @@ TIE_TOLERANCE = 1e-10
 RESTRICTIONS = ("free", "blocks", "cyclic", "toroidal")
 _GATHER_BYTES = 8 * 2 ** 20
 _DEFAULT_CHUNK = 2 * BLOCK_SIZE
+_COMPLEMENT_MAX_SITES = 5000   # the complement is built from an n x n orthogonal matrix
 
 
 # ----------------------------------------------------------------------------------------------
@@ -191,13 +196,15 @@ def permutations(n_sites: int, n_permutations: int, *, seed=None, restriction: s
 class _Kernel:
     """Statistic of every permutation in a range; picklable so that dask can ship it."""
 
-    basis: np.ndarray        # (n, q + r): [Q_W | Q_X], columns orthonormal
+    basis: np.ndarray        # (n, q + r'): [Q_W | Q_X], or [Q_W | complement] (see below)
     response: np.ndarray     # (n, p'): residuals of Y on W (possibly SVD-reduced)
     q: int
     ss_total: float          # ||response||²
+    df_model: int
     df_residual: int
     statistic: str           # "f" (pseudo-F) or "first_axis" (largest eigenvalue, axis tests)
     scheme: _Scheme
+    complement: bool = False  # second block spans the residual space instead of X
 
     def __call__(self, task: tuple[int, int]) -> np.ndarray:
         start, stop = task
@@ -223,10 +230,13 @@ class _Kernel:
             prod = (self.basis.T @ g).reshape(k, m, p)                   # (k, m, p)
             ss = np.einsum("kmp,kmp->km", prod, prod).T
         ss_w = ss[:, :self.q].sum(axis=1)
-        ss_x = ss[:, self.q:].sum(axis=1)
-        resid = np.maximum(self.ss_total - ss_w - ss_x, 0.0) / self.df_residual
+        ss_2 = ss[:, self.q:].sum(axis=1)
+        if self.complement:  # permuted residuals are centred: total = W part + X part + rest
+            ss_x = np.maximum(self.ss_total - ss_w - ss_2, 0.0)
+            return ss_x / self.df_model / (ss_2 / self.df_residual)
+        resid = np.maximum(self.ss_total - ss_w - ss_2, 0.0) / self.df_residual
         if self.statistic == "f":
-            return ss_x / (k - self.q) / resid
+            return ss_2 / self.df_model / resid
         block = prod[:, self.q:, :] if gather_basis else prod[self.q:].transpose(1, 0, 2)
         gram = block @ block.transpose(0, 2, 1) if k - self.q <= p \
             else block.transpose(0, 2, 1) @ block
@@ -380,8 +390,15 @@ def _test(model: _Model, scheme: _Scheme, statistic: str = "f"):
         observed = ss_x / r / denominator
     else:
         observed = float(np.linalg.svd(prod, compute_uv=False)[0] ** 2) / denominator
-    kernel = _Kernel(np.ascontiguousarray(np.hstack([qw, qx])), response, q, ss_total, df_res,
-                     statistic, scheme)
+    second, complement = qx, False
+    if statistic == "f" and df_res < r and n <= _COMPLEMENT_MAX_SITES:
+        # fewer residual than model dimensions: the orthogonal complement of [1, W, X] is the
+        # narrower basis, and SS_X = SS_total - SS_W - SS_residual
+        spanned = np.column_stack([np.full(n, n ** -0.5), qw, qx])
+        full = scipy.linalg.qr(spanned, mode="full", check_finite=False)[0]
+        second, complement = full[:, spanned.shape[1]:], True
+    kernel = _Kernel(np.ascontiguousarray(np.hstack([qw, second])), response, q, ss_total, r,
+                     df_res, statistic, scheme, complement)
     return observed, kernel
 
 

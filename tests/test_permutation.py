@@ -78,10 +78,12 @@ class TestPermutationTest:
         np.testing.assert_allclose(test.null_distribution, residual_only, rtol=1e-10)
         assert test.method == "reduced_residual"
 
-    @pytest.mark.parametrize("shape", [(25, 8, 3), (25, 2, 6), (12, 30, 4)])
+    @pytest.mark.parametrize("shape", [(25, 8, 3), (25, 2, 6), (12, 30, 4), (20, 4, 14),
+                                       (20, 40, 13)])
     def test_both_gather_sides_and_wide_tables(self, shape):
-        # fewer predictors than species (basis gathered), more (response gathered), and more
-        # species than sites (SVD-reduced response)
+        # fewer predictors than species (basis gathered), more (response gathered), more
+        # species than sites (SVD-reduced response), more predictors than residual degrees of
+        # freedom (residual-space complement used)
         n, p, m = shape
         y, x, w = data(31415926, n=n, p=p, m=m)
         test = permutation_test(y, x, conditioning=w, n_permutations=150, seed=99)
@@ -89,6 +91,10 @@ class TestPermutationTest:
         resid = y - reduced @ np.linalg.lstsq(reduced, y, rcond=None)[0]
         direct = [refit_f(resid[perm], x, w) for perm in permutations(n, 150, seed=99)]
         np.testing.assert_allclose(test.null_distribution, direct, rtol=1e-9)
+        assert test.statistic == pytest.approx(refit_f(y, x, w), rel=1e-10)
+        raw = permutation_test(y, x, n_permutations=150, seed=99)
+        direct = [refit_f(y[perm], x, None) for perm in permutations(n, 150, seed=99)]
+        np.testing.assert_allclose(raw.null_distribution, direct, rtol=1e-9)
 
     def test_p_value_formula_with_tie_tolerance(self):
         y, x, _ = data(246813579, effect=0.2)

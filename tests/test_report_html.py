@@ -57,6 +57,18 @@ class TestExampleContext:
         assert a["lcbd"]["sites"].equals(b["lcbd"]["sites"])
 
 
+class TestInputsUnchanged:
+    def test_render_leaves_context_as_it_was(self, context, page):
+        fresh = example_context()  # same seed: what the context held before rendering
+        assert context["partition"]["fractions"].equals(fresh["partition"]["fractions"])
+        assert context["lcbd"]["sites"].equals(fresh["lcbd"]["sites"])
+        assert list(context["lcbd"]["sites"].columns) == ["lcbd", "p", "geometry"]
+        for a, b in zip(context["scale_maps"], fresh["scale_maps"]):
+            assert a["sites"].equals(b["sites"])
+        assert context["triplot"]["scaling_2"]["species"].equals(
+            fresh["triplot"]["scaling_2"]["species"])
+
+
 class TestBuildFigures:
     def test_one_figure_per_part(self, context):
         names = set(build_figures(_light(context, partition=context["partition"],

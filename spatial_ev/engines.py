@@ -109,7 +109,7 @@ def _run_dask(function, tasks, scheduler, n_workers, report):
         if scheduler is None:
             own_cluster = distributed.LocalCluster(
                 n_workers=n_workers or min(4, os.cpu_count() or 1), threads_per_worker=1,
-                processes=False, dashboard_address=None)
+                processes=False, dashboard_address=":0")
             client = own_client = distributed.Client(own_cluster)
         elif isinstance(scheduler, str):
             try:

@@ -22,7 +22,7 @@ def slow_square(task: int) -> int:
 def client():
     distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
-                                  dashboard_address=None) as cluster, \
+                                  dashboard_address=":0") as cluster, \
             distributed.Client(cluster) as c:
         yield c
 
@@ -114,3 +114,9 @@ class TestRunTasks:
         monkeypatch.setattr(engines, "CONNECT_TIMEOUT", "1s")
         with pytest.raises(InputError, match="could not reach the dask scheduler"):
             run_tasks(abs, [1], engine="dask", scheduler="tcp://127.0.0.1:1")
+
+
+class TestTemporaryCluster:
+    def test_dask_without_scheduler_starts_and_closes_a_local_cluster(self):
+        pytest.importorskip("distributed")
+        assert run_tasks(slow_square, range(4), engine="dask", n_workers=1) == [0, 1, 4, 9]

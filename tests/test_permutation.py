@@ -153,7 +153,7 @@ class TestPermutationTest:
         y, x, w = data(1029384756)
         ref = permutation_test(y, x, conditioning=w, n_permutations=500, seed=314159)
         with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
-                                      dashboard_address=None) as cluster, \
+                                      dashboard_address=":0") as cluster, \
                 distributed.Client(cluster) as client:
             test = permutation_test(y, x, conditioning=w, n_permutations=500, seed=314159,
                                     chunk_size=100, engine="dask", scheduler=client)

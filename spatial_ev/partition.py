@@ -158,7 +158,7 @@ def partition_variation(
     >>> round(float(part.fractions["r2_adj"].sum()), 10)
     1.0
     """
-    Yc, blocks, names, cond, n, labels_index = _check_partition(Y, groups, conditioning)
+    Yc, blocks, names, cond, n = _check_partition(Y, groups, conditioning)
     n_permutations = check_int("n_permutations", n_permutations, low=0)
     check_option("engine", engine, ENGINES)
     rng = check_rng(seed)
@@ -282,7 +282,7 @@ def _check_partition(Y, groups, conditioning):
         cond, rows, _ = as_matrix("conditioning", conditioning)
         _check_rows("conditioning", cond, rows, n, y_rows)
     Yc = Yarr - Yarr.mean(axis=0)
-    return Yc, blocks, tuple(names), cond, n, y_rows
+    return Yc, blocks, tuple(names), cond, n
 
 
 def _check_rows(name, arr, rows, n, y_rows):

@@ -26,10 +26,10 @@ import pandas as pd
 from scipy import sparse
 
 from ._validation import check_int, check_real, check_rng
-from .canonical import _column_basis, adjusted_r2
+from .canonical import adjusted_r2
 from .errors import InputError
 from .moran import _check_weights, morans_i
-from .selection import _COLLINEAR_RTOL, _check_selection_data
+from .selection import _check_selection_data, _remove_conditioning, _SequentialRanking
 
 __all__ = ["select_by_residual_moran", "ResidualMoranSelection"]
 
@@ -149,14 +149,11 @@ def select_by_residual_moran(
     if total_ss <= 0:
         raise InputError("`Y` has no variation (every column is constant); nothing to explain")
 
-    Qc = _column_basis(cond)[0] if cond is not None else np.zeros((n, 0))
+    E, Zr, Qc, raw2, dead = _remove_conditioning(Yc, Z, cond, names, stacklevel=3)
     m_c = Qc.shape[1]
-    E = Yc - Qc @ (Qc.T @ Yc)
-    Zw = Z - Z.mean(axis=0)
-    raw2 = np.einsum("ij,ij->j", Zw, Zw)
-    Zw = Zw - Qc @ (Qc.T @ Zw)
     r2_c = 1.0 - float(np.sum(E * E)) / total_ss
     base_adj = adjusted_r2(r2_c, n, m_c)
+    state = _SequentialRanking(E, Zr, ~dead, raw2, total_ss)
 
     i0, p0 = _pooled_moran_test(E, W, n_permutations, rng.spawn(1)[0])
     rows, chosen, reason = [], [], ""
@@ -170,27 +167,25 @@ def select_by_residual_moran(
         if n - m_c - len(chosen) - 2 < 1:
             reason = "no residual degrees of freedom left for another variable"
             break
-        z2 = np.einsum("ij,ij->j", Zw, Zw)
-        live = z2 > _COLLINEAR_RTOL * np.maximum(raw2, 1e-300)
+        z2, live = state.live()
         live[chosen] = False
         if not live.any():
             reason = "no candidate left; residuals still autocorrelated"
             break
         # residual Moran's I after adding each candidate, all at once:
         # E_j = E − z_j b_j with b_j = z_jᵀE/‖z_j‖²
+        E, Zw = state.residual, state.candidates
         WZ = W @ Zw
-        A = Zw.T @ E                                   # (m, p)
-        B = WZ.T @ E                                   # (m, p)
-        b = A / np.maximum(z2, 1e-300)[:, None]
-        num = (float(np.sum(E * (W @ E))) - 2 * np.einsum("jp,jp->j", b, B)
-               + np.einsum("ij,ij->j", Zw, WZ) * np.einsum("jp,jp->j", b, b))
-        den = float(np.sum(E * E)) - z2 * np.einsum("jp,jp->j", b, b)
+        b = (Zw.T @ E) / np.maximum(z2, 1e-300)[:, None]          # (m, p)
+        bb = np.einsum("jp,jp->j", b, b)
+        num = (float(np.sum(E * (W @ E))) - 2 * np.einsum("jp,jp->j", b, WZ.T @ E)
+               + np.einsum("ij,ij->j", Zw, WZ) * bb)
+        den = float(np.sum(E * E)) - z2 * bb
         with np.errstate(divide="ignore", invalid="ignore"):
             moran_after = np.where(live, (n / s0) * num / den, np.inf)
         j = int(np.argmin(moran_after))
-        q = Zw[:, j] / np.sqrt(z2[j])
-        E = E - np.outer(q, q @ E)
-        Zw = Zw - np.outer(q, q @ Zw)
+        state.enter(j)
+        E = state.residual
         chosen.append(j)
         i_now, p_now = _pooled_moran_test(E, W, n_permutations, rng.spawn(1)[0])
         r2 = 1.0 - float(np.sum(E * E)) / total_ss - r2_c

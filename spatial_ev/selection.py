@@ -236,24 +236,10 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
         return permutation_test(Yc, X, conditioning=conditioning, n_permutations=n_permutations,
                                 seed=rng.spawn(1)[0], engine=engine, scheduler=scheduler)
 
-    # remove the conditioning variables from response and candidates
-    Qc = _column_basis(cond)[0] if cond is not None else np.zeros((n, 0))
+    Yr, Zr, Qc, raw_norms2, dead = _remove_conditioning(Yc, Z, cond, names)
     m_c = Qc.shape[1]
-    Yr = Yc - Qc @ (Qc.T @ Yc)
-    Zc = Z - Z.mean(axis=0)
-    Zr = Zc - Qc @ (Qc.T @ Zc)
     r2_c = (total_ss - float(np.sum(Yr * Yr))) / total_ss
     base_adj = adjusted_r2(r2_c, n, m_c)
-    norms2 = np.einsum("ij,ij->j", Zr, Zr)
-    raw_norms2 = np.einsum("ij,ij->j", Zc, Zc)
-    dead = norms2 <= _COLLINEAR_RTOL * np.maximum(raw_norms2, _TINY)
-    if dead.all():
-        raise InputError("every candidate is constant or collinear with the conditioning "
-                         "variables; nothing to select")
-    if dead.any():
-        warnings.warn(f"candidates {[names[j] for j in np.flatnonzero(dead)]} are constant or "
-                      f"collinear with the conditioning variables and were not considered",
-                      DroppedVariablesWarning, stacklevel=3)
 
     # global model: with orthogonal candidates its R² is the sum of their contributions
     ranker = _make_ranker(Yr, Zr, ~dead, raw_norms2, total_ss)
@@ -349,6 +335,29 @@ def _select(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, glo
     return finish(reason)
 
 
+def _remove_conditioning(Yc, Z, cond, names, stacklevel=4):
+    """Residualise response and centred candidates on the conditioning variables.
+
+    Returns ``(Yr, Zr, Qc, raw_norms2, dead)``: Qc is an orthonormal basis of the centred
+    conditioning table, raw_norms2 the squared norms of the centred candidates and ``dead``
+    flags candidates that are constant or collinear with the conditioning (warned about).
+    """
+    n = Yc.shape[0]
+    Qc = _column_basis(cond)[0] if cond is not None else np.zeros((n, 0))
+    Zc = Z - Z.mean(axis=0)
+    Yr, Zr = Yc - Qc @ (Qc.T @ Yc), Zc - Qc @ (Qc.T @ Zc)
+    raw_norms2 = np.einsum("ij,ij->j", Zc, Zc)
+    dead = np.einsum("ij,ij->j", Zr, Zr) <= _COLLINEAR_RTOL * np.maximum(raw_norms2, _TINY)
+    if dead.all():
+        raise InputError("every candidate is constant or collinear with the conditioning "
+                         "variables; nothing to select")
+    if dead.any():
+        warnings.warn(f"candidates {[names[j] for j in np.flatnonzero(dead)]} are constant or "
+                      f"collinear with the conditioning variables and were not considered",
+                      DroppedVariablesWarning, stacklevel=stacklevel)
+    return Yr, Zr, Qc, raw_norms2, dead
+
+
 class _OrthogonalRanking:
     """Mutually orthogonal candidates: each R² contribution ‖Yᵀu‖²/(‖u‖²·SS) is fixed."""
 
@@ -367,26 +376,34 @@ class _OrthogonalRanking:
 
 
 class _SequentialRanking:
-    """General candidates: response and candidates are orthogonalised against each entry."""
+    """General candidates: response and candidates are orthogonalised against each entry.
+
+    ``residual`` (n, p) is the response and ``candidates`` (n, m) the candidates, both
+    residualised on everything entered so far.
+    """
 
     kind = "sequential"
 
     def __init__(self, Yr, Zr, alive, raw_norms2, total_ss):
-        self._Y, self._Z = Yr.copy(), Zr.copy()
+        self.residual, self.candidates = Yr.copy(), Zr.copy()
         self._alive, self._raw, self._ss = alive, raw_norms2, total_ss
 
+    def live(self) -> tuple[np.ndarray, np.ndarray]:
+        """Squared norms of the residualised candidates and which are not yet collinear."""
+        w2 = np.einsum("ij,ij->j", self.candidates, self.candidates)
+        return w2, self._alive & (w2 > _COLLINEAR_RTOL * np.maximum(self._raw, _TINY))
+
     def gains(self) -> np.ndarray:
-        w2 = np.einsum("ij,ij->j", self._Z, self._Z)
-        live = self._alive & (w2 > _COLLINEAR_RTOL * np.maximum(self._raw, _TINY))
-        cross = self._Z.T @ self._Y
+        w2, live = self.live()
+        cross = self.candidates.T @ self.residual
         return np.where(live, np.einsum("jp,jp->j", cross, cross)
                         / np.maximum(w2, _TINY) / self._ss, -np.inf)
 
     def enter(self, j: int) -> None:
         """One Gram–Schmidt (rank-one QR) update of the response and remaining candidates."""
-        q = self._Z[:, j] / np.sqrt(np.sum(self._Z[:, j] ** 2))
-        self._Y -= np.outer(q, q @ self._Y)
-        self._Z -= np.outer(q, q @ self._Z)
+        q = self.candidates[:, j] / np.sqrt(np.sum(self.candidates[:, j] ** 2))
+        self.residual -= np.outer(q, q @ self.residual)
+        self.candidates -= np.outer(q, q @ self.candidates)
 
 
 def _make_ranker(Yr, Zr, alive, raw_norms2, total_ss):

@@ -73,7 +73,7 @@ class TestInspectInBrowser:
                     'undefinedFunctionCall();</script></body>')
         path = tmp_path / "broken.html"
         path.write_text(page.replace("</body>", injected), encoding="utf-8")
-        check = inspect_in_browser(path, screenshot=tmp_path / "broken.png")
+        check = inspect_in_browser(path, capture="page")
         assert not check.ok
         assert check.instrumented
         assert check.images_total == 1
@@ -83,6 +83,7 @@ class TestInspectInBrowser:
         assert any("deliberate console error" in m for m in check.console_messages)
         problems = "\n".join(check.problems())
         assert "image did not load: deliberately broken" in problems
+        assert check.screenshot is None and not (tmp_path / "broken.screenshot.png").exists()
 
     def test_validation(self, tmp_path):
         with pytest.raises(InputError, match="is not an existing file"):
@@ -90,6 +91,8 @@ class TestInspectInBrowser:
         (tmp_path / "x.html").write_text("<html></html>")
         with pytest.raises(InputError, match="`width` must be ≥ 320"):
             inspect_in_browser(tmp_path / "x.html", width=100)
+        with pytest.raises(InputError, match="parameter `capture` must be one of"):
+            inspect_in_browser(tmp_path / "x.html", capture="pdf")
 
 
 class TestBrowserCheck:

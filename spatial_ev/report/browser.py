@@ -1,6 +1,7 @@
 """Open a report in headless Chromium and check that it really displays (used by tests).
 
-:func:`inspect_in_browser` runs Debian's Chromium twice on an HTML file, each time with a
+:func:`inspect_in_browser` runs Debian's Chromium twice on an HTML file (once with
+``capture="page"``), each time with a
 fresh, throw-away profile and no network services:
 
 1. ``--dump-dom`` after the page's scripts ran (``--virtual-time-budget``), with Chromium's
@@ -37,6 +38,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .._validation import check_option
 from ..errors import InputError
 
 __all__ = ["BrowserCheck", "find_chromium", "inspect_in_browser"]
@@ -54,9 +56,10 @@ class BrowserCheck:
     Attributes
     ----------
     html_path : the page inspected.
-    screenshot : full-page PNG written by Chromium.
-    screenshot_shape : (height, width) of the screenshot in pixels.
-    screenshot_std : standard deviation of the screenshot's grey levels (0 = blank page).
+    screenshot : full-page PNG written by Chromium (None with ``capture="page"``).
+    screenshot_shape : (height, width) of the screenshot in pixels ((0, 0) without one).
+    screenshot_std : standard deviation of the screenshot's grey levels (0 = blank page;
+        None without a screenshot).
     page_height : document height in CSS pixels reported by the page (0 if unknown).
     instrumented : True if the page's recorder script ran (``data-report-loaded`` set).
     images_total : number of ``<img>`` elements in the page.
@@ -68,9 +71,9 @@ class BrowserCheck:
     """
 
     html_path: Path
-    screenshot: Path
+    screenshot: Path | None
     screenshot_shape: tuple[int, int]
-    screenshot_std: float
+    screenshot_std: float | None
     page_height: int
     instrumented: bool
     images_total: int
@@ -90,7 +93,7 @@ class BrowserCheck:
         out += [f"page error: {e}" for e in self.page_errors]
         out += [f"console message: {m}" for m in self.console_messages]
         out += [f"browser error: {e}" for e in self.browser_errors]
-        if self.screenshot_std < 1.0:
+        if self.screenshot_std is not None and self.screenshot_std < 1.0:
             out.append(f"the screenshot is blank (grey-level spread {self.screenshot_std:.2f})")
         return out
 
@@ -174,7 +177,8 @@ def _json_attr(attrs: dict[str, str], name: str, default: object) -> object:
 
 
 def inspect_in_browser(html_path: str | os.PathLike, *,
-                       screenshot: str | os.PathLike | None = None, width: int = 1280,
+                       screenshot: str | os.PathLike | None = None, capture: str = "full",
+                       width: int = 1280,
                        time_budget_ms: int = 5000, max_height: int = 16000,
                        timeout: float = 60.0) -> BrowserCheck:
     """Open ``html_path`` in headless Chromium; return what loaded, what failed, a screenshot.
@@ -184,6 +188,8 @@ def inspect_in_browser(html_path: str | os.PathLike, *,
     html_path : an HTML file (usually a rendered spatial_ev report).
     screenshot : where to write the full-page PNG (default: ``<html stem>.screenshot.png``
         beside the page).
+    capture : ``"full"`` (page state and screenshot) or ``"page"`` (page state only: one
+        Chromium run instead of two; the screenshot fields are then empty and not checked).
     width : window width in CSS pixels.
     time_budget_ms : virtual time given to the page's scripts before the DOM is read.
     max_height : cap on the screenshot height in pixels (longer pages are cut; the window is
@@ -208,6 +214,7 @@ def inspect_in_browser(html_path: str | os.PathLike, *,
                          f"and {max_height}")
     shot = (Path(screenshot) if screenshot is not None
             else path.with_name(f"{path.stem}.screenshot.png")).resolve()
+    check_option("capture", capture, ("full", "page"))
     chromium = find_chromium()
     url = path.as_uri()
 
@@ -226,6 +233,18 @@ def inspect_in_browser(html_path: str | os.PathLike, *,
         height = 0
     console, browser_errors = _page_lines(stderr, url)
 
+    common = dict(html_path=path, page_height=height,
+                  instrumented=attrs.get("data-report-loaded") == "1",
+                  images_total=int(images.get("total", 0)) if isinstance(images, dict) else 0,
+                  images_broken=tuple(map(str, images.get("broken", ())))
+                  if isinstance(images, dict) else (),
+                  page_errors=tuple(map(str, errors)) if isinstance(errors, list)
+                  else (str(errors),),
+                  console_messages=tuple(console), browser_errors=tuple(browser_errors),
+                  chromium=chromium)
+    if capture == "page":
+        return BrowserCheck(screenshot=None, screenshot_shape=(0, 0), screenshot_std=None,
+                            **common)
     shot_height = min(max(height, 200), max_height) if height > 0 else min(900, max_height)
     _run(chromium, [f"--window-size={width},{shot_height}",
                     f"--virtual-time-budget={time_budget_ms}", f"--screenshot={shot}"],
@@ -236,13 +255,5 @@ def inspect_in_browser(html_path: str | os.PathLike, *,
 
     with Image.open(shot) as image:
         grey = np.asarray(image.convert("L"), dtype=np.float64)
-    return BrowserCheck(
-        html_path=path, screenshot=shot, screenshot_shape=(grey.shape[0], grey.shape[1]),
-        screenshot_std=float(grey.std()), page_height=height,
-        instrumented=attrs.get("data-report-loaded") == "1",
-        images_total=int(images.get("total", 0)) if isinstance(images, dict) else 0,
-        images_broken=tuple(map(str, images.get("broken", ())))
-        if isinstance(images, dict) else (),
-        page_errors=tuple(map(str, errors)) if isinstance(errors, list) else (str(errors),),
-        console_messages=tuple(console), browser_errors=tuple(browser_errors),
-        chromium=chromium)
+    return BrowserCheck(screenshot=shot, screenshot_shape=(grey.shape[0], grey.shape[1]),
+                        screenshot_std=float(grey.std()), **common)

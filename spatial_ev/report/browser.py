@@ -1,8 +1,7 @@
 """Open a report in headless Chromium and check that it really displays (used by tests).
 
 :func:`inspect_in_browser` runs Debian's Chromium twice on an HTML file (once with
-``capture="page"``), each time with a
-fresh, throw-away profile and no network services:
+``capture="page"``), each time with a fresh, throw-away profile and no network services:
 
 1. ``--dump-dom`` after the page's scripts ran (``--virtual-time-budget``), with Chromium's
    log on standard error (``--enable-logging=stderr --v=0``). The report page records script

@@ -11,6 +11,7 @@ schemes inflates the type I error; the adjusted R² of the chosen scheme remains
 from __future__ import annotations
 
 import warnings
+import zlib
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
@@ -167,7 +168,8 @@ def compare_weighting_schemes(
     n_permutations : int, default 999
         Permutations per test; must allow p-values ≤ α'.
     seed : None, int or numpy.random.Generator
-        Each scheme gets its own stream derived reproducibly from it.
+        Each scheme gets its own stream derived from it and from the scheme's name, so a
+        scheme's p-values do not depend on which other schemes are compared.
     conditioning : array-like or DataFrame, optional
         Variables removed first (all tests partial).
     sign : {"positive", "negative", "all"}
@@ -213,10 +215,11 @@ def compare_weighting_schemes(
         cond, rows, _ = as_matrix("conditioning", conditioning)
         _check_rows("conditioning", cond, rows, Yarr.shape[0], y_rows)
     Yc = Yarr - Yarr.mean(axis=0)
-    streams = check_rng(seed).spawn(k)
+    root = check_rng(seed).spawn(1)[0].bit_generator.seed_seq
 
     rows_out, best, best_sel, best_basis = [], None, None, None
-    for (name, graph_method, weighting, exponent), rng in zip(parsed, streams):
+    for name, graph_method, weighting, exponent in parsed:
+        rng = _scheme_stream(root, name)
         row = {"scheme": name, "n_vectors": 0, "global_pseudo_f": np.nan, "global_p": np.nan,
                "global_p_sidak": np.nan, "significant": False, "n_selected": 0,
                "r2_adj": np.nan, "chosen": False, "note": ""}
@@ -274,6 +277,14 @@ def compare_weighting_schemes(
         table.loc[best, "chosen"] = True
     return WeightingComparison(table=table, best=best, selection=best_sel, basis=best_basis,
                                alpha=alpha, alpha_corrected=level, n_schemes=k)
+
+
+def _scheme_stream(root: np.random.SeedSequence, name: str) -> np.random.Generator:
+    """Random stream of one scheme, keyed by its name: the same seed gives a scheme the same
+    permutations whatever other schemes are compared alongside it."""
+    key = zlib.crc32(name.encode("utf-8"))
+    return np.random.default_rng(np.random.SeedSequence(
+        entropy=root.entropy, spawn_key=tuple(root.spawn_key) + (key,)))
 
 
 def _check_schemes(schemes) -> list[tuple[str, str | None, str | None, float | None]]:

@@ -84,6 +84,19 @@ class TestCompareWeightingSchemes:
         assert out.table.loc["minimum_spanning_tree/linear", "note"].startswith(
             "weighted graph disconnected")
 
+    def test_scheme_results_do_not_depend_on_the_other_schemes(self):
+        xy, Y = _broad_scale_survey(40, 31337, signal=0.5)
+        alone = compare_weighting_schemes(Y, xy, schemes=["distance"], n_permutations=99,
+                                          seed=9)
+        along = compare_weighting_schemes(Y, xy, schemes=["gabriel/binary", "distance"],
+                                          n_permutations=99, seed=9)
+        assert alone.table.loc["distance", "global_p"] == along.table.loc["distance",
+                                                                          "global_p"]
+        other = compare_weighting_schemes(Y, xy, schemes=["distance"], n_permutations=99,
+                                          seed=10)
+        assert other.table.loc["distance", "global_pseudo_f"] == pytest.approx(
+            alone.table.loc["distance", "global_pseudo_f"])
+
     def test_no_structure_gives_no_best(self):
         xy, Y = _broad_scale_survey(40, 5647382910, signal=0.0)
         out = compare_weighting_schemes(Y, xy, schemes=self.SCHEMES[:2], n_permutations=199,

@@ -379,7 +379,8 @@ class RedundancyAnalysis:
 
     def to_frame(self) -> pd.DataFrame:
         """Eigenvalue table: one row per axis with variance, proportion and cumulative proportion
-        of the total variance.
+        of the total variance (in a partial RDA the cumulative proportion starts from the part
+        explained by the conditioning table).
 
         Examples
         --------

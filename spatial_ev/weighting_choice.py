@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import warnings
 import zlib
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -158,11 +158,12 @@ def compare_weighting_schemes(
         ``conditioning``) when there is one.
     coords : (n, 2) array, DataFrame[x, y] or Survey
         Site coordinates in map units.
-    schemes : sequence of str, optional
+    schemes : sequence of str, or mapping of name to str or SpatialBasis, optional
         ``"<graph>/<weighting>"`` (graph: a :func:`neighbour_graph` method; weighting: binary,
         linear, concave_down, concave_up — the concave ones as ``"gabriel/concave_down:0.5"``
-        with the exponent) or ``"distance"`` (distance-based eigenvectors). Default
-        :data:`DEFAULT_SCHEMES` (8 schemes).
+        with the exponent) or ``"distance"`` (distance-based eigenvectors). A mapping names
+        each scheme and may give a prebuilt basis (e.g. a k-nearest-neighbour graph's, whose
+        ``sign`` is then the caller's choice). Default :data:`DEFAULT_SCHEMES` (8 schemes).
     alpha : float, default 0.05
         Family-wise level.
     n_permutations : int, default 999
@@ -218,7 +219,7 @@ def compare_weighting_schemes(
     root = check_rng(seed).spawn(1)[0].bit_generator.seed_seq
 
     rows_out, best, best_sel, best_basis = [], None, None, None
-    for name, graph_method, weighting, exponent in parsed:
+    for name, graph_method, weighting, exponent, prebuilt in parsed:
         rng = _scheme_stream(root, name)
         row = {"scheme": name, "n_vectors": 0, "global_pseudo_f": np.nan, "global_p": np.nan,
                "global_p_sidak": np.nan, "significant": False, "n_selected": 0,
@@ -229,7 +230,9 @@ def compare_weighting_schemes(
         try:
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always", DisconnectedGraphWarning)
-                if graph_method is None:
+                if prebuilt is not None:
+                    basis = prebuilt
+                elif graph_method is None:
                     basis = distance_eigenvectors(coords, sign=sign)
                 else:
                     graph = neighbour_graph(coords, method=graph_method)
@@ -287,43 +290,57 @@ def _scheme_stream(root: np.random.SeedSequence, name: str) -> np.random.Generat
         entropy=root.entropy, spawn_key=tuple(root.spawn_key) + (key,)))
 
 
-def _check_schemes(schemes) -> list[tuple[str, str | None, str | None, float | None]]:
-    """Parse scheme strings into (name, graph method, weighting, exponent)."""
-    from .connectivity import METHODS, WEIGHTINGS
-
+def _check_schemes(schemes) -> list[tuple]:
+    """Parse schemes into (name, graph method, weighting, exponent, prebuilt basis or None)."""
     if schemes is None:
         schemes = DEFAULT_SCHEMES
-    if isinstance(schemes, str) or not hasattr(schemes, "__iter__"):
+    if isinstance(schemes, Mapping):
+        items = list(schemes.items())
+    elif isinstance(schemes, str) or not hasattr(schemes, "__iter__"):
         raise InputError(f"`schemes` must be a list of scheme strings such as "
-                         f"['gabriel/binary', 'distance']; got {schemes!r}")
-    schemes = list(schemes)
-    if not schemes:
+                         f"['gabriel/binary', 'distance'] or a mapping of names to spatial "
+                         f"bases; got {schemes!r}")
+    else:
+        items = [(s, s) for s in schemes]
+    if not items:
         raise InputError("`schemes` is empty; give at least one scheme, e.g. ['distance']")
     out = []
-    for s in schemes:
-        if not isinstance(s, str):
-            raise InputError(f"`schemes` entries must be strings; got {s!r}")
-        if s == "distance":
-            out.append((s, None, None, None))
-            continue
-        graph, sep, weighting = s.partition("/")
-        weighting, _, exp_text = weighting.partition(":")
-        exponent = None
-        if exp_text:
-            try:
-                exponent = float(exp_text)
-            except ValueError:
-                raise InputError(f"`schemes` entry {s!r}: exponent {exp_text!r} is not a "
-                                 f"number; write e.g. 'gabriel/concave_down:0.5'") from None
-        if not sep or not graph or not weighting:
-            raise InputError(f"`schemes` entry {s!r} is not 'distance' or '<graph>/<weighting>' "
-                             f"(e.g. 'gabriel/linear')")
-        if graph not in METHODS or weighting not in WEIGHTINGS:
-            raise InputError(f"`schemes` entry {s!r}: graph must be one of {', '.join(METHODS)} "
-                             f"and weighting one of {', '.join(WEIGHTINGS)}")
-        out.append((s, graph, weighting, exponent))
+    for name, spec in items:
+        if not isinstance(name, str) or not name:
+            raise InputError(f"`schemes` names must be non-empty strings; got {name!r}")
+        if isinstance(getattr(spec, "vectors", None), pd.DataFrame):
+            out.append((name, None, None, None, spec))
+        elif isinstance(spec, str):
+            out.append((name, *_parse_scheme(spec), None))
+        else:
+            raise InputError(f"`schemes` entry {name!r} must be a scheme string or a spatial "
+                             f"basis (with a `vectors` table); got {type(spec).__name__}")
     names = [o[0] for o in out]
     if len(set(names)) != len(names):
         raise InputError(f"`schemes` lists a scheme twice; each counts in the Šidák correction, "
                          f"so give each once; got {names}")
     return out
+
+
+def _parse_scheme(s: str) -> tuple[str | None, str | None, float | None]:
+    """'distance' → (None, None, None); 'gabriel/concave_down:0.5' → ('gabriel', ..., 0.5)."""
+    from .connectivity import METHODS, WEIGHTINGS
+
+    if s == "distance":
+        return None, None, None
+    graph, sep, weighting = s.partition("/")
+    weighting, _, exp_text = weighting.partition(":")
+    exponent = None
+    if exp_text:
+        try:
+            exponent = float(exp_text)
+        except ValueError:
+            raise InputError(f"`schemes` entry {s!r}: exponent {exp_text!r} is not a "
+                             f"number; write e.g. 'gabriel/concave_down:0.5'") from None
+    if not sep or not graph or not weighting:
+        raise InputError(f"`schemes` entry {s!r} is not 'distance' or '<graph>/<weighting>' "
+                         f"(e.g. 'gabriel/linear')")
+    if graph not in METHODS or weighting not in WEIGHTINGS:
+        raise InputError(f"`schemes` entry {s!r}: graph must be one of {', '.join(METHODS)} "
+                         f"and weighting one of {', '.join(WEIGHTINGS)}")
+    return graph, weighting, exponent

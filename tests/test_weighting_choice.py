@@ -97,6 +97,17 @@ class TestCompareWeightingSchemes:
         assert other.table.loc["distance", "global_pseudo_f"] == pytest.approx(
             alone.table.loc["distance", "global_pseudo_f"])
 
+    def test_prebuilt_bases_by_name(self):
+        from spatial_ev.connectivity import neighbour_graph
+        from spatial_ev.eigen import graph_eigenvectors
+        xy, Y = _broad_scale_survey(45, 5150, signal=1.5)
+        knn = graph_eigenvectors(neighbour_graph(xy, method="k_nearest", k=5))
+        out = compare_weighting_schemes(Y, xy, schemes={"five nearest": knn, "pcnm": "distance"},
+                                        n_permutations=199, seed=21)
+        assert list(out.table.index) == ["five nearest", "pcnm"]
+        assert out.table.loc["five nearest", "n_vectors"] == knn.vectors.shape[1]
+        assert out.best in ("five nearest", "pcnm")
+
     def test_no_structure_gives_no_best(self):
         xy, Y = _broad_scale_survey(40, 5647382910, signal=0.0)
         out = compare_weighting_schemes(Y, xy, schemes=self.SCHEMES[:2], n_permutations=199,
@@ -148,6 +159,9 @@ class TestCompareWeightingSchemesValidation:
             compare_weighting_schemes(self.Y, self.xy, schemes=[])
         with pytest.raises(InputError, match=r"`schemes` must be a list"):
             compare_weighting_schemes(self.Y, self.xy, schemes="distance")
+        with pytest.raises(InputError, match=r"entry 'mine' must be a scheme string or a "
+                                             r"spatial basis.*got int"):
+            compare_weighting_schemes(self.Y, self.xy, schemes={"mine": 3})
 
     def test_too_few_permutations_for_corrected_level(self):
         # Šidák level for k = 10 is 0.005116 (REFERENCES.md [derived]): 1/(N + 1) must reach it

@@ -172,6 +172,15 @@ class TestForwardSelection:
         pd.testing.assert_frame_equal(local.steps, remote.steps)
         assert local.global_test.p_value == remote.global_test.p_value
 
+    def test_progress_messages(self):
+        U = _orthonormal_frame(30, 6, 777111)
+        y = 3 * U[["sv002"]].to_numpy() + 0.3 * np.random.default_rng(2).normal(size=(30, 1))
+        messages: list[str] = []
+        sel = forward_selection(y, U, n_permutations=99, seed=5, progress=messages.append)
+        assert messages[0] == "global test of 6 candidates"
+        assert messages[1] == "step 1: testing sv002"
+        assert len(messages) == 1 + int(np.isfinite(sel.steps["p_value"]).sum())
+
     def test_max_variables(self):
         U = _orthonormal_frame(40, 10, 5647382910)
         Y = U[["sv001"]].to_numpy() * 5 + U[["sv002"]].to_numpy() * 4 + U[["sv003"]].to_numpy() * 3

@@ -176,7 +176,8 @@ class TestForwardSelection:
         U = _orthonormal_frame(30, 6, 777111)
         y = 3 * U[["sv002"]].to_numpy() + 0.3 * np.random.default_rng(2).normal(size=(30, 1))
         messages: list[str] = []
-        sel = forward_selection(y, U, n_permutations=99, seed=5, progress=messages.append)
+        sel = forward_selection(y, U, n_permutations=99, seed=5, progress=messages.append,
+                                ceiling="keep_last")
         assert messages[0] == "global test of 6 candidates"
         assert messages[1] == "step 1: testing sv002"
         assert len(messages) == 1 + int(np.isfinite(sel.steps["p_value"]).sum())

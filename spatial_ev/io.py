@@ -27,9 +27,10 @@ __all__ = ["file_format", "read_csv_table", "read_vector", "parse_numeric", "num
 CSV_SUFFIXES = {".csv": "CSV", ".txt": "CSV", ".tsv": "CSV (tab-separated)"}
 GIS_SUFFIXES = {".gpkg": "GeoPackage", ".geojson": "GeoJSON", ".json": "GeoJSON",
                 ".shp": "Shapefile"}
-_MISSING = {"", "na", "nan", "n/a", "null", "none", "#n/a"}
+_MISSING = {"", "-", "na", "nan", "n/a", "null", "none", "#n/a"}
 _NA_TOKENS = sorted({t for m in _MISSING for t in (m, m.upper(), m.capitalize())} | {"NaN"})
 _DECIMAL_COMMA = re.compile(r"^[+-]?\d*,\d+(?:[eE][+-]?\d+)?$")
+_THOUSANDS = re.compile(r"^[+-]?\d{1,3}(?:[,.' ]\d{3})+(?:[.,]\d+)?$")
 _DECIMAL_POINT = re.compile(r"^[+-]?\d*\.\d+(?:[eE][+-]?\d+)?$")
 
 
@@ -79,7 +80,12 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     row names) is named ``"site"``. The id column (``id_column``, else the first) is kept as
     text; a column holding only numbers (with the given decimal mark) becomes float/int;
     any other column stays text, with missing cells (empty, ``NA``, ``NaN``, ...) as NaN, so
-    that :func:`parse_numeric` can report the offending cells. Rows keep their order.
+    that :func:`parse_numeric` can report the offending cells. Rows keep their order; rows
+    with every cell empty and unnamed columns with every cell empty (spreadsheet exports) are
+    dropped, and ``DataFrame.attrs["lines"]`` holds the file line of each remaining row.
+    Without ``delimiter`` each file's delimiter is taken from its header line: ``,`` (tab for
+    ``.tsv``) unless the header holds none of it but ``;``, tab or ``|``. A ``decimal=","``
+    does not apply to a comma-delimited file (its numbers cannot hold unquoted commas).
     Text is UTF-8 (with or without a byte-order mark; UTF-16 with a mark) unless
     ``encoding`` names another codec (e.g. ``"cp1252"`` for older spreadsheet exports).
 
@@ -92,7 +98,8 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     [1.5]
     """
     p = Path(path)
-    delimiter = _check_delimiter(delimiter, decimal, p)
+    given = delimiter
+    _check_delimiter(delimiter, decimal, p)
     try:
         raw = p.read_bytes()
     except OSError as exc:
@@ -101,18 +108,36 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     if not text.strip():
         raise InputError(f"{role} file {str(p)!r} is empty; it needs a header row and one row "
                          f"per site")
+    first_line = text.lstrip().splitlines()[0]
+    delimiter = given if given is not None else _sniff_delimiter(first_line, p)
+    if decimal == delimiter:  # a detected ',' delimiter: unquoted decimal commas are impossible
+        decimal = "."
     header = [str(h).strip() for h in _parse(text, p, role, delimiter, header=None, nrows=1,
                                              dtype=str, keep_default_na=False).iloc[0]]
     if len(header) == 1:
-        first_line = text.lstrip().splitlines()[0]
         others = [d for d in (",", ";", "\t", "|") if d != delimiter and d in first_line]
         if others:
             shown = "tab" if others[0] == "\t" else others[0]
             raise InputError(f"{role} file {str(p)!r} has a single column with delimiter "
                              f"{delimiter!r}, but its header contains {others[0]!r}; pass "
-                             f"delimiter={others[0]!r} (command line: --delimiter '{shown}')")
+                             f"delimiter={others[0]!r} (command line: --delimiter '{shown}'), or "
+                             f"leave the delimiter out to detect it in each file's header")
     if header[0] == "":
         header[0] = "site"
+    names = [f"c{i}" for i in range(len(header))]
+    id_at = header.index(id_column) if id_column in header else 0
+    body = _parse(text, p, role, delimiter, header=0, names=names, index_col=False,
+                  dtype={names[id_at]: str}, keep_default_na=False, na_values=_NA_TOKENS,
+                  decimal=decimal, skip_blank_lines=False)
+    # spreadsheet exports add empty rows and unnamed empty columns: dropping them is lossless
+    lines = np.arange(len(body)) + 2  # file line of each record (header on line 1)
+    filled = body.notna().any(axis=1).to_numpy()
+    body, lines = body[filled], lines[filled]
+    blank_unnamed = [n for n, h in zip(names, header) if h == "" and body[n].isna().all()]
+    if blank_unnamed:
+        keep = [i for i, n in enumerate(names) if n not in blank_unnamed]
+        body = body.drop(columns=blank_unnamed)
+        header, names = [header[i] for i in keep], [names[i] for i in keep]
     unnamed = [i + 1 for i, h in enumerate(header) if h == ""]
     if unnamed:
         raise InputError(f"{role} file {str(p)!r}: column(s) {unnamed} have no name in the "
@@ -122,15 +147,23 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     if dupes:
         raise InputError(f"{role} file {str(p)!r}: column name(s) {dupes} appear more than "
                          f"once in the header; give every column a distinct name")
-    names = [f"c{i}" for i in range(len(header))]
-    id_at = header.index(id_column) if id_column in header else 0
-    body = _parse(text, p, role, delimiter, header=0, names=names, index_col=False,
-                  dtype={names[id_at]: str}, keep_default_na=False, na_values=_NA_TOKENS,
-                  decimal=decimal, skip_blank_lines=True)
     if body.empty:
         raise InputError(f"{role} file {str(p)!r} has a header but no data rows")
+    body = body.reset_index(drop=True)
     body.columns = pd.Index(header, dtype=object)
+    body.attrs["lines"] = lines
     return body
+
+
+def _sniff_delimiter(first_line: str, path: Path) -> str:
+    """The default delimiter (tab for ``.tsv``, else ``,``) unless the header line holds none of
+    it and holds ``;``, tab or ``|`` instead (the most frequent of them)."""
+    default = "\t" if path.suffix.lower() == ".tsv" else ","
+    if default in first_line:
+        return default
+    counts = {d: first_line.count(d) for d in (",", ";", "\t", "|") if d != default}
+    best = max(counts, key=counts.get)
+    return best if counts[best] > 0 else default
 
 
 def _parse(text: str, path: Path, role: str, delimiter: str, **kwargs) -> pd.DataFrame:
@@ -242,17 +275,20 @@ def numeric_hint(bad_values: list[str], decimal: str) -> str:
     if decimal == "." and any(_DECIMAL_COMMA.match(v) for v in bad_values):
         return ("; the file seems to use a decimal comma: pass decimal=',' "
                 "(command line: --decimal ,), or remove thousands separators")
+    if any(_THOUSANDS.match(v.strip()) for v in bad_values):
+        return ("; the value seems to contain thousands separators: remove them (spreadsheets: "
+                "format the cells as plain numbers before exporting)")
     if decimal == "," and any(_DECIMAL_POINT.match(v) for v in bad_values):
         return ("; decimal=',' was given but the value uses a decimal point: check the "
                 "decimal option")
     return ""
 
 
-def _check_delimiter(delimiter: str | None, decimal: str, path: Path) -> str:
+def _check_delimiter(delimiter: str | None, decimal: str, path: Path) -> str | None:
     if decimal not in (".", ","):
         raise InputError(f"`decimal` must be '.' or ','; got {decimal!r}")
     if delimiter is None:
-        delimiter = "\t" if path.suffix.lower() == ".tsv" else ","
+        return None  # detected per file from its header line
     if not isinstance(delimiter, str) or len(delimiter) != 1 or delimiter in "\"'\n\r":
         raise InputError(f"`delimiter` must be one character such as ',', ';' or a tab; got "
                          f"{delimiter!r}")

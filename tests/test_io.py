@@ -78,8 +78,19 @@ class TestReadCsvTable:
 
     def test_delimiter_suggestion(self, tmp_path):
         with pytest.raises(errors.InputError, match=r"pass delimiter='\\t' \(command line: "
-                                                    r"--delimiter 'tab'\)"):
-            self._read(tmp_path, "site\tA\ns1\t1\n")
+                                                    r"--delimiter 'tab'\), or leave the "):
+            self._read(tmp_path, "site\tA\ns1\t1\n", delimiter=",")
+
+    def test_delimiter_detected_per_file(self, tmp_path):
+        assert self._read(tmp_path, "site\tA\ns1\t1\n")["A"].tolist() == [1]
+        assert self._read(tmp_path, "site;A\ns1;1,5\n", decimal=",")["A"].tolist() == [1.5]
+        # decimal=',' does not apply to a comma-delimited file (no unquoted decimal commas)
+        assert self._read(tmp_path, "site,A\ns1,1.5\n", decimal=",")["A"].tolist() == [1.5]
+
+    def test_spreadsheet_padding_dropped_with_line_numbers(self, tmp_path):
+        frame = self._read(tmp_path, "site,A,,\ns1,1,,\n,,,\ns2,2,,\n,,,\n")
+        assert list(frame.columns) == ["site", "A"] and frame["A"].tolist() == [1, 2]
+        assert frame.attrs["lines"].tolist() == [2, 4]
 
     def test_bad_options(self, tmp_path):
         with pytest.raises(errors.InputError, match="both ','"):

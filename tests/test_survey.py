@@ -472,12 +472,14 @@ class TestReadSurveyValidation:
         _raises_nothing_written(tmp_path, errors.CRSError, r"latitude \(y\) value.*150.*"
                                 r"swapped", read_survey, tmp_path / "s.csv", crs=4326)
 
-    def test_semicolon_file_without_delimiter(self, tmp_path, layout):
+    def test_semicolon_file_with_comma_delimiter(self, tmp_path, layout):
         ids, x, y, species, env = layout
         pd.DataFrame({"core": ids, "x": x, "y": y}).to_csv(tmp_path / "s.csv", sep=";",
                                                            index=False)
         _raises_nothing_written(tmp_path, errors.InputError, r"pass delimiter=';'",
-                                read_survey, tmp_path / "s.csv", crs=EPSG_UTM)
+                                read_survey, tmp_path / "s.csv", crs=EPSG_UTM, delimiter=",")
+        # without the option the delimiter is detected from the header
+        assert read_survey(tmp_path / "s.csv", crs=EPSG_UTM).n_sites == len(ids)
 
     def test_decimal_comma_coordinates_without_option(self, tmp_path, layout):
         ids, x, y, species, env = layout

@@ -37,7 +37,8 @@ class RawTable:
     def where(self, position: int) -> str:
         """Location of a record for messages: file line (CSV) or row number (frames)."""
         if self.from_file and self.extra.get("csv", False):
-            return f"line {position + 2}"
+            lines = self.extra.get("lines")  # file lines of the records (empty rows skipped)
+            return f"line {int(lines[position]) if lines is not None else position + 2}"
         return f"row {position + 1}"
 
 

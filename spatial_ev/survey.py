@@ -388,7 +388,8 @@ def _read_table(path, role: str, site_id, opts: dict) -> T.RawTable:
         frame = pd.DataFrame(frame.drop(columns=frame.geometry.name))
     source = f"file {str(path)!r}"
     id_name, ids, data = T.split_ids(frame, role=role, source=source, site_id=site_id)
-    return T.RawTable(role, source, id_name, ids, data, crs=crs, extra={"csv": is_csv})
+    return T.RawTable(role, source, id_name, ids, data, crs=crs,
+                      extra={"csv": is_csv, "lines": frame.attrs.get("lines")})
 
 
 def _read_site_table(path, site_id, x, y, layer, opts: dict) -> T.RawTable:
@@ -398,7 +399,8 @@ def _read_site_table(path, site_id, x, y, layer, opts: dict) -> T.RawTable:
         if layer is not None:
             raise InputError(f"`layer` ({layer!r}) applies to GIS files; sites {source} is CSV")
         id_name, ids, data = T.split_ids(frame, role="sites", source=source, site_id=site_id)
-        table = T.RawTable("sites", source, id_name, ids, data, extra={"csv": True})
+        table = T.RawTable("sites", source, id_name, ids, data,
+                           extra={"csv": True, "lines": frame.attrs.get("lines")})
         _points_from_columns(table, x, y, opts)
         return table
     if x is not None or y is not None:

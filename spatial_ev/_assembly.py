@@ -3,9 +3,9 @@
 Order of the checks (each raises :class:`~spatial_ev.errors.InputError` naming the file,
 column, line or site, or warns with a named class): site ids → geometry (empty, mixed,
 unsupported, invalid, 3-D) → working CRS (file vs given CRS, layers in different CRSs,
-projection of degrees) → alignment of the species and environment tables → species values →
-environment columns → incomplete sites (error or drop) → shared coordinates (error or merge)
-→ at least 5 sites → species never present (dropped) and empty sites (error) → constant
+projection of degrees) → coordinates of a plausible size → alignment of the species and
+environment tables → species values → environment columns → incomplete sites (error or
+drop) → shared coordinates (error or merge) → at least 5 sites → species never present (dropped) and empty sites (error) → constant
 variables (dropped) and indicator coding of categories.
 """
 
@@ -28,6 +28,8 @@ from .errors import (CRSError, DroppedSitesWarning, DroppedSpeciesWarning,
 __all__ = ["assemble", "MIN_SITES"]
 
 MIN_SITES = 5
+MAX_COORDINATE = 1e12  # map units; far beyond any survey in any length unit, squares stay finite
+MIN_EXTENT = 1e-100  # map units; squared distances stay normal floating-point numbers
 
 
 def assemble(site_table: T.RawTable, tables: dict, opts: dict, sources: dict) -> dict:
@@ -40,7 +42,7 @@ def assemble(site_table: T.RawTable, tables: dict, opts: dict, sources: dict) ->
     index = T.final_index(site_table.ids, site_table.id_name)
     geometry, gtype = _check_geometry(site_table, index)
     working, info = _working_crs(site_table, geometry, index, opts, tables)
-    coords = _coordinates(working, gtype, index)
+    coords = _coordinates(working, gtype, index, site_table.source, info["unit"])
 
     species = env_cols = None
     if "species" in tables:
@@ -174,10 +176,24 @@ def _same_crs(a, b) -> bool:
     return pyproj.CRS(a).equals(pyproj.CRS(b), ignore_axis_order=True)
 
 
-def _coordinates(geometry: gpd.GeoSeries, gtype: str, index: pd.Index) -> pd.DataFrame:
+def _coordinates(geometry: gpd.GeoSeries, gtype: str, index: pd.Index, source: str,
+                 unit: str) -> pd.DataFrame:
     pts = geometry if gtype == "point" else geometry.representative_point()
-    xy = shapely.get_coordinates(pts.to_numpy())
-    return pd.DataFrame(xy.astype(np.float64), index=index, columns=["x", "y"])
+    xy = shapely.get_coordinates(pts.to_numpy()).astype(np.float64)
+    # squared distances must stay finite and above the smallest normal float
+    big = np.abs(xy).max(axis=1)
+    if not np.isfinite(xy).all() or big.max() > MAX_COORDINATE:
+        i = int(np.argmax(np.where(np.isfinite(big), big, np.inf)))
+        raise InputError(f"sites {source}: site {index[i]!r} has coordinates ({xy[i, 0]:g}, {xy[i, 1]:g}) "
+                         f"(working CRS, {unit}); coordinates beyond ±{MAX_COORDINATE:g} map "
+                         f"units are not a survey on the ground: check the coordinate columns, "
+                         f"the CRS and the unit")
+    span = float(np.ptp(xy, axis=0).max())
+    if span < MIN_EXTENT:
+        raise InputError(f"sites {source}: all sites lie within {span!r} {unit} of each other; "
+                         f"distances this small cannot be computed reliably: check the "
+                         f"coordinate columns and the unit (e.g. local_unit)")
+    return pd.DataFrame(xy, index=index, columns=["x", "y"])
 
 
 def _incomplete_sites(env: T.EnvironmentColumns, index, opts, dropped, source) -> np.ndarray:

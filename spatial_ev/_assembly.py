@@ -5,8 +5,9 @@ column, line or site, or warns with a named class): site ids → geometry (empty
 unsupported, invalid, 3-D) → working CRS (file vs given CRS, layers in different CRSs,
 projection of degrees) → coordinates of a plausible size → alignment of the species and
 environment tables → species values → environment columns → incomplete sites (error or
-drop) → shared coordinates (error or merge) → at least 5 sites → species never present (dropped) and empty sites (error) → constant
-variables (dropped) and indicator coding of categories.
+drop) → shared coordinates (error or merge) → at least 5 sites → species never present
+(dropped) and empty sites (error) → constant variables (dropped) and indicator coding of
+categories.
 """
 
 from __future__ import annotations

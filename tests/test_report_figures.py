@@ -300,6 +300,21 @@ class TestTriplotFigure:
         assert not [c for c in ax.get_children() if getattr(c, "get_gid", lambda: 0)()
                     == "variable-arrow"]
 
+    def test_species_huddled_at_origin_stretched(self):
+        sites, species, variables, eig = _scores()
+        small = species * 0.01
+        fig = triplot_figure(sites, small, None, eig, scaling=2)
+        drawn = _collection(fig, "species-scores").get_offsets()
+        factor = drawn[0, 0] / small.iloc[0, 0]
+        np.testing.assert_allclose(drawn, small[["RDA1", "RDA2"]].to_numpy() * factor)
+        site_r = np.hypot(sites["RDA1"], sites["RDA2"]).max()
+        assert np.hypot(drawn[:, 0], drawn[:, 1]).max() == pytest.approx(0.8 * site_r)
+        note = [t.get_text() for t in fig.axes[0].texts if t.get_gid() == "stretch-note"]
+        assert note == [f"species × {factor:.3g}"]
+        fig = triplot_figure(sites, small, None, eig, scaling=2, species_stretch="none")
+        np.testing.assert_allclose(_collection(fig, "species-scores").get_offsets(),
+                                   small[["RDA1", "RDA2"]].to_numpy())
+
     def test_arrow_directions_kept(self):
         sites, species, variables, eig = _scores()
         fig = triplot_figure(sites, species, variables, eig, scaling=2)
@@ -320,6 +335,8 @@ class TestTriplotFigure:
             triplot_figure(sites, species, variables, eig.iloc[:1], scaling=1)
         with pytest.raises(InputError, match="`n_labels` must be a non-negative integer"):
             triplot_figure(sites, species, variables, eig, scaling=1, n_labels=-1)
+        with pytest.raises(InputError, match="parameter `species_stretch` must be one of"):
+            triplot_figure(sites, species, variables, eig, scaling=1, species_stretch="big")
         with pytest.raises(InputError, match="`total_variance` must be > 0"):
             triplot_figure(sites, species, variables, eig, scaling=1, total_variance=0.0)
 

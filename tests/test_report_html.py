@@ -127,6 +127,13 @@ class TestRenderReport:
             assert cited == listed, key
         assert "Gilbert &amp; Bennett 2010" in body and "Legendre et al. 2002" in body
 
+    def test_notes_cite_known_works(self, context):
+        limits = dict(context["limits"], notes=["The link was also tested by Moran spectral "
+                                                "randomisation (Wagner & Dray 2015)."])
+        page = render_report(_light(context, limits=limits))
+        assert "Wagner, H. H. &amp; Dray, S. (2015)" in _section(page, "references")
+        assert "Wagner, H. H." not in render_report(_light(context))
+
     def test_limits_section(self, context, page):
         limits = _section(page, "limits")
         assert "exchangeable" in limits and "not show that the spatial pattern is caused" in limits

@@ -60,6 +60,31 @@ REFERENCES: dict[str, str] = {
     "Peres-Neto et al. 2006": "Peres-Neto, P. R., Legendre, P., Dray, S. & Borcard, D. (2006). "
                               "Variation partitioning of species data matrices: estimation "
                               "and comparison of fractions. Ecology 87: 2614–2625.",
+    "Wagner & Dray 2015": "Wagner, H. H. & Dray, S. (2015). Generating spatially constrained "
+                          "null models for irregularly spaced data using Moran spectral "
+                          "randomization methods. Methods in Ecology and Evolution 6: "
+                          "1169–1178.",
+    "Clappe et al. 2018": "Clappe, S., Dray, S. & Peres-Neto, P. R. (2018). Beyond neutrality: "
+                          "disentangling the effects of species sorting and spurious "
+                          "correlations in community analysis. Ecology 99: 1737–1747.",
+    "Griffith & Peres-Neto 2006": "Griffith, D. A. & Peres-Neto, P. R. (2006). Spatial "
+                                  "modeling in ecology: the flexibility of eigenfunction "
+                                  "spatial analyses. Ecology 87: 2603–2613.",
+    "Legendre et al. 2011": "Legendre, P., Oksanen, J. & ter Braak, C. J. F. (2011). Testing "
+                            "the significance of canonical axes in redundancy analysis. "
+                            "Methods in Ecology and Evolution 2: 269–277.",
+    "Anderson & Legendre 1999": "Anderson, M. J. & Legendre, P. (1999). An empirical "
+                                "comparison of permutation methods for tests of partial "
+                                "regression coefficients in a linear model. Journal of "
+                                "Statistical Computation and Simulation 62: 271–303.",
+    "Dungan et al. 2002": "Dungan, J. L., Perry, J. N., Dale, M. R. T., Legendre, P., "
+                          "Citron-Pousty, S., Fortin, M.-J., Jakomulska, A., Miriti, M. & "
+                          "Rosenberg, M. S. (2002). A balanced view of scale in spatial "
+                          "statistical analysis. Ecography 25: 626–640.",
+    "Bellehumeur & Legendre 1998": "Bellehumeur, C. & Legendre, P. (1998). Multiscale sources "
+                                   "of variation in ecological variables: modeling spatial "
+                                   "dispersion, elaborating sampling designs. Landscape "
+                                   "Ecology 13: 15–25.",
     "Phipson & Smyth 2010": "Phipson, B. & Smyth, G. K. (2010). Permutation P-values should "
                             "never be zero: calculating exact P-values when permutations are "
                             "randomly drawn. Statistical Applications in Genetics and "
@@ -144,6 +169,13 @@ class Citations:
             if k not in self.keys:
                 self.keys.append(k)
         return f" ({'; '.join(keys)})" if keys else ""
+
+    def scan(self, text: str) -> str:
+        """Record every known author–year key that ``text`` (free text) mentions."""
+        for key in REFERENCES:
+            if key in text:
+                self(key)
+        return text
 
 
 def methods_paragraphs(context: Mapping, cite: Citations, unit: str) -> list[str]:
@@ -251,7 +283,7 @@ def limits_items(context: Mapping, cite: Citations, unit: str) -> list[str]:
     if lim.get("n_positive_vectors") is not None:
         items.append(f"The design supports {int(lim['n_positive_vectors']):,} spatial vectors "
                      "with positive autocorrelation; more sites would resolve more scales.")
-    items.extend(str(n) for n in lim.get("notes", ()) or ())
+    items.extend(cite.scan(str(n)) for n in lim.get("notes", ()) or ())
     return items
 
 

@@ -26,7 +26,7 @@ from matplotlib.patheffects import withStroke
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 from matplotlib.transforms import blended_transform_factory
 
-from .._validation import check_real
+from .._validation import check_option, check_real
 from ..errors import InputError
 from . import _checks as ck
 from . import _style as st
@@ -57,6 +57,9 @@ def _log_axis(axis, lo: float, hi: float) -> None:
     exps = np.arange(np.floor(np.log10(lo)), np.ceil(np.log10(hi)) + 1)
     ticks = np.array([m * 10.0 ** e for e in exps for m in (1, 2, 5)])
     ticks = ticks[(ticks >= lo) & (ticks <= hi)]
+    if len(ticks) < 4:  # less than a decade: finer round numbers
+        ticks = np.array([m * 10.0 ** e for e in exps for m in (1, 1.5, 2, 3, 4, 5, 7)])
+        ticks = ticks[(ticks >= lo) & (ticks <= hi)]
     if len(ticks) > 8:
         ticks = ticks[np.isclose(np.log10(ticks) % 1, 0) | np.isclose(np.log10(ticks) % 1, 1)]
     axis.set_major_locator(FixedLocator(ticks))
@@ -345,8 +348,9 @@ def scalogram_figure(r2: pd.Series, scale: pd.Series, *, selected: Iterable[str]
     ax.scatter(scale[mask], r2[mask], s=34, color=accent, zorder=5, gid="selected-vector",
                edgecolor="white", linewidth=0.6)
     named = sel if len(sel) <= 15 else list(r2[sel].nlargest(10).index)  # avoid clutter
-    for name in named:
-        ax.annotate(str(name), (scale[name], r2[name]), xytext=(0, 5),
+    for k, name in enumerate(sorted(named, key=lambda v: scale[v])):
+        # neighbours on the axis get alternating heights so their names do not overlap
+        ax.annotate(str(name), (scale[name], r2[name]), xytext=(0, 4 + 9 * (k % 2)),
                     textcoords="offset points", ha="center", fontsize=7, color=accent)
     lo, hi = float(scale.min()), float(scale.max())
     if bands is not None:
@@ -387,11 +391,12 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
                    variable_scores: pd.DataFrame | None, eigenvalues: pd.Series, *,
                    scaling: int, total_variance: float | None = None,
                    axes: tuple[int, int] = (0, 1), n_labels: int = 10,
-                   title: str | None = None) -> Figure:
+                   species_stretch: str = "auto", title: str | None = None) -> Figure:
     """Draw an RDA triplot: sites (points), species (triangles), explanatory variables (arrows).
 
     The scores are drawn as given, already in the requested scaling. Only the ``n_labels``
-    species farthest from the origin in the plotted plane are named. Arrows are stretched by
+    species farthest from the origin in the plotted plane are named. Arrows (and, when they
+    huddle at the origin, species) are stretched by
     one common factor so they span the cloud of points; their directions and relative lengths
     are what matters (the factor is printed in the corner). In scaling 1 read distances among
     sites (they approximate their distances in the transformed community table); in scaling 2
@@ -410,6 +415,10 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
         the percentage of total variation. Without it, the percentage of the eigenvalues given.
     axes : positions of the two axes to plot.
     n_labels : number of species named.
+    species_stretch : ``"auto"`` multiplies all species scores by one common factor when
+        their cloud is under 40 % of the sites' extent (common in scaling 2), so that they can
+        be read; angles and length ratios among species are unchanged and the factor is
+        printed in the corner. ``"none"`` draws them as given.
     title : replaces the default title.
 
     Examples
@@ -431,6 +440,7 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     if (len(axes) != 2 or any(not isinstance(a, (int, np.integer)) or a < 0 for a in axes)
             or axes[0] == axes[1]):
         raise InputError(f"`axes` must be two different non-negative positions; got {axes!r}")
+    check_option("species_stretch", species_stretch, ("auto", "none"))
     if isinstance(n_labels, bool) or not isinstance(n_labels, (int, np.integer)) or n_labels < 0:
         raise InputError(f"`n_labels` must be a non-negative integer; got {n_labels!r}")
     sites = _check_scores("site_scores", site_scores, axes, None)
@@ -457,6 +467,16 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     ax.axvline(0, color=st.GRID, lw=1.0, zorder=0)
     s_xy = sites.iloc[:, list(axes)].to_numpy(float)  # type: ignore[union-attr]
     p_xy = species.iloc[:, list(axes)].to_numpy(float)  # type: ignore[union-attr]
+    notes = []
+    site_radius = float(np.max(np.hypot(s_xy[:, 0], s_xy[:, 1]))) if len(s_xy) else 0.0
+    species_radius = float(np.max(np.hypot(p_xy[:, 0], p_xy[:, 1]))) if len(p_xy) else 0.0
+    if (species_stretch == "auto" and species_radius > 0
+            and species_radius < 0.4 * site_radius):
+        # a cloud of species squeezed at the origin cannot be read; one common factor keeps
+        # every angle and every ratio of lengths among species
+        factor = 0.8 * site_radius / species_radius
+        p_xy = p_xy * factor
+        notes.append(f"species × {factor:.3g}")
     ax.scatter(s_xy[:, 0], s_xy[:, 1], s=16 if len(s_xy) <= 2000 else 3,
                color=st.group_colour(0), alpha=0.75, edgecolor="white",
                linewidth=0.4 if len(s_xy) <= 2000 else 0.0, zorder=2, gid="site-scores",
@@ -470,7 +490,6 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
                     gid="species-label", path_effects=[withStroke(linewidth=2.5,
                                                                   foreground="white")])
     radius = float(np.max(np.abs(np.vstack([s_xy, p_xy])))) or 1.0
-    note = ""
     if variables is not None and len(variables):
         v_xy = variables.iloc[:, list(axes)].to_numpy(float)
         longest = float(np.max(np.hypot(v_xy[:, 0], v_xy[:, 1]))) or 1.0
@@ -483,7 +502,7 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
             ax.text(vx * 1.08, vy * 1.08, str(name), color=accent, fontsize=8.5,
                     fontweight="bold", ha="center", va="center", zorder=5,
                     path_effects=[withStroke(linewidth=3, foreground="white")])
-        note = f"arrows × {stretch:.3g}"
+        notes.append(f"arrows × {stretch:.3g}")
     lim = radius * 1.18
     ax.set_xlim(-lim, lim)
     ax.set_ylim(-lim, lim)
@@ -498,9 +517,9 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     fig.suptitle(title or f"Triplot, scaling {scaling}", x=0.02, ha="left",
                  fontsize=10.5, fontweight="bold")
     ax.legend(loc="lower left", fontsize=7.5)
-    if note:
-        ax.text(0.99, 0.01, note, transform=ax.transAxes, ha="right", va="bottom",
-                fontsize=7, color=st.MUTED)
+    if notes:
+        ax.text(0.99, 0.01, ", ".join(notes), transform=ax.transAxes, ha="right",
+                va="bottom", fontsize=7, color=st.MUTED, gid="stretch-note")
     return fig
 
 

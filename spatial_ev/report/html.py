@@ -86,7 +86,9 @@ that breaks the contract raises :class:`spatial_ev.errors.InputError` naming the
 ``limits`` : Mapping or None
     ``finest_scale`` (float: finest structure the design resolves, map units),
     ``broadest_scale`` (float), *(optional)* ``n_positive_vectors`` (int) and ``notes``
-    (list of str: further caveats from the analysis).
+    (list of str: further caveats from the analysis; an author–year key of
+    ``REFERENCES`` written in a note, e.g. "Wagner & Dray 2015", adds that work to the
+    reference list).
 """
 
 from __future__ import annotations

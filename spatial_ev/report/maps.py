@@ -272,7 +272,11 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     side = max(width, height)
     pad = 0.06 * side
     xlim = (xmin - pad, xmax + pad)
-    ylim = (ymin - 2.2 * pad, ymax + 1.6 * pad)  # room for the scale bar and the arrow
+    bottom = ymin - 2.2 * pad  # room for the scale bar
+    # room for the north arrow above the data: the arrow spans the top ~18 % of the axes
+    top = ymax + (max(1.6 * pad, 0.25 * (ymax - bottom)) if north_arrow == "grid"
+                  else 1.6 * pad)
+    ylim = (bottom, top)
     ax.set_xlim(*xlim)
     ax.set_ylim(*ylim)
     ax.set_aspect("equal")

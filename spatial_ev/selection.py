@@ -8,9 +8,10 @@ selected model does not exceed that of the global model. Without the global test
 selection among m null candidates selects something with probability ≈ 1 − (1 − α)^m, and
 without the adjusted-R² limit it overfits.
 
-An alternative for users who only want residuals free of spatial autocorrelation,
-:func:`select_by_residual_moran`, adds the spatial eigenvector that most reduces the residual
-Moran's I until it is no longer significant (Griffith & Peres-Neto 2006, Ecology 87:2603–2613).
+An alternative for users who only want residuals free of spatial autocorrelation
+(:func:`spatial_ev.residual_autocorrelation.select_by_residual_moran`) adds the spatial
+eigenvector that most reduces the residual Moran's I until it is no longer significant
+(Griffith & Peres-Neto 2006, Ecology 87:2603–2613).
 Choosing among spatial weighting schemes (:func:`spatial_ev.weighting_choice.
 compare_weighting_schemes`, also importable from here) runs this selection for each scheme.
 """

@@ -330,7 +330,8 @@ def _environment() -> jinja2.Environment:
 
 
 def render_report(context: Mapping[str, Any], *,
-                  figures: Mapping[str, Figure] | None = None) -> str:
+                  figures: Mapping[str, Figure] | None = None,
+                  figure_pngs: Mapping[str, bytes] | None = None) -> str:
     """Render the whole-analysis report as one self-contained HTML page.
 
     Parameters
@@ -338,6 +339,8 @@ def render_report(context: Mapping[str, Any], *,
     context : mapping described in this module's docstring.
     figures : figures already drawn by :func:`build_figures` (to avoid drawing twice when
         they are also saved as files); drawn here when None.
+    figure_pngs : PNG bytes of those figures already rendered (e.g. the files just saved), to
+        embed as they are instead of rendering each figure once more.
 
     Returns
     -------
@@ -351,7 +354,9 @@ def render_report(context: Mapping[str, Any], *,
     """
     context = _check_context(context)
     figures = build_figures(context) if figures is None else figures
-    uris = {k: _figure_uri(f) for k, f in figures.items()}
+    pngs = figure_pngs or {}
+    uris = {k: ("data:image/png;base64," + base64.b64encode(pngs[k]).decode("ascii"))
+            if k in pngs else _figure_uri(f) for k, f in figures.items()}
     unit = figs.unit_symbol(_get(context["data"], "distance_unit"))
     cite = Citations()
     reasons = dict(context.get("missing_reasons") or {})
@@ -393,10 +398,13 @@ def write_report(context: Mapping[str, Any], folder: str | os.PathLike, *,
         raise InputError(f"`folder` {str(folder)!r} is not an existing folder; create it first")
     figures = build_figures(context)
     (folder / "figures").mkdir(exist_ok=True)
+    pngs = {}
     for name, fig in figures.items():
-        figs.save_figure(fig, folder / "figures", name)
+        saved = figs.save_figure(fig, folder / "figures", name)
+        pngs[name] = saved["png"].read_bytes()  # embedded as saved: each figure drawn once
     path = folder / f"{stem}.html"
-    path.write_text(render_report(context, figures=figures), encoding="utf-8")
+    path.write_text(render_report(context, figures=figures, figure_pngs=pngs),
+                    encoding="utf-8")
     return path
 
 

@@ -29,6 +29,13 @@ _PUBLIC = {
     "transform": "transform",
     "redundancy_analysis": "canonical",
     "forward_selection": "selection",
+    "compare_weighting_schemes": "selection",
+    "select_by_residual_moran": "residual_autocorrelation",
+    "moran_correlogram": "moran",
+    "beta_diversity": "beta",
+    "scalogram": "scales",
+    "classify_scales": "scales",
+    "permutation_test": "permutation",
     "partition_variation": "partition",
     "analyse": "analysis",
 }

@@ -2,19 +2,22 @@
 
 from __future__ import annotations
 
+import importlib.util
+import sys
+
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import sparse, stats
+from scipy import stats
 from scipy.spatial.distance import cdist
 
 from spatial_ev.canonical import explained_fraction
 from spatial_ev.connectivity import neighbour_graph
-from spatial_ev.eigen import distance_eigenvectors, graph_eigenvectors
+from spatial_ev.eigen import distance_eigenvectors
 from spatial_ev.errors import InputError
 from spatial_ev.moran import morans_i
 from spatial_ev.permutation import permutation_test
-from spatial_ev.spectral_randomisation import (CompleteBasis, _signs, complete_spatial_basis,
+from spatial_ev.spectral_randomisation import (_signs, complete_spatial_basis,
                                                spectral_randomisation_test,
                                                spectral_randomisations)
 
@@ -221,56 +224,99 @@ class TestSpectralRandomisationTest:
             spectral_randomisation_test(self.y, self.env, self.basis, seed=-4)
 
 
+class TestAnalyseOption:
+    """``analyse(..., environment_test=...)`` runs and reports the spectral test."""
+
+    @staticmethod
+    def survey(environment: bool = True):
+        from conftest import make_small_survey_tables
+        from spatial_ev.survey import Survey
+        sites, species, env = make_small_survey_tables(n_side=6, n_species=8)
+        frame = sites.set_index("site").rename(columns={"easting": "x", "northing": "y"})
+        return Survey.from_frames(frame, species.set_index("site"),
+                                  env.set_index("site") if environment else None,
+                                  crs="EPSG:32633")
+
+    def test_spectral_test_recorded_everywhere(self):
+        from spatial_ev.analysis import analyse
+        from spatial_ev.report.context import analysis_context
+        from spatial_ev.transform import standardise_environment, transform
+        survey = self.survey()
+        result = analyse(survey, schemes="distance", spatial_weighting="single",
+                         n_permutations=99, seed=20261202)
+        assert result.settings["environment_test"] == "spectral"
+        test = result.environment_spectral
+        # the same test run directly with the analysis's stream and inputs
+        rng = np.random.default_rng(20261202).spawn(7)[6]
+        direct = spectral_randomisation_test(
+            transform(survey.species, "hellinger"),
+            standardise_environment(survey.environment),
+            distance_eigenvectors(survey), n_randomisations=99, seed=rng)
+        assert test.p_value == direct.p_value
+        assert test.statistic == pytest.approx(direct.statistic)
+        summary = result.summary_dict()["environment_spectral_test"]
+        assert summary["p"] == pytest.approx(test.p_value)
+        assert summary["n_randomisations"] == 99
+        assert any("Moran spectral randomisation" in note for note in result.notes)
+        context = analysis_context(result)
+        assert context["methods"]["environment_test"]["p"] == pytest.approx(test.p_value)
+        assert any("Wagner & Dray 2015" in note for note in context["limits"]["notes"])
+
+    def test_permutation_only_and_spatial_only(self):
+        from spatial_ev.analysis import analyse
+        from spatial_ev.report.context import analysis_context
+        plain = analyse(self.survey(), schemes="distance", spatial_weighting="single",
+                        n_permutations=99, seed=5, environment_test="permutation")
+        assert plain.environment_spectral is None
+        assert plain.summary_dict()["environment_spectral_test"] is None
+        assert analysis_context(plain)["methods"]["environment_test"] is None
+        spatial_only = analyse(self.survey(environment=False), schemes="distance",
+                               spatial_weighting="single", n_permutations=99, seed=5)
+        assert spatial_only.environment_spectral is None
+        with pytest.raises(InputError, match=r"`environment_test` must be one of 'spectral', "
+                                             r"'permutation'; got 'free'"):
+            analyse(self.survey(), environment_test="free")
+
+
 # ------------------------------------------------------------------------------ simulations
 
-def _spectral_process(basis: CompleteBasis, decay: float) -> np.ndarray:
-    """Square root of a covariance that is a function of C·W·C: U diag(exp(decay·I_k))."""
-    moran = basis.vectors.shape[0] / basis.weights.sum() * basis.eigenvalues
-    return basis.vectors * np.exp(decay * moran / 2)
+def _studies():
+    from conftest import ROOT
+    if "error_rates" in sys.modules:
+        return sys.modules["error_rates"]
+    spec = importlib.util.spec_from_file_location("error_rates",
+                                                  ROOT / "validation" / "error_rates.py")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules["error_rates"] = module      # dataclasses look their module up there
+    spec.loader.exec_module(module)
+    return module
 
 
 @pytest.mark.slow
 class TestLevelWithAutocorrelatedEnvironment:
-    """Community and environment autocorrelated and independent: free permutations are
-    liberal (Legendre et al. 2002, Ecography 25:601-615 [memory]); the spectral randomisation
-    keeps the level when W describes the environment's autocorrelation (Wagner & Dray 2015)."""
+    """Community and environment autocorrelated and independent (designs in
+    validation/error_rates.py): free permutations are liberal (Legendre et al. 2002,
+    Ecography 25:601-615 [memory]); the spectral randomisation keeps the level when W describes
+    the environment's autocorrelation (Wagner & Dray 2015, Methods Ecol. Evol. 6:1169-1178)."""
 
     reps = 500
 
-    def _rates(self, xy, env_root, seed):
-        rng = np.random.default_rng(seed)
-        basis = complete_spatial_basis(distance_eigenvectors(xy))
-        d = cdist(xy, xy)
-        community_root = np.linalg.cholesky(np.exp(-d / 150.0) + 1e-10 * np.eye(len(xy)))
-        env_root = env_root(basis, d)
-        ordinary = spectral = 0
-        for _ in range(self.reps):
-            y = community_root @ rng.normal(size=(len(xy), 5))
-            env = env_root @ rng.normal(size=(env_root.shape[1], 2))
-            ordinary += permutation_test(y, env, n_permutations=99, seed=rng,
-                                         n_workers=1).p_value <= 0.05
-            spectral += spectral_randomisation_test(y, env, basis, n_randomisations=99,
-                                                    seed=rng, n_workers=1).p_value <= 0.05
-        return ordinary / self.reps, spectral / self.reps
-
     def test_exact_when_the_weighting_describes_the_environment(self):
-        # environment covariance a function of CWC (strong positive autocorrelation):
-        # MSR is exact, so its rate lies in the binomial 99% interval around 0.05
-        ordinary, spectral = self._rates(grid(6), lambda b, d: _spectral_process(b, 4.0),
-                                         20261202001)
+        # environment covariance a function of CWC (strong positive autocorrelation): sign
+        # randomisation is exact, so its rate lies in the binomial 99% interval around 0.05
+        rates = _studies().spectral_study("spectral", "grid", self.reps, seed=20261202001)
         lo, hi = binomial_interval(self.reps)
-        assert lo <= spectral <= hi
-        assert ordinary > 2 * hi      # seeded: ordinary 0.668, spectral 0.054
+        assert lo <= rates["spectral"] <= hi
+        assert rates["ordinary"] > 2 * hi
 
     def test_near_level_for_a_geostatistical_environment(self):
-        # exponential covariance, range 1 site spacing, on the irregular layout: the MEM basis
-        # diagonalises it only approximately (1-9 % of its squared mass off the diagonal), so
-        # sign randomisation drops the cross terms and is liberal; band [lo, 0.13] (seeded:
-        # spectral 0.098, ordinary 0.536; longer ranges are worse, validation/error_rates.md)
-        xy = np.random.default_rng(60221407).uniform(0, 600, size=(40, 2))
-        ordinary, spectral = self._rates(
-            xy, lambda b, d: np.linalg.cholesky(np.exp(-d / 100.0) + 1e-10 * np.eye(len(d))),
-            20261202002)
+        # exponential covariance, range 100 m (about one site spacing) on the irregular
+        # layout: the MEM basis diagonalises it only approximately (1-9 % of its squared mass
+        # off the diagonal [measured]), sign randomisation drops those cross terms and is
+        # liberal; documented band [lo, 0.13]. Longer ranges are worse: see
+        # validation/error_rates.md
+        rates = _studies().spectral_study("exponential", "irregular", self.reps,
+                                          seed=20261202002, environment_range=100.0)
         lo, _ = binomial_interval(self.reps)
-        assert lo <= spectral <= 0.13
-        assert ordinary > 3 * spectral
+        assert lo <= rates["spectral"] <= 0.13
+        assert rates["ordinary"] > 3 * rates["spectral"]

@@ -42,6 +42,16 @@ def _surface(grid_scores: pd.DataFrame | None, column: str) -> dict | None:
     return {"x": gx, "y": gy, "values": values}
 
 
+def _environment_test(analysis) -> dict | None:
+    """The Moran spectral randomisation test of the environment, when the analysis ran it."""
+    test = getattr(analysis, "environment_spectral", None)
+    if test is None:
+        return None
+    return {"method": "moran_spectral_randomisation", "weighting": "distance",
+            "n_randomisations": test.n_randomisations, "r2_adj": test.r2_adj,
+            "p": test.p_value}
+
+
 def _site_frame(analysis, values: pd.DataFrame) -> gpd.GeoDataFrame:
     sites = analysis.survey.sites
     return gpd.GeoDataFrame(values.copy(), geometry=sites.geometry.reindex(values.index),
@@ -103,6 +113,7 @@ def analysis_context(analysis, *, title: str | None = None,
         "selection": "forward_double_stop",
         "n_permutations": settings["n_permutations"],
         "permutation_method": "reduced_residual", "seed": settings["seed"],
+        "environment_test": _environment_test(a),
     }
 
     partition = None
@@ -188,6 +199,14 @@ def analysis_context(analysis, *, title: str | None = None,
                               "environmental variable); a triplot needs two")
 
     notes = list(a.notes)
+    if methods["environment_test"] is not None:
+        notes.append("Besides free permutations, the community–environment link was tested by "
+                     "Moran spectral randomisation of the environmental table (Wagner & Dray "
+                     "2015, Methods Ecol. Evol. 6:1169–1178): random signs on the environment's "
+                     "coefficients over all spatial eigenvectors of the distance-based "
+                     "weighting, the same signs for every variable, keep each variable's "
+                     "Moran's I and the correlations among variables; only this spatial "
+                     "spectrum is kept, not higher-order structure such as patch shapes.")
     limits = {"finest_scale": float(basis.scale.min()),
               "broadest_scale": float(basis.scale.max()),
               "n_positive_vectors": int(basis.n_vectors), "notes": notes}

@@ -1,0 +1,227 @@
+"""The bad-input corpus (``tests/data/bad/cases.toml``): the tool does not break.
+
+Every case is checked three ways:
+
+* the library (:func:`spatial_ev.cli_common.survey_from_args`, i.e. :func:`read_survey` with the
+  case's options) raises exactly the documented error class with a message naming the file,
+  column, line or site at fault — or, for inputs that must work, returns a survey and issues
+  exactly the named warnings;
+* ``spatial-ev check`` (in-process) exits 2 with one line on standard error, no traceback,
+  nothing on standard output and nothing written — or exits 0;
+* ``spatial-ev run --out DIR`` exits 2 with one line, and neither ``DIR`` nor a
+  ``.partial-`` folder exists afterwards.
+
+Cases marked ``subprocess = true`` are also run through the installed ``spatial-ev`` command.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import shutil
+import subprocess
+import sys
+import warnings
+from pathlib import Path
+
+import pytest
+
+try:
+    import tomllib
+except ModuleNotFoundError:  # pragma: no cover - Python 3.10
+    import tomli as tomllib
+
+from spatial_ev import errors
+from spatial_ev.cli import main
+from spatial_ev.cli_check import configure as configure_check
+from spatial_ev.cli_common import survey_from_args
+
+BAD = Path(__file__).resolve().parent / "data" / "bad"
+CASES = tomllib.loads((BAD / "cases.toml").read_text(encoding="utf-8"))["case"]
+DEFAULTS = {"sites": "good/sites.csv", "species": "good/species.csv",
+            "environment": "good/environment.csv"}
+ERRORS = [c for c in CASES if "error" in c]
+WORKING = [c for c in CASES if "error" not in c]
+READ_ERRORS = [c for c in ERRORS if c.get("command", "check") == "check"]
+RUN_FAST = ["--weighting", "distance", "--permutations", "19", "--seed", "20261202", "--quiet"]
+
+
+def _ids(cases):
+    return [c["id"] for c in cases]
+
+
+def file_args(case) -> list[str]:
+    args = []
+    for role, default in DEFAULTS.items():
+        path = case.get(role, default)
+        if path != "none":
+            args += [f"--{role}", path]
+    return args + list(case.get("args", []))
+
+
+def _load_make_corpus():
+    spec = importlib.util.spec_from_file_location("make_corpus", BAD / "make_corpus.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+@pytest.fixture(scope="session")
+def corpus(tmp_path_factory) -> Path:
+    """A copy of the corpus folder with the GIS cases generated into it."""
+    folder = tmp_path_factory.mktemp("bad") / "corpus"
+    shutil.copytree(BAD, folder, ignore=shutil.ignore_patterns("__pycache__"))
+    _load_make_corpus().write_gis_cases(folder)
+    return folder
+
+
+@pytest.fixture()
+def in_corpus(corpus, monkeypatch) -> Path:
+    monkeypatch.chdir(corpus)
+    return corpus
+
+
+def listing(folder: Path) -> dict[str, int]:
+    return {str(p.relative_to(folder)): p.stat().st_mtime_ns for p in folder.rglob("*")}
+
+
+def check_fragments(text: str, case) -> None:
+    missing = [f for f in case["match"] if f not in text]
+    assert not missing, f"fragments {missing} not in message: {text}"
+
+
+def one_error_line(err: str, command: str) -> str:
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, f"expected one line on stderr, got {len(lines)}: {err}"
+    assert "Traceback" not in err
+    assert lines[0].startswith(f"spatial-ev {command}: error: ")
+    return lines[0]
+
+
+class TestManifest:
+    def test_size_and_shape(self):
+        assert len(CASES) >= 40 and len(ERRORS) >= 40
+        assert len(set(_ids(CASES))) == len(CASES), "case ids must be unique"
+        allowed = {"id", "what", "sites", "species", "environment", "args", "error",
+                   "warnings", "match", "command", "subprocess"}
+        for case in CASES:
+            assert set(case) <= allowed, f"{case['id']}: unknown keys {set(case) - allowed}"
+            assert case["match"] and case["what"], case["id"]
+            if "error" in case:
+                assert issubclass(getattr(errors, case["error"]), errors.SpatialEVError)
+            for name in case.get("warnings", []):
+                assert issubclass(getattr(errors, name), errors.SpatialEVWarning)
+
+    def test_every_file_is_used(self, corpus):
+        used = {case.get(role, default) for case in CASES for role, default in DEFAULTS.items()}
+        on_disk = {p.name for p in corpus.iterdir() if p.is_file()
+                   and p.suffix not in {".py", ".toml", ".shx", ".dbf", ".cpg", ".prj"}}
+        assert on_disk - used == set(), f"corpus files without a case: {on_disk - used}"
+
+
+def _library(case):
+    parser = argparse.ArgumentParser()
+    configure_check(parser)
+    return survey_from_args(parser.parse_args(file_args(case)))
+
+
+class TestLibrary:
+    @pytest.mark.parametrize("case", READ_ERRORS, ids=_ids(READ_ERRORS))
+    def test_error_class_and_message(self, case, in_corpus):
+        before = listing(in_corpus)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", errors.SpatialEVWarning)
+            with pytest.raises(errors.SpatialEVError) as info:
+                _library(case)
+        assert type(info.value) is getattr(errors, case["error"]), \
+            f"{type(info.value).__name__}: {info.value}"
+        check_fragments(str(info.value), case)
+        assert listing(in_corpus) == before
+
+    @pytest.mark.parametrize("case", WORKING, ids=_ids(WORKING))
+    def test_input_that_must_work(self, case, in_corpus):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            survey = _library(case)
+        named = [w for w in caught if issubclass(w.category, errors.SpatialEVWarning)]
+        assert sorted({w.category.__name__ for w in named}) == sorted(case.get("warnings", []))
+        text = survey.describe() + "\n" + "\n".join(str(w.message) for w in named)
+        check_fragments(text, case)
+        # whatever the file's quirks, the survey is the 12 (or 8 after dropping) good sites
+        assert survey.coords.notna().all().all()
+        assert survey.species is None or (survey.species.to_numpy() >= 0).all()
+        assert list(survey.species.index) == list(survey.coords.index)
+
+    def test_run_stage_errors(self, in_corpus):
+        from spatial_ev.analysis import analyse
+
+        for case in [c for c in ERRORS if c.get("command") == "run"]:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", errors.SpatialEVWarning)
+                survey = _library(case)
+                with pytest.raises(getattr(errors, case["error"])) as info:
+                    analyse(survey, spatial_weighting="single", n_permutations=19, seed=1)
+            assert type(info.value) is getattr(errors, case["error"])
+            check_fragments(str(info.value), case)
+
+
+class TestCommandLine:
+    @pytest.mark.parametrize("case", READ_ERRORS, ids=_ids(READ_ERRORS))
+    def test_check_exits_2_with_one_line(self, case, in_corpus, capsys):
+        before = listing(in_corpus)
+        assert main(["check", *file_args(case)]) == 2
+        out, err = capsys.readouterr()
+        assert out == ""
+        line = one_error_line(err, "check")
+        check_fragments(line, case)
+        assert listing(in_corpus) == before
+
+    @pytest.mark.parametrize("case", ERRORS, ids=_ids(ERRORS))
+    def test_run_exits_2_and_writes_nothing(self, case, in_corpus, tmp_path, capsys):
+        out_dir = tmp_path / "run"
+        before = listing(in_corpus)
+        assert main(["run", *file_args(case), "--out", str(out_dir), *RUN_FAST]) == 2
+        out, err = capsys.readouterr()
+        line = one_error_line(err, "run")
+        check_fragments(line, case)
+        assert not out_dir.exists()
+        assert list(tmp_path.iterdir()) == [], "leftovers beside the output folder"
+        assert listing(in_corpus) == before
+
+    @pytest.mark.parametrize("case", WORKING, ids=_ids(WORKING))
+    def test_check_passes(self, case, in_corpus, capsys):
+        assert main(["check", *file_args(case)]) == 0
+        out, err = capsys.readouterr()
+        assert "check passed; nothing was written" in out
+        warned = {line.split(")")[0].removeprefix("warning (")
+                  for line in err.strip().splitlines() if line}
+        assert warned == set(case.get("warnings", [])), err
+        check_fragments(out + err, case)
+
+
+SUBPROCESS = [c for c in ERRORS if c.get("subprocess")]
+
+
+def _installed_command() -> list[str]:
+    script = Path(sys.executable).with_name("spatial-ev")
+    return [str(script)] if script.exists() else [sys.executable, "-m", "spatial_ev"]
+
+
+class TestInstalledCommand:
+    @pytest.mark.parametrize("case", SUBPROCESS, ids=_ids(SUBPROCESS))
+    def test_exit_2_one_line(self, case, corpus, tmp_path):
+        out_dir = tmp_path / "run"
+        proc = subprocess.run([*_installed_command(), "run", *file_args(case),
+                               "--out", str(out_dir), *RUN_FAST],
+                              cwd=corpus, capture_output=True, text=True, timeout=120)
+        assert proc.returncode == 2, proc.stderr
+        check_fragments(one_error_line(proc.stderr, "run"), case)
+        assert proc.stdout == ""
+        assert not out_dir.exists() and list(tmp_path.iterdir()) == []
+
+    def test_debug_shows_the_traceback(self, corpus):
+        case = SUBPROCESS[0]
+        proc = subprocess.run([*_installed_command(), "check", *file_args(case), "--debug"],
+                              cwd=corpus, capture_output=True, text=True, timeout=120)
+        assert proc.returncode != 0 and "Traceback" in proc.stderr
+        assert case["error"] in proc.stderr

@@ -261,13 +261,16 @@ def _finish_vectors(mu: np.ndarray, u: np.ndarray, sign: str) -> tuple[np.ndarra
 
 # ---------------------------------------------------------------- scale
 
-def _scales(u: np.ndarray, w: sparse.csr_matrix, lengths: np.ndarray, weights: np.ndarray,
-            one_dimensional: bool) -> np.ndarray:
-    """Equivalent wavelength (map units) of each column of u; see SpatialBasis.scale."""
+def _scales(u: np.ndarray, mu: np.ndarray, w: sparse.csr_matrix, lengths: np.ndarray,
+            weights: np.ndarray, one_dimensional: bool) -> np.ndarray:
+    """Equivalent wavelength (map units) of each column of u; see SpatialBasis.scale.
+
+    For unit eigenvectors of CWC orthogonal to 1, uᵀWu = μ, so ρ = μ / Σ_i deg_i u_i².
+    """
     if u.shape[1] == 0:
         return np.zeros(0)
     deg = np.asarray(w.sum(axis=1)).ravel()
-    rho = (u * (w @ u)).sum(axis=0) / (deg[:, None] * u * u).sum(axis=0)
+    rho = np.clip(mu / (deg @ (u * u)), -1.0, 1.0)
     pos = weights > 0
     lengths, weights = lengths[pos], weights[pos]
     lo, hi = float(lengths.min()), float(lengths.max())
@@ -353,7 +356,7 @@ def _basis(w: sparse.csr_matrix, layout: Layout, lengths: np.ndarray, raw_weight
         else:
             mu, u = _solve_sparse(w, k, which)
         mu, u = _finish_vectors(mu, u, sign)
-        scale = _scales(u, w, lengths, raw_weights, layout.collinear)
+        scale = _scales(u, mu, w, lengths, raw_weights, layout.collinear)
         if finest_scale is None:
             break
         enough = scale.size == 0 or scale.min() < finest_scale or len(mu) < (k or n) * 0.8 \

@@ -19,16 +19,18 @@ p-value: ``(k + 1) / (N + 1)`` with k the number of permuted statistics >= the o
 identity permutation, symmetric designs) never turns a tie into a miss.
 
 Batched engine. For an orthonormal basis Q = [Q_W | Q_X] (n x k) and permuted residuals ΠR,
-the sums of squares are ``||Q^T Π R||²`` split by block. When X spans more dimensions than
-the residual space (many spatial eigenvectors on few sites, up to 5,000 sites), the basis of
-the residual space (orthogonal complement of [1, W, X]) replaces Q_X, and SS_X = ||ΠR||² -
-SS_W - SS_residual, which is cheaper. Many permutations share one matrix
-product: either the rows of R are gathered for a chunk of permutations and multiplied by Q^T
-(``(k x n) @ (n x chunk*p)``), or -- when Q has fewer columns than R -- the rows of Q are
-gathered with the inverse permutations (``Q[Π⁻¹]^T R``); the smaller side is gathered. With
-more species than sites R is first reduced to its n x rank(R) singular-value form, which keeps
-every sum of squares. Memory is O(batch * n * min(p, k)) per batch (about 8 MiB by default;
-see ``_GATHER_BYTES``).
+the sums of squares are ``||Q^T Π R||²`` split by block. Many permutations share one matrix
+product: either the rows of R are gathered for a batch of permutations and multiplied by Q^T
+(``(k x n) @ (n x batch*p)``), or -- when Q has fewer columns than R -- the rows of Q are
+gathered with the inverse permutations (``Q[Π⁻¹]^T R``); the narrower side is gathered, in
+cache-sized batches (about 8 MiB, ``_GATHER_BYTES``). Memory is O(batch * n * min(p, k)) per
+task thread. With more species than sites R is first reduced to its n x rank(R)
+singular-value form, which keeps every sum of squares. When X spans more dimensions than the
+residual space (many spatial eigenvectors on few sites; up to 5,000 sites), a basis of the
+residual space (orthogonal complement of [1, W, X]) replaces Q_X and SS_X = ||ΠR||² - SS_W -
+SS_residual, which is cheaper. Tasks (``chunk_size`` permutations each) run on
+:func:`spatial_ev.engines.run_tasks`: locally one thread per core, each drawing its own
+permutations and calling single-threaded BLAS.
 
 Reproducibility. Permutations are drawn in fixed blocks of 128 from
 ``SeedSequence(entropy, spawn_key=(block,))``, where ``entropy`` is drawn once from the seed.

@@ -51,6 +51,7 @@ __all__ = ["redundancy_analysis", "RedundancyAnalysis", "explained_fraction", "E
            "adjusted_r2", "RANK_TOLERANCE"]
 
 RANK_TOLERANCE = 1e-10
+Table = pd.DataFrame | pd.Series | np.ndarray   # sites x variables; labels kept when given
 _TINY = np.finfo(np.float64).tiny
 
 
@@ -192,7 +193,8 @@ def _fraction(model: _Model) -> ExplainedFraction:
     return ExplainedFraction(r2_xw - r2_w, adj, r)
 
 
-def explained_fraction(Y, X, *, conditioning=None) -> ExplainedFraction:
+def explained_fraction(Y: Table, X: Table, *,
+                       conditioning: Table | None = None) -> ExplainedFraction:
     """R², adjusted R² and rank of the regression of Y on X (after ``conditioning``), no scores.
 
     The fast path of :func:`redundancy_analysis` for model comparison and variation
@@ -442,7 +444,8 @@ def _svd(a: np.ndarray, n_rows: int) -> tuple[np.ndarray, np.ndarray, np.ndarray
     return u * sign, s, v * sign
 
 
-def redundancy_analysis(Y, X=None, *, conditioning=None) -> RedundancyAnalysis:
+def redundancy_analysis(Y: Table, X: Table | None = None, *,
+                        conditioning: Table | None = None) -> RedundancyAnalysis:
     """Redundancy analysis of Y on X (optionally given a conditioning table); PCA without X.
 
     Parameters

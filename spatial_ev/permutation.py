@@ -62,7 +62,8 @@ import pandas as pd
 import scipy.linalg
 
 from ._validation import check_int, check_option, check_rng
-from .canonical import _Model, _check_explanatory, _check_response, _fraction, _prepare
+from .canonical import (Table, _Model, _check_explanatory, _check_response, _fraction,
+                        _prepare)
 from .engines import ENGINES, run_tasks
 from .errors import InputError
 
@@ -173,8 +174,9 @@ def _check_scheme(n, seed, restriction, blocks, grid_shape, rows) -> _Scheme:
     return _Scheme(restriction, n, entropy, strata, shape)
 
 
-def permutations(n_sites: int, n_permutations: int, *, seed=None, restriction: str = "free",
-                 blocks=None, grid_shape=None) -> np.ndarray:
+def permutations(n_sites: int, n_permutations: int, *,
+                 seed: None | int | np.random.Generator = None, restriction: str = "free",
+                 blocks: Any = None, grid_shape: tuple[int, int] | None = None) -> np.ndarray:
     """The permutations a test with these settings uses, shape (n_permutations, n_sites).
 
     Row i maps site positions to the position whose residual they receive.
@@ -404,10 +406,11 @@ def _test(model: _Model, scheme: _Scheme, statistic: str = "f"):
     return observed, kernel
 
 
-def permutation_test(Y, X, *, conditioning=None, n_permutations: int = 999,
+def permutation_test(Y: Table, X: Table, *, conditioning: Table | None = None,
+                     n_permutations: int = 999,
                      seed: None | int | np.random.Generator = None, chunk_size: int | None = None,
                      engine: str = "local", scheduler: Any = None, restriction: str = "free",
-                     blocks=None, grid_shape: tuple[int, int] | None = None,
+                     blocks: Any = None, grid_shape: tuple[int, int] | None = None,
                      progress: Callable[[int, int], Any] | None = None,
                      n_workers: int | None = None) -> PermutationTest:
     """Permutation test of the (partial) RDA of Y on X, with a batched engine.
@@ -471,10 +474,12 @@ def permutation_test(Y, X, *, conditioning=None, n_permutations: int = 999,
 _AXIS_METHODS = ("forward", "marginal")
 
 
-def axis_tests(Y, X, *, conditioning=None, method: str = "forward", max_axes: int | None = None,
+def axis_tests(Y: Table, X: Table, *, conditioning: Table | None = None,
+               method: str = "forward", max_axes: int | None = None,
                n_permutations: int = 999, seed: None | int | np.random.Generator = None,
                chunk_size: int | None = None, engine: str = "local", scheduler: Any = None,
-               restriction: str = "free", blocks=None, grid_shape: tuple[int, int] | None = None,
+               restriction: str = "free", blocks: Any = None,
+               grid_shape: tuple[int, int] | None = None,
                progress: Callable[[int, int], Any] | None = None,
                n_workers: int | None = None) -> pd.DataFrame:
     """Permutation test of each canonical axis of a (partial) RDA, one axis at a time.
@@ -568,10 +573,11 @@ def _check_terms(Y, terms, conditioning):
     return models
 
 
-def term_tests(Y, terms: Mapping[str, Any], *, conditioning=None, n_permutations: int = 999,
+def term_tests(Y: Table, terms: Mapping[str, Table], *, conditioning: Table | None = None,
+               n_permutations: int = 999,
                seed: None | int | np.random.Generator = None, chunk_size: int | None = None,
                engine: str = "local", scheduler: Any = None, restriction: str = "free",
-               blocks=None, grid_shape: tuple[int, int] | None = None,
+               blocks: Any = None, grid_shape: tuple[int, int] | None = None,
                progress: Callable[[int, int], Any] | None = None,
                n_workers: int | None = None) -> pd.DataFrame:
     """Test each term given all the other terms (and ``conditioning``).

@@ -177,7 +177,8 @@ class TestRedundancyAnalysis:
 
     def test_site_order_mismatch(self):
         y, x, _ = survey(1002)
-        with pytest.raises(InputError, match=r"different sites or a different order: row 0 is site 'site39' in `X` but 'site00'"):
+        with pytest.raises(InputError, match=r"different sites or a different order: row 0 is "
+                                             r"site 'site39' in `X` but 'site00'"):
             redundancy_analysis(y, x.iloc[::-1])
 
     def test_constant_x(self):

@@ -47,7 +47,7 @@ def _environment_test(analysis) -> dict | None:
     test = getattr(analysis, "environment_spectral", None)
     if test is None:
         return None
-    return {"method": "moran_spectral_randomisation", "weighting": "distance",
+    return {"method": "moran_spectral_randomisation", "weighting": "distance_decay",
             "n_randomisations": test.n_randomisations, "r2_adj": test.r2_adj,
             "p": test.p_value}
 
@@ -203,8 +203,9 @@ def analysis_context(analysis, *, title: str | None = None,
         notes.append("Besides free permutations, the community–environment link was tested by "
                      "Moran spectral randomisation of the environmental table (Wagner & Dray "
                      "2015, Methods Ecol. Evol. 6:1169–1178): random signs on the environment's "
-                     "coefficients over all spatial eigenvectors of the distance-based "
-                     "weighting, the same signs for every variable, keep each variable's "
+                     "coefficients over all spatial eigenvectors of a distance-decay "
+                     "weighting exp(−d/t) (t the truncation distance of the distance-based "
+                     "eigenvectors), the same signs for every variable, keep each variable's "
                      "Moran's I and the correlations among variables; only this spatial "
                      "spectrum is kept, not higher-order structure such as patch shapes.")
     limits = {"finest_scale": float(basis.scale.min()),

@@ -160,6 +160,26 @@ class TestPermutationTest:
         assert test.p_value == ref.p_value
         np.testing.assert_allclose(test.null_distribution, ref.null_distribution, rtol=1e-12)
 
+    def test_work_is_picklable_for_process_workers(self, monkeypatch):
+        # dask workers in other processes receive the batched kernel by pickling
+        import pickle
+
+        from spatial_ev import permutation as engine_module
+
+        y, x, w = data(1357913579)
+        sent = []
+        real = engine_module.run_tasks
+
+        def through_pickle(function, tasks, **kw):
+            sent.append(pickle.loads(pickle.dumps(function)))
+            return real(sent[-1], tasks, **kw)
+
+        ref = permutation_test(y, x, conditioning=w, n_permutations=200, seed=3)
+        monkeypatch.setattr(engine_module, "run_tasks", through_pickle)
+        test = permutation_test(y, x, conditioning=w, n_permutations=200, seed=3)
+        assert sent and test.p_value == ref.p_value
+        np.testing.assert_allclose(test.null_distribution, ref.null_distribution, rtol=1e-12)
+
     def test_seed_reproducible_and_generator_accepted(self):
         y, x, _ = data(111222333)
         a = permutation_test(y, x, n_permutations=200, seed=55)

@@ -13,6 +13,13 @@ Moran's I of eigenvector k is I_k = (n/S₀)·μ_k (S₀ = 1ᵀW1). Below ~3000 
 eigensolver is used; above, Lanczos (ARPACK, :func:`scipy.sparse.linalg.eigsh`) on an operator
 that centres implicitly, asking only for the broadest vectors — the n × n matrix is never
 formed and memory stays O(n·(neighbours + vectors)).
+
+Lanczos details: ncv = 2k + 1 Lanczos vectors, full machine-precision tolerance, a fixed
+starting vector (results repeat), BLAS limited to one thread inside ARPACK (its
+reorthogonalisation is memory-bound level-2 BLAS; one thread is as fast on an idle machine and
+much faster on a shared one). Most of the time is ARPACK's reorthogonalisation, linear in n per
+Lanczos step; the number of steps grows when the broadest eigenvalues crowd together (larger
+areas at the same sampling density). See ``benchmarks/eigen_scaling.py``.
 """
 
 from __future__ import annotations
@@ -359,8 +366,8 @@ def _basis(w: sparse.csr_matrix, layout: Layout, lengths: np.ndarray, raw_weight
         scale = _scales(u, mu, w, lengths, raw_weights, layout.collinear)
         if finest_scale is None:
             break
-        enough = scale.size == 0 or scale.min() < finest_scale or len(mu) < (k or n) * 0.8 \
-            or (k or n) >= n - 2
+        enough = (scale.size == 0 or scale.min() < finest_scale or len(mu) < (k or n) * 0.8
+                  or (k or n) >= n - 2 or (max_vectors is not None and k >= max_vectors))
         if enough:
             keep = scale >= finest_scale
             mu, u, scale = mu[keep], u[:, keep], scale[keep]

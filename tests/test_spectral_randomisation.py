@@ -323,3 +323,15 @@ class TestLevelWithAutocorrelatedEnvironment:
         assert lo <= rates["spectral_distance"] <= 0.13
         assert lo <= rates["spectral_decay"] <= hi
         assert rates["ordinary"] > 3 * rates["spectral_distance"]
+
+    def test_distance_decay_weighting_keeps_the_level_for_long_ranges(self):
+        # range 400 m (2.7 truncation distances) on the irregular layout: the sparse MEM
+        # weighting is clearly liberal (seeded 0.13), the distance-decay weighting used by
+        # analyse is not (seeded 0.048; free permutations 0.75). Both tables are exponential
+        # fields, the family of the decay kernel: other shapes are not covered by this check.
+        rates = _studies().spectral_study("exponential", "irregular", self.reps,
+                                          seed=20261202003, environment_range=400.0)
+        lo, hi = binomial_interval(self.reps)
+        assert lo <= rates["spectral_decay"] <= hi
+        assert rates["spectral_distance"] > hi
+        assert rates["ordinary"] > 0.5

@@ -373,8 +373,10 @@ def to_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
               "weighting describes the environment's autocorrelation and approximate "
               "otherwise: with the sparse distance-based weighting and environments "
               "autocorrelated over long ranges on irregular layouts it stays liberal; the "
-              "dense distance-decay weighting (used by `analyse`) stays closer to α in these "
-              "designs. Read p-values near α with caution.", ""]
+              "dense distance-decay weighting (used by `analyse`) keeps α in these designs. "
+              "The simulated environments are exponential fields, the family of the decay "
+              "kernel; other autocorrelation shapes (Gaussian, spherical, anisotropic) were not "
+              "simulated, so read p-values near α with caution.", ""]
     return "\n".join(lines)
 
 

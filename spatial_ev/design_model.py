@@ -237,8 +237,13 @@ class _Simulator:
         self.settings = settings
 
     def __call__(self, task: tuple[int, np.random.SeedSequence]) -> dict:
+        from .engines import _one_blas_thread
+
         position, seq = task
-        return _simulate(self.models[position], self.settings, seq)
+        # matrices of a few hundred rows: BLAS threads only add contention (measured: a
+        # serial run with two BLAS threads was 13x slower than two single-threaded tasks)
+        with _one_blas_thread():
+            return _simulate(self.models[position], self.settings, seq)
 
 
 def _simulate(lay: _LayoutModel, s: _Settings, seq: np.random.SeedSequence) -> dict:

@@ -18,7 +18,7 @@ from spatial_ev.survey import Survey
 
 
 def _grid_survey(n_side: int = 12, spacing: float = 10.0, seed: int = 20261202) -> Survey:
-    """Invented regular-grid survey: a broad wave, a fine wave and one driver, Poisson counts."""
+    """Invented regular-grid survey: a broad wave, a fine wave and two drivers, Poisson counts."""
     rng = np.random.default_rng(seed)
     gx, gy = np.meshgrid(np.arange(n_side) * spacing, np.arange(n_side) * spacing)
     x, y = gx.ravel(), gy.ravel()
@@ -26,13 +26,13 @@ def _grid_survey(n_side: int = 12, spacing: float = 10.0, seed: int = 20261202) 
     extent = spacing * (n_side - 1)
     broad = np.cos(np.pi * x / extent) + np.cos(np.pi * y / extent)
     fine = np.cos(2 * np.pi * x / (4.5 * spacing)) * np.cos(2 * np.pi * y / (4.5 * spacing))
-    depth = rng.normal(size=x.size)
-    load = rng.normal(0, 0.9, (3, 10))
-    counts = rng.poisson(np.exp(1.2 + np.column_stack([broad, fine, depth]) @ load))
+    depth, salt = rng.normal(size=x.size), rng.normal(size=x.size)
+    load = rng.normal(0, 0.9, (4, 10))
+    counts = rng.poisson(np.exp(1.2 + np.column_stack([broad, fine, depth, salt]) @ load))
     counts[:, 0] += 1
     sites = pd.DataFrame({"x": x, "y": y}, index=ids)
     species = pd.DataFrame(counts, index=ids, columns=[f"T{j:02d}" for j in range(10)])
-    env = pd.DataFrame({"depth": depth, "noise": rng.normal(size=x.size)}, index=ids)
+    env = pd.DataFrame({"depth": depth, "salinity": salt}, index=ids)
     return Survey.from_frames(sites, species, env, local_unit="metre")
 
 
@@ -148,7 +148,7 @@ class TestEvaluateDesign:
         one = evaluate_design(grid_pilot, layouts, n_workers=1, **kwargs)
         two = evaluate_design(grid_pilot, layouts, n_workers=2, **kwargs)
         with distributed.LocalCluster(processes=False, n_workers=2, threads_per_worker=1,
-                                      dashboard_address=None) as cluster, \
+                                      dashboard_address=":0") as cluster, \
                 distributed.Client(cluster) as client:
             dask = evaluate_design(grid_pilot, layouts, engine="dask", scheduler=client,
                                    **kwargs)

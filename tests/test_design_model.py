@@ -1,0 +1,113 @@
+"""Tests of the pilot model used as a data generator (spatial_ev.design_model)."""
+
+from __future__ import annotations
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.spatial.distance import cdist
+
+from spatial_ev.analysis import analyse
+from spatial_ev.design_model import _layout_model, _pilot_model, environment_at
+from spatial_ev.design import layout_basis
+from spatial_ev.errors import InputError
+from spatial_ev.layouts import CandidateLayout
+from spatial_ev.survey import Survey
+from conftest import make_small_survey_tables
+
+
+@pytest.fixture(scope="module")
+def pilot():
+    sites, species, env = make_small_survey_tables()
+    sites = sites.set_index("site").rename(columns={"easting": "x", "northing": "y"})
+    survey = Survey.from_frames(sites, species.set_index("site"), env.set_index("site"),
+                                crs="EPSG:32633")
+    return analyse(survey, spatial_weighting="single", schemes="distance", n_permutations=99,
+                   seed=20261202)
+
+
+class TestEnvironmentAt:
+    def test_exact_at_pilot_sites(self, pilot):
+        xy = pilot.survey.coords.to_numpy()[:7]
+        env, how = environment_at(pilot, xy)
+        assert np.allclose(env.to_numpy(), pilot.environment.to_numpy()[:7])
+        assert "inverse distance" in how
+
+    def test_inverse_distance_oracle(self, pilot):
+        # Shepard's inverse-distance weighting, w = 1/d² over the 8 nearest sites, computed
+        # here by brute force with scipy's cdist [practice]
+        rng = np.random.default_rng(20261202)
+        xy = pilot.survey.coords.to_numpy()
+        new = xy.min(axis=0) + rng.uniform(0, 1, (5, 2)) * np.ptp(xy, axis=0)
+        env, _ = environment_at(pilot, new)
+        d = cdist(new, xy)
+        near = np.argsort(d, axis=1)[:, :8]
+        w = 1.0 / np.take_along_axis(d, near, axis=1) ** 2
+        values = pilot.environment.to_numpy()
+        expected = np.einsum("mk,mkc->mc", w / w.sum(1, keepdims=True), values[near])
+        numeric = [c for c in env.columns if "[" not in c]
+        cols = [list(env.columns).index(c) for c in numeric]
+        assert np.allclose(env.to_numpy()[:, cols], expected[:, cols])
+        # category indicators come from the nearest site (0/1 preserved)
+        ind = [i for i, c in enumerate(env.columns) if "[" in c]
+        assert np.array_equal(env.to_numpy()[:, ind], values[near[:, 0]][:, ind])
+
+    def test_layer(self, pilot):
+        raw = pilot.survey.environment
+        xy = pilot.survey.coords.to_numpy()[:4] + 0.5
+        layer = gpd.GeoDataFrame({"depth_m": [1.0, 2.0, 3.0, 4.0],
+                                  "substrate": ["sand", "mud", "sand", "mud"]},
+                                 geometry=gpd.points_from_xy(xy[:, 0], xy[:, 1]),
+                                 crs=pilot.survey.crs)
+        env, how = environment_at(pilot, xy, layer=layer)
+        col = raw["depth_m"].to_numpy()
+        assert np.allclose(env["depth_m"], (np.arange(1.0, 5.0) - col.mean()) / col.std(ddof=1))
+        indicator = pilot.survey.categorical["substrate"][0]
+        level = indicator[len("substrate") + 1:-1]
+        assert env[indicator].tolist() == [float(v == level) for v in layer["substrate"]]
+        assert "layer" in how
+
+    def test_layer_missing_column(self, pilot):
+        xy = pilot.survey.coords.to_numpy()[:2]
+        layer = gpd.GeoDataFrame({"other": [1.0, 2.0]},
+                                 geometry=gpd.points_from_xy(xy[:, 0], xy[:, 1]),
+                                 crs=pilot.survey.crs)
+        with pytest.raises(InputError, match=r"environment layer lacks the pilot variable\(s\)"):
+            environment_at(pilot, xy, layer=layer)
+
+
+@pytest.fixture(scope="module")
+def spatial_pilot():
+    from test_design import _grid_survey
+
+    return analyse(_grid_survey(), spatial_weighting="single", schemes="distance",
+                   n_permutations=99, seed=20261202, trend="ignore")
+
+
+class TestPilotModel:
+    def test_signal_at_pilot_sites_is_the_fit(self, spatial_pilot):
+        pilot = spatial_pilot
+        # at the pilot's own sites the generating signal is the least-squares fit of the
+        # transformed community on trend + selected environment + selected vectors
+        # (numpy lstsq as the oracle)
+        model = _pilot_model(pilot)
+        lay = CandidateLayout("pilot", "pilot", pilot.survey.coords[["x", "y"]], None, {})
+        basis, _, _ = layout_basis(lay.coords.to_numpy(), "distance")
+        lm, info = _layout_model(pilot, model, lay, basis, None)
+        Y = pilot.response.to_numpy()
+        parts = []
+        if pilot.trend_kept:
+            parts.append(pilot.survey.coords.to_numpy())
+        if pilot.selected_environment:
+            parts.append(pilot.environment[list(pilot.selected_environment)].to_numpy())
+        parts.append(pilot.basis.vectors[list(pilot.selected_space)].to_numpy())
+        X = np.column_stack([np.ones(len(Y))] + parts)
+        coef, *_ = np.linalg.lstsq(X, Y, rcond=None)
+        assert np.allclose(lm.signal, X @ coef, atol=1e-10)
+        assert pilot.selected_space and pilot.selected_environment
+        assert all(abs(v - 1.0) < 1e-9 for v in info["class_variance_ratio"].values())
+        # residual rows: the fit's residuals inflated by sqrt((n - 1)/(n - 1 - m))
+        n, m = X.shape[0], X.shape[1] - 1
+        assert np.allclose(model["residuals"],
+                           (Y - X @ coef) * np.sqrt((n - 1) / (n - 1 - m)), atol=1e-10)

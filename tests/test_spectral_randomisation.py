@@ -225,6 +225,27 @@ class TestSpectralRandomisationTest:
             spectral_randomisation_test(self.y, self.env, self.basis, seed=-4)
 
 
+class TestDistanceDecayWeights:
+    def test_values_against_brute_force(self):
+        xy = np.random.default_rng(1357913579).uniform(0, 1000, size=(25, 2))
+        w = distance_decay_weights(xy)
+        # default decay distance: longest edge of the minimum spanning tree (Borcard &
+        # Legendre 2002 truncation distance), here from scipy's dense MST as an oracle
+        from scipy.sparse.csgraph import minimum_spanning_tree
+        d = cdist(xy, xy)
+        t = minimum_spanning_tree(d).toarray().max()
+        expected = np.exp(-d / t)
+        np.fill_diagonal(expected, 0.0)
+        assert np.allclose(w, expected, rtol=1e-12)
+        w2 = distance_decay_weights(pd.DataFrame(xy, columns=["x", "y"]), decay_distance=50.0)
+        assert w2[0, 1] == pytest.approx(np.exp(-d[0, 1] / 50.0))
+        assert np.array_equal(w, w.T)
+
+    def test_bad_decay_distance(self):
+        with pytest.raises(InputError, match=r"`decay_distance` must be > 0; got -1.0"):
+            distance_decay_weights(grid(4), decay_distance=-1.0)
+
+
 class TestAnalyseOption:
     """``analyse(..., environment_test=...)`` runs and reports the spectral test."""
 

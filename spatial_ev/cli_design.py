@@ -210,7 +210,7 @@ def execute(args: argparse.Namespace) -> int:
             pilot, list(args.layout), n_simulations=args.simulations,
             n_permutations=args.permutations, target_power=args.target_power,
             space_level=args.space_level, environment_layer=_environment_layer(args, crs),
-            area=_area(args, crs), include_pilot=args.reference == "pilot", seed=args.seed,
+            area=_area(args, crs), reference=args.reference, seed=args.seed,
             engine=args.engine, scheduler=args.scheduler, n_workers=args.workers,
             progress=progress.step)
         write_design_folder(evaluation, args.out, pilot=pilot, overwrite=args.overwrite,

@@ -38,6 +38,15 @@ misjudged, which blurs power by at most a few points — less than the simulatio
 power itself (√(0.8 · 0.2 / 100) = 0.04 with 100 simulations). The corrected level for ten
 schemes (0.0051) is reachable with 199 permutations (smallest p = 1/200); fewer are refused.
 
+Detection of a scale class at a layout: each spatial vector selected in a simulated analysis
+is attributed to the pilot class whose generating structure it carries most of (share
+‖F_cᵀu‖² of the class's structure F_c at the layout's sites); the class is detected when it
+has at least one such vector and their partial test (given the other selected vectors and the
+trend) has p ≤ α. Attribution goes by the structure carried rather than by the vector's
+nominal scale because scale estimates differ between bases: a denser layout's basis labels the
+same wave finer, which would credit it with a "finer" class it only resolves at the broader
+scale. Classes without selected pilot vectors carry no structure and are never detected.
+
 Assumptions, stated in every result: the pilot model is right (linear effects of the selected
 variables, the selected spatial structure is the real one); stationarity (the structure seen
 in the pilot area holds wherever the layout samples, and the extension of fine vectors
@@ -173,7 +182,7 @@ def spectral_coverage(pilot, layouts: Sequence[CandidateLayout | str], *,
     Parameters
     ----------
     pilot : Analysis
-        From :func:`spatial_ev.analyse` (or :func:`spatial_ev.design_io.load_pilot`).
+        From :func:`spatial_ev.analyse` (or :func:`spatial_ev.pilot_folder.load_pilot`).
     layouts : sequence of CandidateLayout or layout spec strings
         See :mod:`spatial_ev.layouts` for the spec syntax.
     area : shapely Polygon, optional
@@ -336,7 +345,7 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
                     n_simulations: int = 100, n_permutations: int = 199,
                     target_power: float = 0.8, space_level: str = "corrected",
                     environment_layer: Any = None, area: Any = None,
-                    include_pilot: bool = True, seed: int | None = None,
+                    reference: str = "pilot", seed: int | None = None,
                     engine: str = "local", scheduler: Any = None, n_workers: int | None = None,
                     progress: Callable[[int, int], Any] | None = None) -> DesignEvaluation:
     """Spectral coverage and simulated power of candidate sampling layouts.
@@ -361,8 +370,9 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
         Environmental values for new sites (default: interpolation from the pilot sites).
     area : shapely Polygon, optional
         Study area for grids and augmentation (default: the pilot's convex hull).
-    include_pilot : bool
-        Evaluate the pilot layout itself as a reference (named ``"pilot"``).
+    reference : {"pilot", "none"}
+        ``"pilot"``: also evaluate the pilot layout as sampled (named ``"pilot"``), the
+        baseline the candidates are compared with; ``"none"``: only the candidates.
     seed : int, optional
         One seed for every simulation (drawn and recorded when omitted).
     engine, scheduler, n_workers :
@@ -387,8 +397,9 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
         pilot = load_pilot(pilot)
     n_simulations, n_permutations, target, space_level, seed = _check_evaluate(
         n_simulations, n_permutations, target_power, space_level, seed, engine)
+    reference = check_option("reference", reference, ["pilot", "none"])
     pilot, built = _check_pilot_layouts(pilot, layouts, area, seed)
-    if include_pilot and "pilot" not in [b.name for b in built]:
+    if reference == "pilot" and "pilot" not in [b.name for b in built]:
         built = [CandidateLayout("pilot", "pilot", pilot.survey.coords[["x", "y"]].copy(), None,
                                  {}, f"the pilot's {pilot.survey.n_sites} sites as sampled")] \
             + built

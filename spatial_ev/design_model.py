@@ -117,6 +117,7 @@ class _LayoutModel:
     scale: pd.Series            # (k,) its scales
     env_true: np.ndarray | None  # generating environmental predictors
     space_true: np.ndarray | None  # generating spatial predictors (trend + extended vectors)
+    class_parts: dict = None    # class name -> (n, p) its generating structure, centred
 
 
 @dataclass(frozen=True)
@@ -180,8 +181,9 @@ def _layout_model(pilot, model, lay: CandidateLayout, basis, layer) -> tuple[_La
         space_parts.append(xy - model["centre"])
     env, env_true = None, None
     if pilot.environment is not None and pilot.environment.shape[1]:
-        env, info["environment_source"] = environment_at(pilot, xy, layer=layer)
-        env.index = lay.coords.index
+        full, info["environment_source"] = environment_at(pilot, xy, layer=layer)
+        full.index = lay.coords.index
+        env = full
         varying = env.columns[env.to_numpy().std(axis=0) > 1e-12]
         if len(varying) < env.shape[1]:
             info["constant_environment"] = [c for c in env.columns if c not in varying]
@@ -192,7 +194,6 @@ def _layout_model(pilot, model, lay: CandidateLayout, basis, layer) -> tuple[_La
                                                          .index(c) for c in env.columns]]
             info["environment_sd_ratio"] = dict(zip(env.columns, np.round(kept, 4)))
     if model["env_sel"]:
-        full, _ = environment_at(pilot, xy, layer=layer)
         e = full[model["env_sel"]].to_numpy()
         signal += (e - model["x_mean"]["environment"]) @ model["coef"]["environment"]
         env_true = e
@@ -208,7 +209,22 @@ def _layout_model(pilot, model, lay: CandidateLayout, basis, layer) -> tuple[_La
         info["class_variance_ratio"] = _class_variance(pilot, model, ext)
     space_true = np.hstack(space_parts) if space_parts else None
     return _LayoutModel(lay.name, signal, trend, env, basis.vectors, basis.scale, env_true,
-                        space_true), info
+                        space_true, _class_parts(pilot, model, xy)), info
+
+
+def _class_parts(pilot, model, xy) -> dict:
+    """Each scale class's generating structure at the layout's sites (centred, n × p)."""
+    names = model["space_sel"]
+    if not names:
+        return {}
+    ext = pilot.basis.extend(xy)[names].to_numpy()
+    out = {}
+    for fit in pilot.scale_fits:
+        idx = [names.index(v) for v in fit.scale_class.vectors]
+        if idx:
+            part = ext[:, idx] @ model["coef"]["space"][idx]
+            out[fit.scale_class.name] = part - part.mean(axis=0)
+    return out
 
 
 def _class_variance(pilot, model, ext) -> dict:
@@ -250,7 +266,6 @@ def _simulate(lay: _LayoutModel, s: _Settings, seq: np.random.SeedSequence) -> d
     from .canonical import explained_fraction
     from .partition import partition_variation
     from .permutation import permutation_test
-    from .scales import classify_scales
     from .selection import forward_selection
 
     rng_rows, *streams = [np.random.default_rng(c) for c in seq.spawn(6)]
@@ -290,18 +305,19 @@ def _simulate(lay: _LayoutModel, s: _Settings, seq: np.random.SeedSequence) -> d
         space_r2 = explained_fraction(Y, S).r2_adj if S is not None else 0.0
         est = [env_r2, 0.0, space_r2, 1.0 - env_r2 - space_r2]
     detected = {"environment": bool(env_sel) and env_p is not None and env_p <= alpha}
-    classes = classify_scales(lay.scale, list(space_sel), breaks=list(s.breaks))
-    for klass, stream in zip(classes, streams[4].spawn(len(classes))):
+    owners = _owners(lay, vec, space_sel)
+    for name, stream in zip(s.class_names, streams[4].spawn(len(s.class_names))):
+        mine = [v for v, o in zip(space_sel, owners) if o == name]
         hit = False
-        if klass.vectors:
-            others = [v for v in space_sel if v not in klass.vectors]
+        if mine:
+            others = [v for v in space_sel if v not in mine]
             parts = [b for b in (cond, vec[others].to_numpy() if others else None)
                      if b is not None]
-            t = permutation_test(Y, vec[list(klass.vectors)].to_numpy(),
+            t = permutation_test(Y, vec[mine].to_numpy(),
                                  conditioning=np.hstack(parts) if parts else None,
                                  n_permutations=P, seed=stream)
             hit = t.p_value <= alpha
-        detected[f"scale:{klass.name}"] = bool(hit)
+        detected[f"scale:{name}"] = bool(hit)
     truth = [np.nan] * 4
     try:
         if lay.env_true is not None and lay.space_true is not None:
@@ -319,3 +335,19 @@ def _simulate(lay: _LayoutModel, s: _Settings, seq: np.random.SeedSequence) -> d
     return {"detected": detected, "estimate": [float(v) for v in est],
             "truth": [float(v) for v in truth], "n_environment": len(env_sel),
             "n_space": len(space_sel)}
+
+
+def _owners(lay: _LayoutModel, vec: pd.DataFrame, selected) -> list:
+    """The pilot scale class whose generating structure each selected vector carries most of.
+
+    Share of class c carried by unit vector u: ‖F_cᵀu‖² with F_c the class's structure at
+    the layout's sites. Attribution by structure, not by the vector's nominal scale, because
+    scale estimates differ between bases (a denser layout labels the same wave finer).
+    """
+    if not selected or not lay.class_parts:
+        return [None] * len(selected)
+    u = vec[list(selected)].to_numpy()
+    u = u / np.linalg.norm(u, axis=0)
+    names = list(lay.class_parts)
+    shares = np.stack([np.sum((u.T @ lay.class_parts[c]) ** 2, axis=1) for c in names])
+    return [names[i] for i in shares.argmax(axis=0)]

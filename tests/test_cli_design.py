@@ -8,6 +8,7 @@ import shutil
 import geopandas as gpd
 import pandas as pd
 import pytest
+import shapely
 
 from spatial_ev.cli import main
 
@@ -33,8 +34,13 @@ def design_args(pilot, out, *layouts, extra=()):
 class TestDesignCommand:
     def test_three_layouts_write_the_folder(self, demo_run, tmp_path, capsys):
         out = tmp_path / "design"
+        # study area: the grid part of the mudflat, given in WGS 84 (reprojected by the command)
+        box = shapely.box(452300, 5612800, 452860, 5613240)
+        area = gpd.GeoDataFrame(geometry=[box], crs=32630).to_crs(4326)
+        area.to_file(tmp_path / "area.geojson", driver="GeoJSON")
         code = main(design_args(demo_run, out, "grid:spacing=80", "thin:every=2", TRANSECT,
-                                extra=("--reference", "none")))
+                                extra=("--reference", "none", "--area",
+                                       str(tmp_path / "area.geojson"))))
         assert code == 0
         assert FILES <= {p.name for p in out.iterdir()}
         assert not [p for p in tmp_path.iterdir() if ".partial-" in p.name]
@@ -48,6 +54,9 @@ class TestDesignCommand:
         assert set(coverage["status"]) <= {"resolved", "partly", "not resolved"}
         layers = gpd.list_layers(out / "layouts.gpkg")["name"].tolist()
         assert len(layers) == 3
+        grid = gpd.read_file(out / "layouts.gpkg", layer=layers[0])
+        assert grid["layout"].iloc[0] == "grid:spacing=80"
+        assert box.buffer(0.01).contains(grid.geometry).all() and len(grid) == 8 * 6
         transect = gpd.read_file(out / "layouts.gpkg", layer=layers[2])
         assert len(transect) == 37 and transect.crs.to_epsg() == 32630
         page = (out / "design_report.html").read_text()

@@ -143,7 +143,7 @@ class TestEvaluateDesign:
 
     def test_same_seed_same_table_any_engine(self, grid_pilot):
         distributed = pytest.importorskip("distributed")
-        kwargs = dict(n_simulations=3, n_permutations=99, seed=20261202, include_pilot=False)
+        kwargs = dict(n_simulations=3, n_permutations=99, seed=20261202, reference="none")
         layouts = ["thin:every=2", "grid:spacing=20"]
         one = evaluate_design(grid_pilot, layouts, n_workers=1, **kwargs)
         two = evaluate_design(grid_pilot, layouts, n_workers=2, **kwargs)
@@ -159,7 +159,7 @@ class TestEvaluateDesign:
     def test_progress(self, grid_pilot):
         calls = []
         evaluate_design(grid_pilot, ["thin:every=2"], n_simulations=2, n_permutations=99,
-                        seed=20261203, include_pilot=False,
+                        seed=20261203, reference="none",
                         progress=lambda done, total: calls.append((done, total)))
         assert calls[-1] == (2, 2)
 

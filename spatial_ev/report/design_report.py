@@ -32,6 +32,7 @@ import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
+from matplotlib.ticker import MaxNLocator
 
 from ..errors import InputError
 from . import _style as st
@@ -168,7 +169,9 @@ def power_figure(power: pd.DataFrame, *, target: float = 0.8,
         part = power[power["objective"] == obj].set_index("layout").reindex(order)
         xs = x - 0.35 + width * (j + 0.5)
         colour = st.group_colour(j)
-        ax.errorbar(xs, part["power"], yerr=2 * part["mc_se"], fmt="o", color=colour,
+        p, e = part["power"].to_numpy(float), 2 * part["mc_se"].to_numpy(float)
+        yerr = np.vstack([np.minimum(e, p), np.minimum(e, 1 - p)])  # the bars stay in [0, 1]
+        ax.errorbar(xs, p, yerr=yerr, fmt="o", color=colour,
                     ms=5, lw=1.2, capsize=2, label=obj.replace("scale:", "scale class "),
                     gid="power-points")
     ax.axhline(target, color=st.INK, lw=1.0, ls=(0, (4, 3)), gid="target-power")
@@ -217,6 +220,9 @@ def layout_map_figure(pilot_xy: np.ndarray, layouts: dict[str, pd.DataFrame], *,
         ax.set_xlim(allxy[:, 0].min() - pad, allxy[:, 0].max() + pad)
         ax.set_ylim(allxy[:, 1].min() - pad, allxy[:, 1].max() + pad)
         ax.set_aspect("equal")
+        ax.ticklabel_format(useOffset=False, style="plain")
+        ax.xaxis.set_major_locator(MaxNLocator(3))
+        ax.yaxis.set_major_locator(MaxNLocator(4))
         ax.tick_params(labelsize=6.5)
     for ax in axes[k:]:
         fig.delaxes(ax)
@@ -275,7 +281,8 @@ extent.</p>
 <p>{{ n_simulations }} simulated surveys per layout, {{ n_permutations }} permutations per
 test, seed {{ seed }}. Power = share of simulations in which the analysis detected the
 objective (environmental fraction: selected and its unique fraction significant; scale class:
-at least one selected vector in the class and the class's partial test significant at
+at least one selected vector carrying mostly that class's structure, and the partial test of
+those vectors significant at
 α = {{ alpha }}; spatial global test at {{ space_level }}).</p>
 <img alt="simulated power" src="{{ figures.design_power }}">
 {{ tables.power }}

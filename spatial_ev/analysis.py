@@ -500,7 +500,7 @@ def _spectral_test(Y, env, env_sel, survey, rng, run, alpha, notes, say):
                  + " It is exact only when the weighting describes the environment's "
                  "autocorrelation; in spatial_ev's simulation studies (exponential, Gaussian, "
                  "spherical and anisotropic environmental autocorrelation, 36–40 sites) it "
-                 "stayed near the 5 % level where free permutations rejected 12–91 % of true "
+                 "stayed near the 5 % level where free permutations rejected 12–86 % of true "
                  "null hypotheses.")
     if free is not None and free <= alpha < test.p_value:
         notes.append("Only the free-permutation test of the environment is significant: the "

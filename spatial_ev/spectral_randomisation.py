@@ -46,9 +46,10 @@ the truncated distance-based weighting) describe a long-range autocorrelated env
 roughly on irregular layouts. In this package's simulations (``validation/error_rates.md``:
 environments with exponential covariance, range 0.3–4 times the truncation distance t, 2000
 replicates) the test with the distance-based W rejected up to 15 % of true null hypotheses at
-α = 0.05, against about 5 % with the dense distance-decay weighting w_ij = exp(−d_ij/t) of
-:func:`distance_decay_weights` (free permutations: 12–76 %); the decay weighting also kept the
-level for Gaussian, spherical and anisotropic environmental autocorrelation.
+α = 0.05, against 4.5–6.0 % with the dense distance-decay weighting w_ij = exp(−d_ij/t) of
+:func:`distance_decay_weights` (free permutations: 12–75 %); the decay weighting also kept the
+level for Gaussian, spherical and anisotropic environmental autocorrelation (free
+permutations: up to 86 %).
 :func:`spatial_ev.analysis.analyse` therefore uses the distance-decay weighting.
 
 Reproducibility. Sign vectors are drawn in fixed blocks of 128 from

@@ -176,6 +176,7 @@ def _summary_lines(ev, out: str, elapsed: float) -> list[str]:
     lines.append("power (share of simulations detecting each objective):")
     lines += ["  " + line for line in table.round(2).to_string().splitlines()]
     lines += list(ev.recommendations)
+    lines += [f"note: {n}" for n in ev.notes if n.startswith("The rebuilt pilot")]
     lines.append(f"report: {Path(out) / 'design_report.html'}")
     return lines
 

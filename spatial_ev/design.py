@@ -164,6 +164,7 @@ def _pilot_classes(pilot) -> pd.DataFrame:
     for fit in pilot.scale_fits:
         c = fit.scale_class
         rows.append({"scale_class": c.name, "lower": c.bounds[0], "upper": c.bounds[1],
+                     "finest_selected": None if c.scale_range is None else c.scale_range[0],
                      "pilot_vectors": len(c.vectors), "r2_adj": fit.r2_adj, "p": fit.p_value,
                      "pilot_significant": bool(fit.p_value is not None and fit.p_value <= alpha)})
     return pd.DataFrame(rows)
@@ -265,7 +266,8 @@ class DesignEvaluation:
     power : DataFrame
         One row per (layout, objective): ``layout``, ``objective`` (``"environment"`` or
         ``"scale:<class>"``), ``pilot_significant``, ``power`` (share of simulations that
-        detected it), ``mc_se`` (its Monte Carlo standard error), ``n_sites``, ``line_length``.
+        detected it), ``mc_se`` (its Monte Carlo standard error), ``ci_low``, ``ci_high``
+        (Wilson 95 % interval), ``n_sites``, ``line_length``.
     fractions : DataFrame
         One row per (layout, fraction): ``pilot`` (the pilot's estimate), ``truth`` (mean over
         simulations of the partition with the generating predictors at the layout's sites),
@@ -449,7 +451,9 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
     }
     return DesignEvaluation(tuple(built), coverage, power, fractions, sims,
                             tuple(_recommend(power, coverage, target, classes, built)),
-                            settings_out, tuple(_notes(infos)))
+                            settings_out,
+                            tuple([n for n in pilot.notes if n.startswith("The rebuilt pilot")]
+                                  + _notes(infos)))
 
 
 def _simulation_frame(built, results, n_sim) -> pd.DataFrame:
@@ -477,8 +481,10 @@ def _power_tables(pilot, built, sims, classes) -> tuple[pd.DataFrame, pd.DataFra
         m = len(part)
         for obj in objectives:
             p = float(part[obj].mean()) if obj in part else 0.0
+            low, high = _wilson(p, m)
             prow.append({"layout": lay.name, "objective": obj, "pilot_significant": sig[obj],
-                         "power": p, "mc_se": math.sqrt(p * (1 - p) / m),
+                         "power": p, "mc_se": math.sqrt(p * (1 - p) / m), "ci_low": low,
+                         "ci_high": high,
                          "n_sites": lay.n_sites, "line_length": lay.line_length})
         for f in _FRACTIONS:
             est, tru = part[f"estimate_{f}"], part[f"truth_{f}"]
@@ -489,9 +495,18 @@ def _power_tables(pilot, built, sims, classes) -> tuple[pd.DataFrame, pd.DataFra
     return pd.DataFrame(prow), pd.DataFrame(frow)
 
 
+def _wilson(p: float, m: int, z: float = 1.959964) -> tuple[float, float]:
+    """Wilson score 95 % interval of a proportion p from m simulations (Wilson 1927, J. Am.
+    Stat. Assoc. 22:209–212); unlike ±2 SE it stays informative at p = 0 or 1."""
+    centre = (p + z * z / (2 * m)) / (1 + z * z / m)
+    half = z * math.sqrt(p * (1 - p) / m + z * z / (4 * m * m)) / (1 + z * z / m)
+    return max(0.0, centre - half), min(1.0, centre + half)
+
+
 def _recommend(power, coverage, target, classes, built) -> list[str]:
     cost = {b.name: (b.n_sites, b.line_length or 0.0) for b in built}
     bounds = {f"scale:{r.scale_class}": (r.lower, r.upper) for r in classes.itertuples()}
+    finest = {f"scale:{r.scale_class}": r.finest_selected for r in classes.itertuples()}
     out = []
     for obj, part in power.groupby("objective", sort=False):
         if not part["pilot_significant"].iloc[0]:
@@ -507,16 +522,18 @@ def _recommend(power, coverage, target, classes, built) -> list[str]:
             best = min(ok.itertuples(), key=lambda r: cost[r.layout])
             extra = f", {best.line_length:.4g} map units of line" if best.line_length else ""
             out.append(f"To detect {label} with power ≥ {target:g} you need {best.layout!r} "
-                       f"({best.n_sites} sites{extra}; estimated power {best.power:.2f} ± "
-                       f"{best.mc_se:.2f}), the cheapest candidate that reaches it.")
+                       f"({best.n_sites} sites{extra}; estimated power {best.power:.2f}, "
+                       f"95 % interval {best.ci_low:.2f}–{best.ci_high:.2f}), the cheapest "
+                       f"candidate that reaches it.")
         else:
             top = part.loc[part["power"].idxmax()]
             hint = "more sites over the same extent, or stronger replication"
-            if obj != "environment":
-                lo = bounds[obj][0]
-                hint = (f"a spacing of at most {lo / 3:.4g} map units (finest resolvable "
-                        f"wavelength ≈ 2–4 sampling intervals) where this class matters, "
-                        f"or more sites")
+            wave = finest.get(obj)
+            if obj != "environment" and wave is not None and math.isfinite(wave):
+                hint = (f"sites at most {wave / 4:.4g}–{wave / 2:.4g} map units apart where "
+                        f"this class matters (its pilot structure reaches wavelengths of "
+                        f"{wave:.4g}; the finest resolvable wavelength is ≈ 2–4 sampling "
+                        f"intervals), or more sites over the same extent")
             out.append(f"To detect {label} with power ≥ {target:g}: none of the candidates "
                        f"(best {top['layout']!r}, power {top['power']:.2f}); consider {hint}.")
     if not out:

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import hashlib
+import inspect
 import json
 import os
 from collections.abc import Callable
@@ -127,17 +128,23 @@ def load_pilot(folder: str | os.PathLike, *,
     p = record["parameters"]
     survey = read_survey(files["sites"], files["species"], files.get("environment"),
                          **{k: v for k, v in _read_options(p).items() if v is not None})
-    single = p.get("spatial_weighting") == "single"
-    result = analyse(survey, transformation=p["transformation"],
-                     spatial_weighting=p["spatial_weighting"],
-                     schemes=p["schemes"] if single or p.get("schemes") else None,
-                     alpha=p["alpha"], n_permutations=p["n_permutations"], seed=p["seed"],
-                     scale_breaks=p.get("scale_breaks"), trend=p["trend"], progress=progress)
+    # every recorded parameter that analyse() takes (where the work runs is not recorded as
+    # a choice: engine and scheduler keep their defaults)
+    accepted = set(inspect.signature(analyse).parameters) - {"survey", "engine", "scheduler",
+                                                             "progress"}
+    missing = sorted({"transformation", "alpha", "n_permutations", "seed"} - set(p))
+    if missing:
+        raise DesignError(f"the manifest of {str(folder)!r} does not record {missing}; the "
+                          "pilot cannot be rebuilt as it ran")
+    result = analyse(survey, progress=progress,
+                     **{k: v for k, v in p.items() if k in accepted})
     summary = folder / "summary.json"
     if summary.is_file() and result.fractions is not None:
         recorded = json.loads(summary.read_text(encoding="utf-8")).get("fractions") or {}
         if any(abs(recorded.get(k, v) - v) > 1e-6 for k, v in result.fractions.items()):
             object.__setattr__(result, "notes", result.notes + (
                 "The rebuilt pilot's fractions differ from the run folder's summary.json "
-                "(library versions changed?); the design uses the rebuilt pilot.",))
+                "(the analysis code changed since the run?); the design uses the rebuilt "
+                "pilot: " + ", ".join(f"{k} {recorded.get(k, float('nan')):.4f} → {v:.4f}"
+                                      for k, v in result.fractions.items()) + ".",))
     return result

@@ -93,6 +93,16 @@ class TestSpectralCoverage:
         finest = cov.layouts["finest_scale"]
         for name in counts.index:
             assert (counts.loc[name, "fine"] == 0) == (finest[name] > 30.0)
+        # Nyquist-type bounds [practice]: the finest resolvable wavelength is 2–4 sampling
+        # intervals, so a class entirely below 2 intervals has no vector and a class reaching
+        # above 4 intervals (within the extent) keeps some
+        spacing = {f"every {k}": 10.0 * k for k in (1, 2, 3, 4)}
+        for row in cov.classes.itertuples():
+            s = spacing[row.layout]
+            if row.upper < 2 * s:
+                assert row.layout_vectors == 0, row
+            if row.upper > 4 * s and row.lower < cov.layouts.loc[row.layout, "broadest_scale"]:
+                assert row.layout_vectors > 0, row
         status = cov.classes.set_index(["layout", "scale_class"])["status"]
         assert status[("every 2", "fine")] == "not resolved"
         assert status[("every 1", "broad")] == "resolved"
@@ -133,6 +143,11 @@ class TestEvaluateDesign:
         assert ev.power["power"].between(0, 1).all()
         se = np.sqrt(ev.power["power"] * (1 - ev.power["power"]) / 3)
         assert np.allclose(ev.power["mc_se"], se)
+        # Wilson score interval (Wilson 1927), statsmodels as the oracle
+        from statsmodels.stats.proportion import proportion_confint
+
+        lo, hi = proportion_confint(np.round(ev.power["power"] * 3), 3, method="wilson")
+        assert np.allclose(ev.power["ci_low"], lo) and np.allclose(ev.power["ci_high"], hi)
         # the partition of every simulated table sums to 1 (Borcard et al. 1992)
         est = ev.simulations[[f"estimate_{f}" for f in ("environment_only", "shared",
                                                         "space_only", "unexplained")]]

@@ -9,7 +9,8 @@ import pytest
 from scipy.spatial.distance import cdist
 
 from spatial_ev.analysis import analyse
-from spatial_ev.design_model import _layout_model, _pilot_model, environment_at
+from spatial_ev.design_model import (_LayoutModel, _layout_model, _owners, _pilot_model,
+                                     environment_at)
 from spatial_ev.design import layout_basis
 from spatial_ev.errors import InputError
 from spatial_ev.layouts import CandidateLayout
@@ -111,3 +112,20 @@ class TestPilotModel:
         n, m = X.shape[0], X.shape[1] - 1
         assert np.allclose(model["residuals"],
                            (Y - X @ coef) * np.sqrt((n - 1) / (n - 1 - m)), atol=1e-10)
+
+
+class TestOwners:
+    def test_vectors_go_to_the_structure_they_carry(self):
+        # a vector aligned with one class's structure is attributed to it, whatever its
+        # nominal scale (orthonormal columns from numpy's QR)
+        rng = np.random.default_rng(20261202)
+        q, _ = np.linalg.qr(rng.normal(size=(40, 3)) - 0.0)
+        q -= q.mean(axis=0)
+        q, _ = np.linalg.qr(q)
+        load = rng.normal(size=(1, 5))
+        parts = {"broad": np.outer(q[:, 0], load[0]), "fine": np.outer(q[:, 2], load[0])}
+        vec = pd.DataFrame(q, columns=["sv001", "sv002", "sv003"])
+        lay = _LayoutModel("x", np.zeros((40, 5)), None, None, vec, pd.Series([3.0, 2, 1]),
+                           None, None, parts)
+        assert _owners(lay, vec, ("sv003", "sv001")) == ["fine", "broad"]
+        assert _owners(lay, vec, ()) == []

@@ -321,6 +321,9 @@ def _html_table(frame: pd.DataFrame) -> str:
         if pd.api.types.is_float_dtype(out[c]):
             out[c] = out[c].map(lambda v: "–" if v is None or not np.isfinite(v)
                                 else f"{v:.4g}")
+        elif out[c].dtype == object:
+            out[c] = out[c].map(lambda v: "–" if v is None or (isinstance(v, float)
+                                                               and not np.isfinite(v)) else v)
     return out.to_html(index=False, border=0, na_rep="–", escape=True)
 
 

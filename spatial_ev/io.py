@@ -14,6 +14,7 @@ import codecs
 import io as _stdio
 import os
 import re
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -31,6 +32,7 @@ _MISSING = {"", "-", "na", "nan", "n/a", "null", "none", "#n/a"}
 _NA_TOKENS = sorted({t for m in _MISSING for t in (m, m.upper(), m.capitalize())} | {"NaN"})
 _DECIMAL_COMMA = re.compile(r"^[+-]?\d*,\d+(?:[eE][+-]?\d+)?$")
 _THOUSANDS = re.compile(r"^[+-]?\d{1,3}(?:[,.' ]\d{3})+(?:[.,]\d+)?$")
+_DMS = re.compile(r"\d\s*[°º]|\d\s*['′]\s*\d+(?:[.,]\d+)?\s*[\"″]")
 _DECIMAL_POINT = re.compile(r"^[+-]?\d*\.\d+(?:[eE][+-]?\d+)?$")
 
 
@@ -86,8 +88,9 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     Without ``delimiter`` each file's delimiter is taken from its header line: ``,`` (tab for
     ``.tsv``) unless the header holds none of it but ``;``, tab or ``|``. A ``decimal=","``
     does not apply to a comma-delimited file (its numbers cannot hold unquoted commas).
-    Text is UTF-8 (with or without a byte-order mark; UTF-16 with a mark) unless
-    ``encoding`` names another codec (e.g. ``"cp1252"`` for older spreadsheet exports).
+    Text is UTF-8 (with or without a byte-order mark) or UTF-16 with a mark; ``encoding``
+    names the codec of a file that is neither (e.g. ``"cp1252"`` for older spreadsheet
+    exports, ``"utf-16-le"`` without a mark), so UTF-8 files beside it are still read as such.
 
     Examples
     --------
@@ -122,10 +125,14 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
                              f"{delimiter!r}, but its header contains {others[0]!r}; pass "
                              f"delimiter={others[0]!r} (command line: --delimiter '{shown}'), or "
                              f"leave the delimiter out to detect it in each file's header")
-    if header[0] == "":
+    # an unnamed first column holds row names (R) or an index (pandas): the site ids, unless
+    # the id column is named elsewhere in the header, when it must be a mere row counter
+    counter_column = header[0] == "" and (id_column or "site") in header[1:]
+    if header[0] == "" and not counter_column:
         header[0] = "site"
     names = [f"c{i}" for i in range(len(header))]
-    id_at = header.index(id_column) if id_column in header else 0
+    key = id_column if id_column in header else ("site" if counter_column else None)
+    id_at = header.index(key) if key is not None else 0
     body = _parse(text, p, role, delimiter, header=0, names=names, index_col=False,
                   dtype={names[id_at]: str}, keep_default_na=False, na_values=_NA_TOKENS,
                   decimal=decimal, skip_blank_lines=False)
@@ -133,7 +140,11 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     lines = np.arange(len(body)) + 2  # file line of each record (header on line 1)
     filled = body.notna().any(axis=1).to_numpy()
     body, lines = body[filled], lines[filled]
-    blank_unnamed = [n for n, h in zip(names, header) if h == "" and body[n].isna().all()]
+    if counter_column:
+        _check_row_counter(body[names[0]], p, role, id_column or "site")
+        header[0] = ""  # dropped below with the other unnamed columns
+    blank_unnamed = [n for i, (n, h) in enumerate(zip(names, header))
+                     if h == "" and (body[n].isna().all() or (counter_column and i == 0))]
     if blank_unnamed:
         keep = [i for i, n in enumerate(names) if n not in blank_unnamed]
         body = body.drop(columns=blank_unnamed)
@@ -166,9 +177,27 @@ def _sniff_delimiter(first_line: str, path: Path) -> str:
     return best if counts[best] > 0 else default
 
 
+def _check_row_counter(values: pd.Series, path: Path, role: str, id_name: str) -> None:
+    """An unnamed first column beside a named id column must be a row counter (0.. or 1..)."""
+    text = values.astype(str).str.strip().tolist()
+    n = len(text)
+    if text in ([str(i) for i in range(n)], [str(i) for i in range(1, n + 1)]):
+        return
+    shown = ", ".join(repr(t) for t in text[:3])
+    raise InputError(f"{role} file {str(path)!r}: the first column has no name and holds "
+                     f"{shown}, ... while the site ids are in column {id_name!r}; name the "
+                     f"first column in the header, or remove it")
+
+
 def _parse(text: str, path: Path, role: str, delimiter: str, **kwargs) -> pd.DataFrame:
     try:
-        return pd.read_csv(_stdio.StringIO(text), sep=delimiter, engine="c", **kwargs)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", pd.errors.ParserWarning)
+            return pd.read_csv(_stdio.StringIO(text), sep=delimiter, engine="c", **kwargs)
+    except pd.errors.ParserWarning:  # more fields in the rows than in the header
+        raise InputError(f"{role} file {str(path)!r}: the rows have more fields than the header "
+                         f"line with delimiter {delimiter!r}; remove any title or comment "
+                         f"lines above the header, and name every column") from None
     except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
         msg = " ".join(str(exc).split())
         raise InputError(f"{role} file {str(path)!r} cannot be read as CSV with delimiter "
@@ -275,6 +304,9 @@ def numeric_hint(bad_values: list[str], decimal: str) -> str:
     if decimal == "." and any(_DECIMAL_COMMA.match(v) for v in bad_values):
         return ("; the file seems to use a decimal comma: pass decimal=',' "
                 "(command line: --decimal ,), or remove thousands separators")
+    if any(_DMS.search(v) for v in bad_values):
+        return ("; the value looks like degrees, minutes and seconds: convert the coordinates "
+                "to decimal degrees (59°54'30\"N = 59.908333)")
     if any(_THOUSANDS.match(v.strip()) for v in bad_values):
         return ("; the value seems to contain thousands separators: remove them (spreadsheets: "
                 "format the cells as plain numbers before exporting)")
@@ -299,27 +331,47 @@ def _check_delimiter(delimiter: str | None, decimal: str, path: Path) -> str | N
 
 
 def _decode(raw: bytes, path: Path, role: str, encoding: str | None = None) -> str:
+    """Text of a CSV file: UTF-16 with a byte-order mark, else UTF-8 (with or without a mark),
+    else -- only then -- the ``encoding`` the user named. Files of one survey often come from
+    different programs, so one option must not force a UTF-8 file into another codec; a
+    Latin-1 or cp1252 file with accents is practically never valid UTF-8."""
     if encoding is not None:
         try:
-            return raw.decode(encoding)
+            codecs.lookup(encoding)
         except LookupError:
             raise InputError(f"`encoding` {encoding!r} is not a known text encoding; use e.g. "
                              f"'utf-8', 'cp1252' or 'latin-1'") from None
-        except UnicodeDecodeError as exc:
-            line = raw[:exc.start].count(b"\n") + 1
-            raise InputError(f"{role} file {str(path)!r} is not valid {encoding} text (byte "
-                             f"{raw[exc.start]:#04x} on line {line}); check the encoding "
-                             f"option") from None
     if raw.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
         return raw.decode("utf-16")
     try:
-        return raw.decode("utf-8-sig")
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        if encoding is None:
+            line = raw[:exc.start].count(b"\n") + 1
+            raise InputError(f"{role} file {str(path)!r} is not UTF-8 text (byte "
+                             f"{raw[exc.start]:#04x} on line {line}); save it as UTF-8 "
+                             f"(spreadsheets: 'CSV UTF-8') or name its encoding, e.g. "
+                             f"encoding='cp1252' (--encoding cp1252)") from None
+    else:
+        if encoding is None or "\x00" not in text:
+            return _no_nul(text, path, role, "UTF-8")
+    try:
+        return _no_nul(raw.decode(encoding), path, role, encoding)
     except UnicodeDecodeError as exc:
         line = raw[:exc.start].count(b"\n") + 1
-        raise InputError(f"{role} file {str(path)!r} is not UTF-8 text (byte "
-                         f"{raw[exc.start]:#04x} on line {line}); save it as UTF-8 (spreadsheets: "
-                         f"'CSV UTF-8') or name its encoding, e.g. encoding='cp1252' "
-                         f"(--encoding cp1252)") from None
+        raise InputError(f"{role} file {str(path)!r} is neither UTF-8 nor valid {encoding} text "
+                         f"(byte {raw[exc.start]:#04x} on line {line}); check the encoding "
+                         f"option") from None
+
+
+def _no_nul(text: str, path: Path, role: str, codec: str) -> str:
+    if "\x00" in text:
+        line = text[:text.index("\x00")].count("\n") + 1
+        raise InputError(f"{role} file {str(path)!r} holds NUL characters (line {line}) as read "
+                         f"with {codec!r}: it is probably UTF-16 without a byte-order mark "
+                         f"(pass encoding='utf-16-le', --encoding utf-16-le), or not a text "
+                         f"file; save it as CSV UTF-8")
+    return text
 
 
 def _one_line(exc: BaseException) -> str:

@@ -9,7 +9,7 @@ import pytest
 import shapely
 
 from spatial_ev import errors
-from spatial_ev.io import file_format, parse_numeric, read_csv_table, read_vector
+from spatial_ev.io import file_format, numeric_hint, parse_numeric, read_csv_table, read_vector
 
 
 class TestFileFormat:
@@ -65,6 +65,37 @@ class TestReadCsvTable:
     def test_row_names_export_gets_site_column(self, tmp_path):
         assert list(self._read(tmp_path, ",A\ns1,1\n").columns) == ["site", "A"]
 
+    def test_row_counter_beside_named_site_column_dropped(self, tmp_path):
+        for first in (0, 1):  # pandas index (0, 1, ...) or R row names ("1", "2", ...)
+            t = self._read(tmp_path, f',site,A\n"{first}",s1,1\n"{first + 1}",s2,2\n')
+            assert list(t.columns) == ["site", "A"] and t["site"].tolist() == ["s1", "s2"]
+        t = self._read(tmp_path, ",core,A\n0,s1,1\n1,s2,2\n", id_column="core")
+        assert list(t.columns) == ["core", "A"]
+        with pytest.raises(errors.InputError, match=r"first column has no name and holds 'p', "
+                                                    r"'q', \.\.\. while the site ids are in "
+                                                    r"column 'site'"):
+            self._read(tmp_path, ",site,A\np,s1,1\nq,s2,2\n")
+
+    def test_title_line_above_header(self, tmp_path):
+        with pytest.raises(errors.InputError, match="more fields than the header line"):
+            self._read(tmp_path, "# field tablet export\nsite,A\ns1,1\n")
+
+    def test_encoding_option_only_for_files_that_are_not_utf8(self, tmp_path):
+        t = self._read(tmp_path, "site,A\ncafé,1\n".encode("utf-8"), encoding="latin-1")
+        assert t["site"].tolist() == ["café"]
+        t = self._read(tmp_path, "site,Å\ns1,1\n".encode("utf-16"), encoding="latin-1")
+        assert list(t.columns) == ["site", "Å"]
+        with pytest.raises(errors.InputError, match=r"neither UTF-8 nor valid ascii text "
+                                                    r"\(byte 0xe9 on line 2\)"):
+            self._read(tmp_path, "site,A\ncaf\xe9,1\n".encode("latin-1"), encoding="ascii")
+
+    def test_utf16_without_byte_order_mark(self, tmp_path):
+        raw = "site,A\ns1,1\n".encode("utf-16-le")
+        with pytest.raises(errors.InputError, match=r"NUL characters \(line 1\).*"
+                                                    r"--encoding utf-16-le"):
+            self._read(tmp_path, raw)
+        assert self._read(tmp_path, raw, encoding="utf-16-le")["A"].tolist() == [1]
+
     def test_unnamed_and_duplicated_columns(self, tmp_path):
         with pytest.raises(errors.InputError, match=r"column\(s\) \[3\] have no name"):
             self._read(tmp_path, "site,A,,B\ns1,1,2,3\n")
@@ -109,6 +140,14 @@ class TestParseNumeric:
     def test_decimal_comma(self):
         nums, missing, bad = parse_numeric(pd.Series(["1,5", "2", "1.5"]), decimal=",")
         assert nums[0] == 1.5 and nums[1] == 2.0 and bad.tolist() == [False, False, True]
+
+    def test_hints(self):
+        assert "thousands separators" in numeric_hint(["1,234.5"], ".")
+        assert "thousands separators" in numeric_hint(["12'345"], ".")
+        assert "degrees, minutes and seconds" in numeric_hint(["59°54'30\"N"], ".")
+        assert numeric_hint(["abc"], ".") == ""
+        nums, missing, bad = parse_numeric(pd.Series(["-", "3"]))
+        assert missing.tolist() == [True, False] and not bad.any()
 
     def test_numeric_dtype_passes_through(self):
         nums, missing, bad = parse_numeric(pd.Series([1.0, np.nan]))

@@ -19,6 +19,10 @@ from .io import numeric_hint, parse_numeric
 _INTEGRAL = re.compile(r"[+-]?\d+(?:\.0*)?")
 _CANONICAL_INT = re.compile(r"[+-]?(?:0|[1-9]\d*)(?:\.0*)?")
 MAX_LISTED = 10
+# recognised coordinate column pairs (x, y), lower case
+COORD_NAMES = [("x", "y"), ("easting", "northing"), ("east", "north"), ("utm_x", "utm_y"),
+               ("utm_e", "utm_n"), ("x_coord", "y_coord"), ("xcoord", "ycoord"),
+               ("lon", "lat"), ("long", "lat"), ("lng", "lat"), ("longitude", "latitude")]
 
 
 @dataclass
@@ -170,6 +174,13 @@ def species_matrix(table: RawTable, order: np.ndarray, index: pd.Index,
     n, k = data.shape
     if k == 0:
         raise InputError(f"species {table.source} has no species columns besides the site ids")
+    lower = {str(c).strip().lower(): c for c in data.columns}
+    pair = next(((lower[a], lower[b]) for a, b in COORD_NAMES if a in lower and b in lower), None)
+    if pair is not None:
+        raise InputError(f"species {table.source} has coordinate columns {pair[0]!r}/{pair[1]!r}; "
+                         f"is it the site table? The species table holds site ids and one "
+                         f"column per species (command line: --sites for the site table, "
+                         f"--species for the species table)")
     cells = pd.Series(data.to_numpy(dtype=object).ravel(order="F"), dtype=object)
     if all(pd.api.types.is_numeric_dtype(t) for t in data.dtypes):
         cells = cells.astype(np.float64)

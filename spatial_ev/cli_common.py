@@ -77,11 +77,12 @@ def add_survey_options(parser: argparse.ArgumentParser, *, species: str = "optio
     fmt = parser.add_argument_group("CSV format and data cleaning")
     fmt.add_argument("--delimiter", metavar="C", default=None,
                      help="CSV field separator of every CSV file, e.g. ';' or 'tab' "
-                          "(default: ',', tab for .tsv)")
+                          "(default: detected in each file's header line)")
     fmt.add_argument("--decimal", metavar="C", default=".", choices=(".", ","),
                      help="decimal mark of numbers in the CSV files, '.' (default) or ','")
     fmt.add_argument("--encoding", metavar="NAME", default=None,
-                     help="text encoding of the CSV files (default: UTF-8; e.g. cp1252)")
+                     help="text encoding of CSV files that are not UTF-8, e.g. cp1252 "
+                          "(UTF-8 files and UTF-16 files with a byte-order mark are recognised)")
     fmt.add_argument("--incomplete-sites", choices=("error", "drop"), default="error",
                      help="sites with missing environmental values: stop with an error "
                           "(default) or drop them with a warning listing them")

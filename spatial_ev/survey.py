@@ -27,9 +27,7 @@ from .io import file_format, numeric_hint, parse_numeric, read_csv_table, read_v
 
 __all__ = ["Survey", "read_survey"]
 
-_COORD_NAMES = [("x", "y"), ("easting", "northing"), ("east", "north"), ("utm_x", "utm_y"),
-                ("utm_e", "utm_n"), ("x_coord", "y_coord"), ("xcoord", "ycoord"),
-                ("lon", "lat"), ("long", "lat"), ("lng", "lat"), ("longitude", "latitude")]
+_COORD_NAMES = T.COORD_NAMES
 
 
 @dataclass(frozen=True)
@@ -304,11 +302,14 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
     local_unit : str, optional
         Declare CSV coordinates local planar (no CRS) in this unit ("metre", "foot", ...).
     delimiter : str, optional
-        CSV field separator; default ``","`` (tab for ``.tsv``).
+        CSV field separator of every CSV file; default: detected per file from its header
+        line (``","``, tab for ``.tsv``, unless the header holds only ``";"``, tab or ``"|"``).
     decimal : {".", ","}
-        Decimal mark of numbers in the CSV files.
+        Decimal mark of numbers in the CSV files (a comma-delimited file always uses ``"."``).
     encoding : str, optional
-        Text encoding of the CSV files; default UTF-8 (byte-order marks recognised).
+        Text encoding of CSV files that are not UTF-8 (e.g. ``"cp1252"``); UTF-8 files (with
+        or without a byte-order mark) and UTF-16 files with a mark are recognised whatever
+        this option says.
     layer : str or int, optional
         Layer of a multi-layer GIS site file.
     incomplete_sites : {"error", "drop"}
@@ -447,8 +448,10 @@ def _points_from_columns(table: T.RawTable, x, y, opts: dict) -> None:
             i = int(np.flatnonzero(mask)[0])
             raw = table.data[name].astype(str).to_numpy()
             hint = numeric_hint(raw[mask].tolist(), opts["decimal"])
+            site = table.ids.iloc[i]
+            site = "no site id" if pd.isna(site) or not str(site).strip() else f"site {site!r}"
             raise InputError(f"sites {table.source}: coordinate column {name!r} "
-                             f"{table.where(i)} (site {table.ids.iloc[i]!r}) holds "
+                             f"{table.where(i)} ({site}) holds "
                              f"{raw[i]!r}, not a finite number{hint}; every site needs both "
                              f"coordinates")
         values.append(numbers)

@@ -238,7 +238,7 @@ def _check_pilot_layouts(pilot, layouts, area, seed) -> tuple[Any, list[Candidat
     for item in layouts:
         if isinstance(item, str):
             item = build_layout(item, pilot.survey.coords, area=area, crs=pilot.survey.crs,
-                                seed=seed)
+                                distance_unit=pilot.survey.distance_unit, seed=seed)
         elif not isinstance(item, CandidateLayout):
             raise InputError(f"`layouts` entries must be CandidateLayout objects or spec "
                              f"strings such as 'grid:spacing=30'; got {type(item).__name__}")

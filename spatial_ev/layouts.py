@@ -338,12 +338,14 @@ def augmented_layout(pilot_coords: Any, *, add: int, area: Any = None,
                            f"largest gaps (largest remaining gap {gap.max():.4g} map units)")
 
 
-def file_layout(path: str, *, crs: Any = None, name: str | None = None,
-                **read_options: Any) -> CandidateLayout:
+def file_layout(path: str, *, crs: Any = None, distance_unit: str | None = None,
+                name: str | None = None, **read_options: Any) -> CandidateLayout:
     """Candidate points from a CSV or GIS file, read like a survey's site table.
 
-    The points are transformed to ``crs`` (the pilot's working CRS) when the file has its own
-    CRS. Extra keyword arguments go to :func:`spatial_ev.survey.read_survey`.
+    A GIS file with its own CRS is transformed to ``crs`` (the pilot's working CRS); CSV
+    coordinates are taken to be in ``crs`` already, or, for a pilot in local planar
+    coordinates (``crs=None``), in ``distance_unit``. A GIS file must declare its CRS. Extra keyword
+    arguments go to :func:`spatial_ev.survey.read_survey` (e.g. ``x=``, ``y=``, ``site_id=``).
 
     Examples
     --------
@@ -351,6 +353,14 @@ def file_layout(path: str, *, crs: Any = None, name: str | None = None,
     """
     from .survey import read_survey
 
+    from .io import file_format
+
+    csv = file_format(path, role="candidate points") == "csv"
+    if csv and "crs" not in read_options and "local_unit" not in read_options:
+        if crs is not None:
+            read_options["crs"] = crs
+        elif distance_unit is not None:
+            read_options["local_unit"] = distance_unit
     with warnings.catch_warnings():
         if crs is not None:  # reprojected to the pilot CRS below; the local projection is moot
             warnings.simplefilter("ignore", GeographicCoordinatesWarning)
@@ -457,7 +467,8 @@ def parse_layout_spec(text: str) -> LayoutSpec:
 
 
 def build_layout(spec: str | LayoutSpec, pilot_coords: Any, *, area: Any = None,
-                 crs: Any = None, seed: Any = None, **read_options: Any) -> CandidateLayout:
+                 crs: Any = None, distance_unit: str | None = None, seed: Any = None,
+                 **read_options: Any) -> CandidateLayout:
     """Build the layout a spec describes, around the pilot sites.
 
     Parameters
@@ -467,8 +478,8 @@ def build_layout(spec: str | LayoutSpec, pilot_coords: Any, *, area: Any = None,
     pilot_coords : DataFrame[x, y] (pilot site ids as index) or (n, 2) array
     area : shapely Polygon, optional
         Study area (default: the pilot's convex hull) for grids and augmentation.
-    crs : pyproj.CRS, optional
-        The pilot's working CRS (for ``file:`` layouts).
+    crs, distance_unit : optional
+        The pilot's working CRS and map unit (for ``file:`` layouts).
     seed : int or Generator, optional
         For ``thin:fraction=`` without its own ``seed=``.
 
@@ -494,4 +505,5 @@ def build_layout(spec: str | LayoutSpec, pilot_coords: Any, *, area: Any = None,
                               seed=v.get("seed", seed), name=name)
     if spec.kind == "augment":
         return augmented_layout(pilot_coords, add=v["add"], area=area, name=name)
-    return file_layout(v["path"], crs=crs, name=name, **read_options)
+    return file_layout(v["path"], crs=crs, distance_unit=distance_unit, name=name,
+                       **read_options)

@@ -217,9 +217,12 @@ class TestFileLayout:
                       "x": [452300.0, 452400, 452500, 452600, 452700],
                       "y": [5612800.0, 5612900, 5613000, 5613100, 5613200]}).to_csv(path,
                                                                                    index=False)
-        lay = file_layout(str(path), crs=None, local_unit="metre")
+        lay = file_layout(str(path), crs=None, distance_unit="metre")
         assert lay.coords.index.tolist() == ["c1", "c2", "c3", "c4", "c5"]
         assert lay.coords["x"].iloc[2] == 452500.0
+        # a CSV for a pilot in EPSG:32630 is read in that CRS: coordinates unchanged
+        utm = file_layout(str(path), crs=pyproj.CRS.from_epsg(32630))
+        assert np.array_equal(utm.coords.to_numpy(), lay.coords.to_numpy())
 
     def test_gpkg_reprojected(self, tmp_path):
         # pyproj as the oracle of the transformation to the pilot's CRS

@@ -103,7 +103,7 @@ class TestManifest:
         assert len(CASES) >= 40 and len(ERRORS) >= 40
         assert len(set(_ids(CASES))) == len(CASES), "case ids must be unique"
         allowed = {"id", "what", "sites", "species", "environment", "args", "error",
-                   "warnings", "match", "command", "subprocess"}
+                   "warnings", "match", "command", "subprocess", "full_run"}
         for case in CASES:
             assert set(case) <= allowed, f"{case['id']}: unknown keys {set(case) - allowed}"
             assert case["match"] and case["what"], case["id"]
@@ -197,6 +197,43 @@ class TestCommandLine:
                   for line in err.strip().splitlines() if line}
         assert warned == set(case.get("warnings", [])), err
         check_fragments(out + err, case)
+
+
+SITE_ERRORS = [c for c in READ_ERRORS if "species" not in c and "environment" not in c]
+# Known defect (spatial_ev/analysis.py, Analysis.environment_table): when forward selection
+# keeps no environmental variable, `steps[steps["added"]]` indexes columns with an empty object
+# Series and raises KeyError('variable'), so `run` ends with a traceback. These small surveys
+# select nothing; the spatial-only case shows the rest of the chain works. Remove the marker
+# when the defect is fixed (strict: an unexpected pass fails).
+_NO_ENV_SELECTED = pytest.mark.xfail(raises=KeyError, strict=True,
+                                     reason="Analysis.environment_table with nothing selected")
+FULL_RUNS = [pytest.param(c, id=c["id"], marks=[_NO_ENV_SELECTED]
+                          if c.get("environment") != "none" else [])
+             for c in WORKING if c.get("full_run")]
+
+
+class TestOtherCommands:
+    @pytest.mark.parametrize("case", SITE_ERRORS, ids=_ids(SITE_ERRORS))
+    def test_eigen_exits_2_and_writes_nothing(self, case, in_corpus, tmp_path, capsys):
+        args = [a for a in file_args(case)]
+        for role in ("--species", "--environment"):  # `eigen` reads the site table only
+            at = args.index(role)
+            del args[at:at + 2]
+        out_dir = tmp_path / "basis"
+        assert main(["eigen", *args, "--out", str(out_dir)]) == 2
+        check_fragments(one_error_line(capsys.readouterr().err, "eigen"), case)
+        assert list(tmp_path.iterdir()) == []
+
+    @pytest.mark.parametrize("case", FULL_RUNS)
+    def test_whole_analysis_runs(self, case, in_corpus, tmp_path, capsys):
+        import json
+
+        out_dir = tmp_path / "run"
+        assert main(["run", *file_args(case), "--out", str(out_dir), *RUN_FAST]) == 0
+        summary = json.loads((out_dir / "summary.json").read_text(encoding="utf-8"))
+        assert summary["n_sites"] == 12 and summary["n_species"] == 5
+        assert summary["seed"] == 20261202 and summary["permutations"] == 19
+        assert [p.name for p in tmp_path.iterdir()] == ["run"]
 
 
 SUBPROCESS = [c for c in ERRORS if c.get("subprocess")]

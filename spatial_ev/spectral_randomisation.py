@@ -69,7 +69,7 @@ import pandas as pd
 from scipy import sparse
 
 from ._validation import as_matrix, check_int, check_option, check_rng
-from .canonical import _check_explanatory, _check_response, _column_basis, adjusted_r2
+from .canonical import _check_explanatory, _check_response, _column_basis, explained_fraction
 from .engines import ENGINES, run_tasks
 from .errors import InputError
 from .permutation import BLOCK_SIZE, _p_value, _reduce
@@ -337,11 +337,17 @@ def spectral_randomisations(values: Any, spatial: Any, *, n_randomisations: int 
 
 @dataclass(frozen=True)
 class _Kernel:
-    """Model sums of squares of every sign vector in a range; picklable for dask."""
+    """Model sums of squares of every sign vector in a range; picklable for dask.
 
-    env_coef: np.ndarray     # (n − 1, r): Uᵀ Q_X, orthonormal columns
-    resp_coef: np.ndarray    # (n − 1, p'): Uᵀ Y (centred, possibly SVD-reduced)
-    products: np.ndarray | None   # (n − 1, r·p'): A_k ⊗ B_k, when small enough
+    For signs s: C = Gᵀ diag(s) B (cross products of the randomised environment with the
+    response) and, with a conditioning table, K = Ωᵀ diag(s) G (its overlap with the
+    conditioning basis); SS = tr(Cᵀ (I − KᵀK)⁻¹ C) [derived].
+    """
+
+    env_coef: np.ndarray     # G (n − 1, r): Uᵀ Q_X, orthonormal columns
+    resp_coef: np.ndarray    # B (n − 1, p'): Uᵀ Y (centred, after W, possibly SVD-reduced)
+    cond_coef: np.ndarray    # Ω (n − 1, q): Uᵀ Q_W (q = 0 without conditioning)
+    products: np.ndarray | None   # (n − 1, r·p' + q·r): G_k ⊗ B_k and Ω_k ⊗ G_k
     ss_total: float
     df_model: int
     df_residual: int
@@ -350,19 +356,29 @@ class _Kernel:
     def __call__(self, task: tuple[int, int]) -> np.ndarray:
         start, stop = task
         s = self.signs.rows(start, stop)
-        if self.products is not None:
-            c = s @ self.products                                  # (m, r·p')
-            ss = np.einsum("ij,ij->i", c, c)
-        else:
-            k, r = self.env_coef.shape
-            step = max(1, _BATCH_BYTES // (8 * k * r))
-            ss = np.concatenate([self._batch(s[i:i + step]) for i in range(0, len(s), step)])
+        k, r = self.env_coef.shape
+        step = len(s) if self.products is not None else \
+            max(1, _BATCH_BYTES // (8 * k * (r + self.cond_coef.shape[1])))
+        ss = np.concatenate([self.sums_of_squares(s[i:i + step])
+                             for i in range(0, len(s), step)])
         return _pseudo_f(ss, self.ss_total, self.df_model, self.df_residual)
 
-    def _batch(self, s: np.ndarray) -> np.ndarray:
-        flipped = s[:, :, None] * self.env_coef[None]              # (m, n − 1, r)
-        c = np.matmul(flipped.transpose(0, 2, 1), self.resp_coef)  # (m, r, p')
-        return np.einsum("mrp,mrp->m", c, c)
+    def sums_of_squares(self, s: np.ndarray) -> np.ndarray:
+        """Model sum of squares of each sign vector (rows of ``s``)."""
+        m, (k, r), p, q = len(s), self.env_coef.shape, self.resp_coef.shape[1], \
+            self.cond_coef.shape[1]
+        if self.products is not None:
+            both = s @ self.products                                   # one product
+            c, kk = both[:, :r * p].reshape(m, r, p), both[:, r * p:].reshape(m, q, r)
+        else:
+            flipped = s[:, :, None] * self.env_coef[None]              # (m, n − 1, r)
+            c = np.matmul(flipped.transpose(0, 2, 1), self.resp_coef)  # (m, r, p')
+            kk = np.matmul(self.cond_coef.T, flipped)                  # (m, q, r)
+        if q == 0:
+            return np.einsum("mrp,mrp->m", c, c)
+        gram = np.eye(r) - np.matmul(kk.transpose(0, 2, 1), kk)        # (m, r, r)
+        solved = np.matmul(np.linalg.pinv(gram, rcond=1e-10, hermitian=True), c)
+        return np.einsum("mrp,mrp->m", c, solved)
 
 
 def _pseudo_f(ss_model, ss_total, df_model, df_residual):
@@ -386,9 +402,11 @@ class SpectralRandomisationTest:
         Pseudo-F of every randomised environment, in draw order.
     n_randomisations : int
     r2, r2_adj : float
-        R² and adjusted R² of the environment (fraction [a + b] of a variation partition).
+        R² and adjusted R² of the environment: fraction [a + b] of a variation partition, or
+        [a] (given the conditioning table; Peres-Neto et al. 2006 difference).
     df_model, df_residual : int
-        Rank of the environmental table and ``n - 1 - rank``.
+        Rank of the environmental table (after the conditioning table) and
+        ``n - 1 - rank(W) - rank``.
     n_vectors : int
         Size of the complete spatial basis (n − 1).
     environment_moran_i : pandas.Series
@@ -463,18 +481,24 @@ def _check_run(n_randomisations, chunk_size, engine, progress):
     return n_randomisations, chunk_size or _DEFAULT_CHUNK, engine
 
 
-def _check_test_data(Y, environment):
+def _check_test_data(Y, environment, conditioning):
     y, rows, _ = _check_response(Y)
     x, x_cols = _check_explanatory("environment", environment, y.shape[0], rows)
-    qx, _ = _column_basis(x)
     n = y.shape[0]
-    if qx.shape[1] == 0:
-        raise InputError("`environment` has no usable variation: every column is constant; "
+    qw = np.zeros((n, 0))
+    if conditioning is not None:
+        qw, _ = _column_basis(_check_explanatory("conditioning", conditioning, n, rows)[0])
+    qx, _ = _column_basis(x)
+    rank = _column_basis(x, qw)[0].shape[1]
+    if rank == 0:
+        what = "constant or explained by `conditioning`" if qw.shape[1] else "constant"
+        raise InputError(f"`environment` has no usable variation: every column is {what}; "
                          "pass variables that vary among sites")
-    if n - qx.shape[1] - 1 <= 0:
-        raise InputError(f"`environment` has {qx.shape[1]} independent columns for {n} sites, "
-                         f"which leaves no residual degrees of freedom; use fewer variables")
-    return y - y.mean(axis=0), x, x_cols, qx, rows
+    if n - qw.shape[1] - rank - 1 <= 0:
+        raise InputError(f"`environment` has {rank} independent columns (and `conditioning` "
+                         f"{qw.shape[1]}) for {n} sites, which leaves no residual degrees of "
+                         f"freedom; use fewer variables")
+    return y - y.mean(axis=0), x, x_cols, qx, qw, rank, rows
 
 
 def spectral_randomisation_test(
@@ -482,6 +506,7 @@ def spectral_randomisation_test(
     environment: Any,
     spatial: Any,
     *,
+    conditioning: Any = None,
     n_randomisations: int = 999,
     seed: None | int | np.random.Generator = None,
     chunk_size: int | None = None,
@@ -511,6 +536,10 @@ def spectral_randomisation_test(
         contributes its ``weights``; its vectors may be the positive ones only). Pass a
         :class:`CompleteBasis` from :func:`complete_spatial_basis` to reuse the
         eigendecomposition across tests.
+    conditioning : DataFrame or array, shape (n_sites, n_covariables), optional
+        Covariables W (e.g. selected spatial vectors): the statistic is then the partial
+        pseudo-F of the environment given W (fraction [a] of a variation partition) and
+        each randomised environment is refitted given W. W itself is not randomised.
     n_randomisations : int, keyword-only
         Number of randomised environments N (0: statistic only, p = NaN).
     seed : None, int or numpy Generator
@@ -547,31 +576,31 @@ def spectral_randomisation_test(
     """
     n_randomisations, chunk_size, engine = _check_run(n_randomisations, chunk_size, engine,
                                                       progress)
-    yc, x, x_cols, qx, rows = _check_test_data(Y, environment)
+    yc, x, x_cols, qx, qw, rank, rows = _check_test_data(Y, environment, conditioning)
     n = yc.shape[0]
     basis = _basis_for(spatial, n, rows, "Y")
     u = basis.vectors
-    response = _reduce(yc)
+    response = _reduce(yc - qw @ (qw.T @ yc))              # Y after W
     ss_total = float(np.einsum("ij,ij->", response, response))
     env_coef = np.ascontiguousarray(u.T @ qx)              # (n − 1, r)
     resp_coef = np.ascontiguousarray(u.T @ response)       # (n − 1, p')
-    r = qx.shape[1]
-    df_residual = n - 1 - r
-    cross = env_coef.T @ resp_coef
-    ss_model = float(np.einsum("ij,ij->", cross, cross))
-    observed = float(_pseudo_f(ss_model, ss_total, r, df_residual))
-    size = env_coef.shape[0] * r * resp_coef.shape[1]
+    cond_coef = np.ascontiguousarray(u.T @ qw)             # (n − 1, q)
+    k, r = env_coef.shape
+    df_residual = n - 1 - qw.shape[1] - rank
     products = None
-    if size <= _PRODUCT_ELEMENTS:
-        products = (env_coef[:, :, None] * resp_coef[:, None, :]).reshape(env_coef.shape[0], -1)
-    kernel = _Kernel(env_coef, resp_coef, products, ss_total, r, df_residual,
+    if k * r * (resp_coef.shape[1] + cond_coef.shape[1]) <= _PRODUCT_ELEMENTS:
+        products = np.hstack([(env_coef[:, :, None] * resp_coef[:, None, :]).reshape(k, -1),
+                              (cond_coef[:, :, None] * env_coef[:, None, :]).reshape(k, -1)])
+    kernel = _Kernel(env_coef, resp_coef, cond_coef, products, ss_total, rank, df_residual,
                      _signs(u.shape[1], seed))
+    ss_model = float(kernel.sums_of_squares(np.ones((1, k)))[0])
+    observed = float(_pseudo_f(ss_model, ss_total, rank, df_residual))
     ranges = [(a, min(a + chunk_size, n_randomisations))
               for a in range(0, n_randomisations, chunk_size)]
     parts = run_tasks(kernel, ranges, engine=engine, scheduler=scheduler, n_workers=n_workers,
                       progress=progress)
     null = np.concatenate(parts) if parts else np.zeros(0)
-    r2 = ss_model / ss_total
+    fraction = explained_fraction(yc, x, conditioning=qw if qw.shape[1] else None)
     xc = x - x.mean(axis=0)
     spread = np.einsum("ij,ij->j", xc, xc)
     moran = np.full(x.shape[1], np.nan)
@@ -580,7 +609,7 @@ def spectral_randomisation_test(
     moran[ok] = n / s0 * np.einsum("ij,ij->j", xc[:, ok], basis.weights @ xc[:, ok]) / spread[ok]
     return SpectralRandomisationTest(
         statistic=observed, p_value=_p_value(observed, null), null_distribution=null,
-        n_randomisations=n_randomisations, r2=float(r2), r2_adj=adjusted_r2(r2, n, r),
-        df_model=r, df_residual=df_residual, n_vectors=int(u.shape[1]),
+        n_randomisations=n_randomisations, r2=fraction.r2, r2_adj=fraction.r2_adj,
+        df_model=rank, df_residual=df_residual, n_vectors=int(u.shape[1]),
         environment_moran_i=pd.Series(moran, index=pd.Index(x_cols), name="moran_i"))
 

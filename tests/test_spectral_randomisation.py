@@ -156,6 +156,23 @@ class TestSpectralRandomisationTest:
         assert np.isnan(spectral_randomisation_test(self.y, self.env, self.basis,
                                                     n_randomisations=0).p_value)
 
+    def test_partial_test_refits_given_the_conditioning_table(self):
+        # with W: each null value is the partial pseudo-F of the randomised table given W
+        # (the statistic of the reduced-model permutation test, Freedman & Lane 1983)
+        w = self.basis.vectors.iloc[:, :3]
+        env = self.env.to_numpy() + 2.0 * w.to_numpy()[:, :1]     # correlated with W
+        test = spectral_randomisation_test(self.y, env, self.basis, conditioning=w,
+                                           n_randomisations=20, seed=86420)
+        copies = spectral_randomisations(env, self.basis, n_randomisations=20, seed=86420)
+        refits = [permutation_test(self.y, c, conditioning=w, n_permutations=0).statistic
+                  for c in copies]
+        assert np.allclose(test.null_distribution, refits, rtol=1e-9)
+        ordinary = permutation_test(self.y, env, conditioning=w, n_permutations=0)
+        assert test.statistic == pytest.approx(ordinary.statistic, rel=1e-12)
+        assert (test.r2, test.r2_adj, test.df_model) == pytest.approx(
+            explained_fraction(self.y, env, conditioning=w))
+        assert test.df_residual == 40 - 1 - 3 - 3
+
     def test_p_value_formula_and_detects_a_real_link(self):
         test = spectral_randomisation_test(self.y, self.env, self.basis, n_randomisations=199,
                                            seed=24680)
@@ -182,6 +199,13 @@ class TestSpectralRandomisationTest:
         other = spectral_randomisation_test(self.y, self.env, self.basis, **kw)
         assert other.p_value == ref.p_value
         assert np.allclose(other.null_distribution, ref.null_distribution, rtol=1e-12)
+        w = self.basis.vectors.iloc[:, :2]
+        partial = [spectral_randomisation_test(self.y, self.env, self.basis, conditioning=w,
+                                               **kw) for _ in range(2)]
+        monkeypatch.setattr(msr, "_PRODUCT_ELEMENTS", 2 ** 22)   # one-product path
+        direct = spectral_randomisation_test(self.y, self.env, self.basis, conditioning=w, **kw)
+        assert np.allclose(partial[0].null_distribution, direct.null_distribution, rtol=1e-10)
+        assert partial[0].p_value == partial[1].p_value == direct.p_value
 
     def test_blocks_of_signs_do_not_depend_on_the_range(self):
         signs = _signs(20, 8675309)
@@ -223,6 +247,12 @@ class TestSpectralRandomisationTest:
             spectral_randomisation_test(self.y, self.env, self.basis, progress=3)
         with pytest.raises(InputError, match=r"`seed` must be a non-negative integer"):
             spectral_randomisation_test(self.y, self.env, self.basis, seed=-4)
+        with pytest.raises(InputError, match=r"every column is constant or explained by "
+                                             r"`conditioning`"):
+            spectral_randomisation_test(self.y, self.env, self.basis, conditioning=self.env)
+        with pytest.raises(InputError, match=r"`conditioning` has 39 rows but `Y` has 40"):
+            spectral_randomisation_test(self.y, self.env, self.basis,
+                                        conditioning=self.env.iloc[:39])
 
 
 class TestDistanceDecayWeights:
@@ -356,6 +386,16 @@ class TestLevelWithAutocorrelatedEnvironment:
         assert lo <= rates["spectral_decay"] <= hi
         assert rates["spectral_distance"] > hi
         assert rates["ordinary"] > 0.5
+
+    def test_environment_only_fraction_given_spatial_vectors(self):
+        # fraction [a]: community = 3 broad MEM effects + autocorrelated noise, environment an
+        # independent exponential field (range 200 m); test of the environment given those
+        # vectors. Reduced-model residual permutation is liberal here; the partial spectral
+        # test with the distance-decay W is not (seeded: 0.058 vs 0.462)
+        rates = _studies().fraction_spectral_study("irregular", self.reps, seed=20261202005)
+        lo, hi = binomial_interval(self.reps)
+        assert lo <= rates["spectral_decay"] <= hi
+        assert rates["ordinary"] > 3 * hi
 
     def test_distance_decay_weighting_with_a_gaussian_environment(self):
         # the decay kernel is exponential; an environment with Gaussian covariance

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from scipy import sparse, stats
-from scipy.spatial import ConvexHull, cKDTree
+from scipy.spatial import ConvexHull
 
 from ._validation import as_matrix, check_int, check_option, check_real, check_rng
 from .errors import InputError

@@ -12,8 +12,8 @@ Layouts: the pilot layout and every 2nd site (220 and 110 sites). The same simul
 * dask LocalCluster(processes=True, n_workers=2, threads_per_worker=1),
 
 and the power tables are checked to be identical. Each configuration runs ``--repeats`` times
-and the fastest run is reported (the machine may be shared; the load average is printed). Time outside numerical work is measured on
-the serial run by timing, outermost call only, the numerical kernels: the batched permutation
+and the fastest run is reported (the machine may be shared; the load average is printed).
+Time outside numerical work is measured on the serial run by timing, outermost call only, the numerical kernels: the batched permutation
 products (``permutation._Kernel.__call__``: gathers + GEMM + sums of squares), the QR bases
 of the models (``canonical._column_basis``) and any LAPACK call through ``numpy.linalg`` /
 ``scipy.linalg`` (qr, lstsq, svd, eigh). Everything else — input checks, pandas frames, seed

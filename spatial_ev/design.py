@@ -22,10 +22,10 @@ Two questions for next season's layout and budget, answered from a pilot :class:
    user-supplied vector layer (nearest feature; a raster is not read) or, by default, is
    interpolated from the pilot sites (inverse-distance weighting of the 8 nearest sites,
    power 2, nearest site for category indicators). Residual variation: whole rows of the
-   pilot residuals resampled with replacement (keeps the species' covariance) and inflated by
-   √((n − 1)/(n − 1 − m)) for the m fitted terms. Each simulated table is analysed in a lighter
-   form keeping the same statistics: trend test, forward selection of environmental variables
-   (global test, double stopping), forward selection of the layout's spatial vectors under one
+   pilot residuals resampled with replacement (keeps the species' covariance) and inflated
+   by √((n − 1)/(n − 1 − m)) for the m fitted terms. Each simulated table is analysed in a
+   lighter form keeping the same statistics: trend test, forward selection of environmental
+   variables (global test, double stopping), forward selection of the layout's spatial vectors under one
    scheme (global test at the pilot's Šidák-corrected level by default, because next season's
    analysis will again compare schemes; then double stopping), variation partition with tests
    of the unique fractions, and detection of each scale class by a partial test of its
@@ -35,8 +35,12 @@ Permutations. Every test uses ``n_permutations`` (default 199). A rejection rate
 needs p-values accurate near 0.05: with N = 199 the Monte Carlo standard error of a p-value of
 0.05 is √(0.05 · 0.95 / 199) ≈ 0.015, so a test with true p near 0.05 is occasionally
 misjudged, which blurs power by at most a few points — less than the simulation error of the
-power itself (√(0.8 · 0.2 / 100) = 0.04 with 100 simulations). The corrected level for ten
-schemes (0.0051) is reachable with 199 permutations (smallest p = 1/200); fewer are refused.
+power itself (√(0.8 · 0.2 / 100) = 0.04 with 100 simulations). The spatial global test is
+judged at the much smaller corrected level α' (0.0051 for ten schemes); with 199 permutations
+it would reject only when no permuted statistic reaches the observed one, so a test with true
+p = 0.001 would fail 18 % of the time (1 − 0.999^199) and power would be underestimated. That
+test therefore uses max(N, ⌈4/α'⌉ − 1) permutations (783 for α' = 0.0051: up to three
+exceedances still reject, and a true p of 0.001 rejects 96 % of the time).
 
 Detection of a scale class at a layout: each spatial vector selected in a simulated analysis
 is attributed to the pilot class whose generating structure it carries most of (share
@@ -182,8 +186,9 @@ def spectral_coverage(pilot, layouts: Sequence[CandidateLayout | str], *,
 
     Parameters
     ----------
-    pilot : Analysis
-        From :func:`spatial_ev.analyse` (or :func:`spatial_ev.pilot_folder.load_pilot`).
+    pilot : Analysis or path of a run folder
+        From :func:`spatial_ev.analyse`; a run folder is rebuilt by
+        :func:`spatial_ev.pilot_folder.load_pilot`.
     layouts : sequence of CandidateLayout or layout spec strings
         See :mod:`spatial_ev.layouts` for the spec syntax.
     area : shapely Polygon, optional
@@ -229,6 +234,9 @@ def _coverage(pilot, built: list[CandidateLayout]) -> SpectralCoverage:
 def _check_pilot_layouts(pilot, layouts, area, seed) -> tuple[Any, list[CandidateLayout]]:
     from .analysis import Analysis
 
+    if isinstance(pilot, str) or hasattr(pilot, "__fspath__"):
+        from .pilot_folder import load_pilot
+        pilot = load_pilot(pilot)
     if not isinstance(pilot, Analysis):
         raise InputError(f"`pilot` must be an Analysis (from analyse() or load_pilot()); got "
                          f"{type(pilot).__name__}")
@@ -394,9 +402,6 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
     """
     from .engines import run_tasks
 
-    if isinstance(pilot, (str, bytes)) or hasattr(pilot, "__fspath__"):
-        from .pilot_folder import load_pilot
-        pilot = load_pilot(pilot)
     n_simulations, n_permutations, target, space_level, seed = _check_evaluate(
         n_simulations, n_permutations, target_power, space_level, seed, engine)
     reference = check_option("reference", reference, ["pilot", "none"])
@@ -412,10 +417,6 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
                           "use denser or larger layouts")
     alpha = float(pilot.settings["alpha"])
     level = float(pilot.weighting.alpha_corrected) if space_level == "corrected" else alpha
-    if 1.0 / (n_permutations + 1) > level:
-        raise InputError(f"n_permutations = {n_permutations} cannot reach the spatial test "
-                         f"level {level:.6f} (smallest p is 1/(N + 1)); use at least "
-                         f"{math.ceil(1 / level) - 1} permutations or space_level='nominal'")
     coverage = _coverage(pilot, built)
     model = _pilot_model(pilot)
     models, infos = [], {}
@@ -424,7 +425,9 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
                                             environment_layer)
         models.append(lm)
     classes = _pilot_classes(pilot)
-    settings = _Settings(alpha, level, n_permutations, pilot.settings["trend"],
+    global_permutations = max(n_permutations, math.ceil(4 / level) - 1)
+    settings = _Settings(alpha, level, n_permutations, global_permutations,
+                         pilot.settings["trend"],
                          tuple(pilot.settings["scale_breaks"]), tuple(classes["scale_class"]),
                          model["residuals"])
     layout_seqs = np.random.SeedSequence(seed).spawn(len(built))
@@ -439,6 +442,7 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
                        if "environment_source" in i), "no environmental table")
     settings_out = {
         "seed": seed, "n_simulations": n_simulations, "n_permutations": n_permutations,
+        "global_space_permutations": global_permutations,
         "alpha": alpha, "space_level": space_level, "space_test_level": level,
         "target_power": target, "scheme": pilot.settings.get("chosen_scheme"),
         "scale_breaks": list(pilot.settings["scale_breaks"]),

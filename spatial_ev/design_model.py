@@ -125,6 +125,7 @@ class _Settings:
     alpha: float
     space_level: float
     n_permutations: int
+    global_permutations: int    # for the spatial global test at the (small) corrected level
     trend: str
     breaks: tuple
     class_names: tuple
@@ -285,7 +286,8 @@ def _simulate(lay: _LayoutModel, s: _Settings, seq: np.random.SeedSequence) -> d
     vec = lay.vectors
     n_model = vec.shape[1] + (0 if cond is None else 2)
     if n - n_model - 1 > 0:
-        g = permutation_test(Y, vec, conditioning=cond, n_permutations=P, seed=streams[2])
+        g = permutation_test(Y, vec, conditioning=cond, n_permutations=s.global_permutations,
+                             seed=streams[2])
         if g.p_value <= s.space_level:
             fs = forward_selection(Y, vec, conditioning=cond, alpha=alpha, n_permutations=P,
                                    seed=streams[2], global_test="skip")

@@ -191,7 +191,8 @@ def grid_layout(*, spacing: float, pilot_coords: Any = None, area: Any = None,
     u, v = np.meshgrid(steps, steps)
     theta = math.radians(angle)
     ox, oy = xmin - cx, ymin - cy
-    ou, ov = ox * math.cos(theta) + oy * math.sin(theta), -ox * math.sin(theta) + oy * math.cos(theta)
+    ou = ox * math.cos(theta) + oy * math.sin(theta)
+    ov = -ox * math.sin(theta) + oy * math.cos(theta)
     u, v = u.ravel() + (ou % spacing), v.ravel() + (ov % spacing)
     x = cx + u * math.cos(theta) - v * math.sin(theta)
     y = cy + u * math.sin(theta) + v * math.cos(theta)

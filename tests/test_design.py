@@ -122,8 +122,8 @@ class TestSpectralCoverage:
         assert cov.layouts.loc["coarse", "n_sites"] == 36
 
     def test_input_validation(self, grid_pilot):
-        with pytest.raises(InputError, match="`pilot` must be an Analysis"):
-            spectral_coverage("not a pilot", ["thin:every=2"])
+        with pytest.raises(InputError, match="`pilot` must be an Analysis .* got float"):
+            spectral_coverage(3.5, ["thin:every=2"])
         with pytest.raises(InputError, match="`layouts` is empty"):
             spectral_coverage(grid_pilot, [])
         with pytest.raises(InputError, match=r"layout names must be unique; \['a'\]"):

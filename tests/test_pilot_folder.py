@@ -80,3 +80,15 @@ class TestLoadPilot:
     def test_bad_argument(self):
         with pytest.raises(InputError, match="`folder` must be the path of a run folder"):
             load_pilot(42)
+
+
+class TestDesignFromFolder:
+    def test_evaluate_design_takes_the_folder(self, run_folder):
+        from spatial_ev.design import evaluate_design, spectral_coverage
+
+        out, _ = run_folder
+        cov = spectral_coverage(out, ["thin:every=2"])
+        assert cov.layouts.loc["thin:every=2", "n_sites"] == 32
+        ev = evaluate_design(out, ["thin:every=2"], n_simulations=2, n_permutations=99,
+                             seed=20261202, reference="none")
+        assert ev.settings["pilot_seed"] == 20261202 and len(ev.power) >= 2

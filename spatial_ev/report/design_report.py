@@ -358,7 +358,10 @@ def render_design_report(evaluation, *, figures: dict[str, Figure] | None = None
                 "power": _markup(_html_table(ev.power)),
                 "fractions": _markup(_html_table(ev.fractions))},
         n_simulations=s["n_simulations"], n_permutations=s["n_permutations"], seed=s["seed"],
-        alpha=s["alpha"], space_level=f"{s['space_test_level']:.4g} ({s['space_level']})",
+        alpha=s["alpha"],
+        space_level=f"{s['space_test_level']:.4g} ({s['space_level']}"
+                    + (f", {s['global_space_permutations']} permutations)"
+                       if s.get("global_space_permutations") else ")"),
         extension="Nyström add-a-point extension of the pilot basis",
         residual_model=s["residual_model"], environment_source=s["environment_source"],
         notes=ev.notes, version=__version__)

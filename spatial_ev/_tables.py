@@ -60,6 +60,10 @@ def _plain(value):
 def split_ids(frame: pd.DataFrame, *, role: str, source: str, site_id: str | None,
               use_index: bool = False) -> tuple[str, pd.Series, pd.DataFrame]:
     """Pick the site-id column (``site_id`` or the first column) and split it off."""
+    if isinstance(frame.columns, pd.MultiIndex):
+        raise InputError(f"{role} {source} has multi-level column names (e.g. "
+                         f"{frame.columns[0]!r}); flatten them to one level, e.g. "
+                         f"frame.columns = ['_'.join(map(str, c)) for c in frame.columns]")
     if site_id is not None:
         if site_id in frame.columns:
             return site_id, frame[site_id].reset_index(drop=True), frame.drop(columns=site_id)
@@ -181,9 +185,11 @@ def species_matrix(table: RawTable, order: np.ndarray, index: pd.Index,
                          f"is it the site table? The species table holds site ids and one "
                          f"column per species (command line: --sites for the site table, "
                          f"--species for the species table)")
-    cells = pd.Series(data.to_numpy(dtype=object).ravel(order="F"), dtype=object)
-    if all(pd.api.types.is_numeric_dtype(t) for t in data.dtypes):
-        cells = cells.astype(np.float64)
+    if all(pd.api.types.is_numeric_dtype(t) and not pd.api.types.is_complex_dtype(t)
+           for t in data.dtypes):  # nullable integer / float types: missing cells become NaN
+        cells = pd.Series(data.to_numpy(dtype=np.float64, na_value=np.nan).ravel(order="F"))
+    else:
+        cells = pd.Series(data.to_numpy(dtype=object).ravel(order="F"), dtype=object)
     numbers, missing, bad = (a.reshape(k, n).T for a in parse_numeric(cells, decimal=decimal))
     rule = "species values must be counts, cover or 0/1"
     if bad.any():

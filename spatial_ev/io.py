@@ -262,10 +262,10 @@ def parse_numeric(values: pd.Series, *, decimal: str = ".") -> tuple[np.ndarray,
     >>> nums[0], missing.tolist(), bad.tolist()
     (np.float64(1.5), [False, True, False], [False, False, True])
     """
-    if pd.api.types.is_bool_dtype(values.dtype):
-        values = values.astype(float)
-    if pd.api.types.is_numeric_dtype(values.dtype):
-        numbers = values.to_numpy(dtype=np.float64, na_value=np.nan)
+    if pd.api.types.is_complex_dtype(values.dtype):  # not a real number: report as text
+        values = values.astype(object).where(values.notna(), None)
+    elif pd.api.types.is_bool_dtype(values.dtype) or pd.api.types.is_numeric_dtype(values.dtype):
+        numbers = values.to_numpy(dtype=np.float64, na_value=np.nan)  # nullable types too
         missing = np.isnan(numbers)
         return numbers, missing, np.zeros(len(values), dtype=bool)
     cells = values.to_numpy(dtype=object, na_value="")
@@ -301,6 +301,7 @@ def numeric_hint(bad_values: list[str], decimal: str) -> str:
     >>> numeric_hint(["1,5"], ".").split(":")[0]
     '; the file seems to use a decimal comma'
     """
+    bad_values = [str(v) for v in bad_values]
     if decimal == "." and any(_DECIMAL_COMMA.match(v) for v in bad_values):
         return ("; the file seems to use a decimal comma: pass decimal=',' "
                 "(command line: --decimal ,), or remove thousands separators")

@@ -446,14 +446,15 @@ def _points_from_columns(table: T.RawTable, x, y, opts: dict) -> None:
         mask = missing | bad | ~np.isfinite(numbers)
         if mask.any():
             i = int(np.flatnonzero(mask)[0])
-            raw = table.data[name].astype(str).to_numpy()
-            hint = numeric_hint(raw[mask].tolist(), opts["decimal"])
+            column = table.data[name]
+            raw = column.astype(object).where(column.notna(), "").astype(str).to_numpy()
+            hint = numeric_hint(raw[mask & ~missing].tolist(), opts["decimal"])
             site = table.ids.iloc[i]
             site = "no site id" if pd.isna(site) or not str(site).strip() else f"site {site!r}"
+            what = "is empty" if missing[i] else f"holds {raw[i]!r}, not a finite number"
             raise InputError(f"sites {table.source}: coordinate column {name!r} "
-                             f"{table.where(i)} ({site}) holds "
-                             f"{raw[i]!r}, not a finite number{hint}; every site needs both "
-                             f"coordinates")
+                             f"{table.where(i)} ({site}) {what}{hint}; every site needs both "
+                             f"coordinates ({int(mask.sum())} such cell(s) in the column)")
         values.append(numbers)
     geo_named = looks_geographic_name(x, "x") or looks_geographic_name(y, "y")
     in_degrees = bool((np.abs(values[0]) <= 180).all() and (np.abs(values[1]) <= 90).all())

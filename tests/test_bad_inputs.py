@@ -262,3 +262,77 @@ class TestInstalledCommand:
                               cwd=corpus, capture_output=True, text=True, timeout=120)
         assert proc.returncode != 0 and "Traceback" in proc.stderr
         assert case["error"] in proc.stderr
+
+
+# ------------------------------------------------------------------ in-memory frames
+def _frames():
+    import numpy as np
+    import pandas as pd
+
+    rng = np.random.default_rng(20261202)
+    ids = pd.Index([f"S{i:02d}" for i in range(12)], name="site")
+    sites = pd.DataFrame({"x": rng.uniform(0, 1000, 12), "y": rng.uniform(0, 1000, 12)},
+                         index=ids)
+    species = pd.DataFrame(rng.poisson(3, (12, 4)) + 1, index=ids, columns=list("abcd"))
+    return sites, species
+
+
+def _survey(sites=None, species=None, environment=None, **kw):
+    from spatial_ev.survey import Survey
+
+    s0, y0 = _frames()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", errors.SpatialEVWarning)
+        return Survey.from_frames(s0 if sites is None else sites,
+                                  y0 if species is None else species, environment,
+                                  local_unit="metre", **kw)
+
+
+class TestInMemoryFrames:
+    """Frames built in Python reach the same checks as files, whatever their dtypes."""
+
+    def test_nullable_integer_species_with_missing(self):
+        _, species = _frames()
+        with pytest.raises(errors.InputError, match=r"column 'a' row \d+ \(site 'S\d+'\) is "
+                                                    r"empty or missing"):
+            _survey(species=species.astype("Int64").mask(species > 4))
+        assert _survey(species=species.astype("Int64")).species.dtypes.eq("float64").all()
+
+    def test_nullable_float_and_boolean_environment(self):
+        import pandas as pd
+
+        sites, _ = _frames()
+        env = pd.DataFrame({"d": pd.array(range(12), dtype="Float64"),
+                            "g": pd.array([True, False, None] * 4, dtype="boolean")},
+                           index=sites.index)
+        with pytest.raises(errors.InputError, match=r"4 site\(s\) have missing values "
+                                                    r"\(columns 'g'\): 'S02', 'S05'"):
+            _survey(environment=env)
+        survey = _survey(environment=env, incomplete_sites="drop")
+        assert list(survey.environment.columns) == ["d", "g"] and survey.n_sites == 8
+
+    def test_multi_level_columns(self):
+        import pandas as pd
+
+        _, species = _frames()
+        species.columns = pd.MultiIndex.from_product([["taxa"], species.columns])
+        with pytest.raises(errors.InputError, match="multi-level column names .* flatten"):
+            _survey(species=species)
+
+    def test_complex_values(self):
+        _, species = _frames()
+        with pytest.raises(errors.InputError, match=r"holds '\(\d\+0j\)', which is not a "
+                                                    r"number \(48 such cell"):
+            _survey(species=species.astype(complex))
+
+    def test_missing_coordinates(self):
+        sites, _ = _frames()
+        sites.iloc[[4, 7], 1] = float("nan")
+        with pytest.raises(errors.InputError, match=r"coordinate column 'y' row 5 \(site "
+                                                    r"'S04'\) is empty; .*\(2 such cell"):
+            _survey(sites=sites)
+
+    def test_text_species_values(self):
+        _, species = _frames()
+        assert _survey(species=species.astype(str)).species.equals(
+            _survey(species=species.astype(float)).species)

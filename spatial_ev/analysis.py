@@ -18,8 +18,9 @@
    2013);
 8. with ``environment_test="spectral"`` (default), the link between community and environment
    is also tested by Moran spectral randomisation of the environmental table (Wagner & Dray
-   2015), which keeps each variable's spatial autocorrelation; the free-permutation test of the
-   environment is liberal when both tables are autocorrelated.
+   2015), which keeps each variable's spatial autocorrelation, and so is the environment-only
+   fraction given the spatial group; free-permutation tests of the environment are liberal
+   when both tables are autocorrelated.
 
 Nothing here draws or writes files; :mod:`spatial_ev.report` renders an :class:`Analysis`.
 """
@@ -47,8 +48,9 @@ from .permutation import PermutationTest, permutation_test
 from .scales import ScaleClass, classify_scales, default_scale_breaks, scalogram
 from .selection import (DEFAULT_SCHEMES, ForwardSelection, WeightingComparison,
                         compare_weighting_schemes, forward_selection)
-from .spectral_randomisation import (MAX_SITES, SpectralRandomisationTest,
-                                     distance_decay_weights, spectral_randomisation_test)
+from .spectral_randomisation import (MAX_SITES, CompleteBasis, SpectralRandomisationTest,
+                                     complete_spatial_basis, distance_decay_weights,
+                                     spectral_randomisation_test)
 from .survey import Survey
 from .transform import TRANSFORMATIONS, standardise_environment, transform
 
@@ -141,6 +143,9 @@ class Analysis:
         (distance-decay weighting exp(−d/t), t the truncation distance), or None (no
         environment, ``environment_test="permutation"``, or more than
         :data:`~spatial_ev.spectral_randomisation.MAX_SITES` sites).
+    environment_only_spectral : SpectralRandomisationTest or None
+        The same randomisation for the environment-only fraction [a]: the selected
+        environmental variables given the spatial group (None without a two-group partition).
     """
 
     survey: Survey
@@ -163,6 +168,8 @@ class Analysis:
     notes: tuple = ()
     warnings: tuple = ()
     environment_spectral: SpectralRandomisationTest | None = field(default=None, repr=False)
+    environment_only_spectral: SpectralRandomisationTest | None = field(default=None,
+                                                                       repr=False)
 
     @property
     def selected_environment(self) -> tuple[str, ...]:
@@ -211,7 +218,7 @@ class Analysis:
             g = self.environment_selection.global_test
             env_test = {"r2_adj": r(g.r2_adj), "p": r(g.p_value)}
         space_test = _space_global(self)
-        spectral = self.environment_spectral
+        spectral, only = self.environment_spectral, self.environment_only_spectral
         return {
             "n_sites": int(survey.n_sites),
             "n_species": int(survey.n_species),
@@ -241,7 +248,9 @@ class Analysis:
             "environment_spectral_test": None if spectral is None else
             {"r2_adj": r(spectral.r2_adj), "p": r(spectral.p_value),
              "n_randomisations": int(spectral.n_randomisations),
-             "weighting": "distance_decay"},
+             "weighting": "distance_decay",
+             "environment_only": None if only is None else
+             {"r2_adj": r(only.r2_adj), "p": r(only.p_value)}},
             "scales": [{"class": fit.scale_class.name, "vectors": list(fit.scale_class.vectors),
                         "r2_adj": r(fit.r2_adj), "p": r(fit.p_value),
                         "scale_range": None if fit.scale_class.scale_range is None
@@ -369,8 +378,9 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         Moran spectral randomisation (:func:`spatial_ev.spectral_randomisation.
         spectral_randomisation_test`, distance-decay weighting exp(−d/t) with t the truncation
         distance of the distance-based MEM, ``n_permutations`` randomisations), which keeps
-        the environment's spatial autocorrelation; a note warns when only the
-        free-permutation test is significant. Skipped above
+        the environment's spatial autocorrelation, and the environment-only fraction [a]
+        likewise (given the spatial group); a note warns when only the free-permutation test
+        is significant. Skipped above
         :data:`~spatial_ev.spectral_randomisation.MAX_SITES` sites. ``"permutation"``: the
         free-permutation test only.
 
@@ -420,10 +430,11 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
             say(f"forward selection among {env.shape[1]} environmental variables")
             env_sel = forward_selection(Y, env, alpha=alpha, seed=streams["environment"],
                                         progress=say, **run)
-        spectral = None
+        spectral = full_basis = None
+        spectral_streams = streams["spectral"].spawn(2)
         if env is not None and environment_test == "spectral":
-            spectral = _spectral_test(Y, env, env_sel, survey, streams["spectral"], run, alpha,
-                                      notes, say)
+            spectral, full_basis = _spectral_test(Y, env, env_sel, survey, spectral_streams[0],
+                                                  run, alpha, notes, say)
 
         say(f"comparing {len(schemes)} spatial weighting scheme(s)")
         weighting = compare_weighting_schemes(Y, survey, schemes=schemes, alpha=alpha,
@@ -443,6 +454,11 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         partition, fractions, fraction_tests = _partition(
             Y, env, env_vars, env_sel, space_vars, weighting, streams["partition"], run, notes,
             say)
+        only_spectral = None
+        if full_basis is not None and partition is not None:
+            only_spectral = _spectral_fraction_test(Y, env_vars, space_vars, full_basis,
+                                                    fraction_tests, spectral_streams[1], run,
+                                                    alpha, notes, say)
 
         say("fitting the scale classes")
         breaks = scale_breaks if scale_breaks is not None else \
@@ -476,7 +492,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         ordination=ordination, notes=tuple(notes),
         warnings=tuple(f"{w.category.__name__}: {w.message}" for w in caught
                        if issubclass(w.category, SpatialEVWarning)),
-        environment_spectral=spectral)
+        environment_spectral=spectral, environment_only_spectral=only_spectral)
 
 
 def _spectral_test(Y, env, env_sel, survey, rng, run, alpha, notes, say):
@@ -486,11 +502,12 @@ def _spectral_test(Y, env, env_sel, survey, rng, run, alpha, notes, say):
                      f"a dense eigendecomposition, done up to {MAX_SITES} sites "
                      f"({survey.n_sites} here). The free-permutation test of the environment "
                      f"is liberal if the environment is spatially autocorrelated.")
-        return None
+        return None, None
     say("testing the environment by Moran spectral randomisation")
-    test = spectral_randomisation_test(Y, env, distance_decay_weights(survey),
-                                       n_randomisations=run["n_permutations"], seed=rng,
-                                       engine=run["engine"], scheduler=run["scheduler"])
+    full = complete_spatial_basis(distance_decay_weights(survey))
+    test = spectral_randomisation_test(Y, env, full, n_randomisations=run["n_permutations"],
+                                       seed=rng, engine=run["engine"],
+                                       scheduler=run["scheduler"])
     free = env_sel.global_test.p_value if env_sel is not None and env_sel.global_test else None
     notes.append(f"The community–environment link was also tested by Moran spectral "
                  f"randomisation of the environmental table (Wagner & Dray 2015; distance-decay "
@@ -507,6 +524,24 @@ def _spectral_test(Y, env, env_sel, survey, rng, run, alpha, notes, say):
                      "environmental selection and fractions may reflect a chance match between "
                      "two spatially autocorrelated tables rather than a real link; confirm with "
                      "independent data before acting on them.")
+    return test, full
+
+
+def _spectral_fraction_test(Y, env_vars, space_vars, full: CompleteBasis, fraction_tests, rng,
+                            run, alpha, notes, say) -> SpectralRandomisationTest:
+    """Spectral randomisation test of the environment-only fraction [a], with a note."""
+    say("testing the environment-only fraction by Moran spectral randomisation")
+    test = spectral_randomisation_test(Y, env_vars, full, conditioning=space_vars,
+                                       n_randomisations=run["n_permutations"], seed=rng,
+                                       engine=run["engine"], scheduler=run["scheduler"])
+    free = fraction_tests["environment_only"]
+    notes.append(f"The environment-only fraction was also tested by spectral randomisation of "
+                 f"the selected environmental variables given the spatial group: p = "
+                 f"{test.p_value:.4g} (permutation of residuals: p = {free:.4g}).")
+    if free <= alpha < test.p_value:
+        notes.append("The environment-only fraction is significant by permutation of "
+                     "residuals but not by spectral randomisation: part of it may be a chance "
+                     "match between spatially autocorrelated residuals and environment.")
     return test
 
 

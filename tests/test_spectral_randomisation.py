@@ -299,7 +299,7 @@ class TestAnalyseOption:
         assert result.settings["environment_test"] == "spectral"
         test = result.environment_spectral
         # the same test run directly with the analysis's stream and inputs
-        rng = np.random.default_rng(20261202).spawn(7)[6]
+        rng = np.random.default_rng(20261202).spawn(7)[6].spawn(2)[0]
         direct = spectral_randomisation_test(
             transform(survey.species, "hellinger"),
             standardise_environment(survey.environment),
@@ -313,6 +313,17 @@ class TestAnalyseOption:
         context = analysis_context(result)
         assert context["methods"]["environment_test"]["p"] == pytest.approx(test.p_value)
         assert any("Wagner & Dray 2015" in note for note in context["limits"]["notes"])
+        # the environment-only fraction: selected variables given the spatial group
+        only = result.environment_only_spectral
+        if result.partition is not None:
+            assert only is not None
+            part = result.partition.fractions.loc["environment_only"]
+            assert only.r2_adj == pytest.approx(part["r2_adj"])
+            assert summary["environment_only"]["p"] == pytest.approx(only.p_value)
+            assert context["methods"]["environment_test"]["environment_only_p"] == \
+                pytest.approx(only.p_value)
+        else:
+            assert only is None and summary["environment_only"] is None
 
     def test_permutation_only_and_spatial_only(self):
         from spatial_ev.analysis import analyse
@@ -320,6 +331,7 @@ class TestAnalyseOption:
         plain = analyse(self.survey(), schemes="distance", spatial_weighting="single",
                         n_permutations=99, seed=5, environment_test="permutation")
         assert plain.environment_spectral is None
+        assert plain.environment_only_spectral is None
         assert plain.summary_dict()["environment_spectral_test"] is None
         assert analysis_context(plain)["methods"]["environment_test"] is None
         spatial_only = analyse(self.survey(environment=False), schemes="distance",

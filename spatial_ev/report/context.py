@@ -47,9 +47,10 @@ def _environment_test(analysis) -> dict | None:
     test = getattr(analysis, "environment_spectral", None)
     if test is None:
         return None
+    only = getattr(analysis, "environment_only_spectral", None)
     return {"method": "moran_spectral_randomisation", "weighting": "distance_decay",
             "n_randomisations": test.n_randomisations, "r2_adj": test.r2_adj,
-            "p": test.p_value}
+            "p": test.p_value, "environment_only_p": None if only is None else only.p_value}
 
 
 def _site_frame(analysis, values: pd.DataFrame) -> gpd.GeoDataFrame:

@@ -155,6 +155,8 @@ class TestEvaluateDesign:
         assert len(ev.recommendations) >= 1 and "power ≥ 0.8" in ev.recommendations[0]
         assert "independent" in ev.settings["residual_model"]
         assert ev.to_dict()["settings"]["seed"] == 20261202
+        text = ev.summary()
+        assert "3 simulations each" in text and "spatially independent residuals" in text
 
     def test_same_seed_same_table_any_engine(self, grid_pilot):
         distributed = pytest.importorskip("distributed")

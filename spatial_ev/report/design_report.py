@@ -140,11 +140,12 @@ def coverage_figure(layouts: pd.DataFrame, classes: pd.DataFrame,
 @st.styled
 def power_figure(power: pd.DataFrame, *, target: float = 0.8,
                  title: str = "Simulated probability of detection") -> Figure:
-    """Detection probability (± 2 Monte Carlo SE) per objective, layouts ordered by cost.
+    """Detection probability per objective, layouts ordered by cost, with its uncertainty.
 
     Parameters
     ----------
-    power : DataFrame with ``layout``, ``objective``, ``power``, ``mc_se``, ``n_sites``.
+    power : DataFrame with ``layout``, ``objective``, ``power``, ``mc_se``, ``n_sites`` and
+        optionally ``ci_low``, ``ci_high`` (drawn as the bars; else ± 2 ``mc_se``).
     target : target power, drawn as a line (``gid="target-power"``).
     title : figure title.
 
@@ -169,8 +170,13 @@ def power_figure(power: pd.DataFrame, *, target: float = 0.8,
         part = power[power["objective"] == obj].set_index("layout").reindex(order)
         xs = x - 0.35 + width * (j + 0.5)
         colour = st.group_colour(j)
-        p, e = part["power"].to_numpy(float), 2 * part["mc_se"].to_numpy(float)
-        yerr = np.vstack([np.minimum(e, p), np.minimum(e, 1 - p)])  # the bars stay in [0, 1]
+        p = part["power"].to_numpy(float)
+        if {"ci_low", "ci_high"} <= set(part.columns):  # Wilson interval: informative at 0, 1
+            yerr = np.vstack([p - part["ci_low"].to_numpy(float),
+                              part["ci_high"].to_numpy(float) - p])
+        else:
+            e = 2 * part["mc_se"].to_numpy(float)
+            yerr = np.vstack([np.minimum(e, p), np.minimum(e, 1 - p)])  # stay in [0, 1]
         ax.errorbar(xs, p, yerr=yerr, fmt="o", color=colour,
                     ms=5, lw=1.2, capsize=2, label=obj.replace("scale:", "scale class "),
                     gid="power-points")
@@ -184,7 +190,9 @@ def power_figure(power: pd.DataFrame, *, target: float = 0.8,
     ax.grid(axis="y", zorder=0)
     ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), fontsize=7.5)
     ax.set_title(title)
-    fig.supxlabel("Bars: ± 2 Monte Carlo standard errors. Layouts from cheapest (left) to "
+    bars = ("95 % Wilson intervals" if {"ci_low", "ci_high"} <= set(power.columns)
+            else "± 2 Monte Carlo standard errors")
+    fig.supxlabel(f"Bars: {bars}. Layouts from cheapest (left) to "
                   "dearest by number of sites. Power is for the pilot model's effect sizes.",
                   fontsize=7.5, color=st.MUTED, ha="left", x=0.01)
     return fig

@@ -13,7 +13,7 @@ from spatial_ev.analysis import analyse
 from spatial_ev.design import (DesignEvaluation, evaluate_design, layout_basis,
                                spectral_coverage)
 from spatial_ev.errors import DesignError, InputError
-from spatial_ev.layouts import grid_layout, thinned_layout, transect_layout
+from spatial_ev.layouts import grid_layout, transect_layout
 from spatial_ev.survey import Survey
 
 

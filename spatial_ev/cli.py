@@ -3,7 +3,9 @@
 Each sub-command lives in its own module ``spatial_ev/cli_<name>.py`` exposing
 ``configure(parser)`` (adds its options) and ``execute(args) -> int``. This module holds only
 the parser, the dispatch table and the error boundary: any :class:`SpatialEVError` becomes one
-line on standard error and exit status 2 (``--debug`` shows the traceback instead).
+line on standard error and exit status 2, as does an operating-system error (a path that
+cannot be read or written); any other exception is a defect and ends with one line asking for a
+report and exit status 1. ``--debug`` shows the traceback instead.
 """
 
 from __future__ import annotations
@@ -79,6 +81,22 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:  # pragma: no cover - interactive
         print("spatial-ev: interrupted; nothing was written", file=sys.stderr)
         return 130
+    except OSError as exc:  # e.g. an output folder inside a file, a full disk, no permission
+        if debug:
+            raise
+        where = f" {exc.filename!r}" if exc.filename else ""
+        print(f"spatial-ev {args.command}: error: cannot access{where}: "
+              f"{_one_line(exc.strerror or str(exc))}; check the path and its permissions",
+              file=sys.stderr)
+        return 2
+    except Exception as exc:  # a defect of spatial-ev, not of the user's input
+        if debug:
+            raise
+        print(f"spatial-ev {args.command}: internal error ({type(exc).__name__}: "
+              f"{_one_line(str(exc))}); this is a defect in spatial-ev, not in your data: "
+              f"please report it with the output of the same command run with --debug",
+              file=sys.stderr)
+        return 1
 
 
 def _one_line(text: str) -> str:

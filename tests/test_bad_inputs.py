@@ -202,10 +202,10 @@ class TestCommandLine:
 SITE_ERRORS = [c for c in READ_ERRORS if "species" not in c and "environment" not in c]
 # Known defect (spatial_ev/analysis.py, Analysis.environment_table): when forward selection
 # keeps no environmental variable, `steps[steps["added"]]` indexes columns with an empty object
-# Series and raises KeyError('variable'), so `run` ends with a traceback. These small surveys
-# select nothing; the spatial-only case shows the rest of the chain works. Remove the marker
-# when the defect is fixed (strict: an unexpected pass fails).
-_NO_ENV_SELECTED = pytest.mark.xfail(raises=KeyError, strict=True,
+# Series and raises KeyError('variable'), so `run` stops with an internal error (exit 1).
+# These small surveys select nothing; the spatial-only case shows the rest of the chain works.
+# Remove the marker when the defect is fixed (strict: an unexpected pass fails).
+_NO_ENV_SELECTED = pytest.mark.xfail(strict=True,
                                      reason="Analysis.environment_table with nothing selected")
 FULL_RUNS = [pytest.param(c, id=c["id"], marks=[_NO_ENV_SELECTED]
                           if c.get("environment") != "none" else [])
@@ -229,7 +229,8 @@ class TestOtherCommands:
         import json
 
         out_dir = tmp_path / "run"
-        assert main(["run", *file_args(case), "--out", str(out_dir), *RUN_FAST]) == 0
+        status = main(["run", *file_args(case), "--out", str(out_dir), *RUN_FAST])
+        assert status == 0, capsys.readouterr().err
         summary = json.loads((out_dir / "summary.json").read_text(encoding="utf-8"))
         assert summary["n_sites"] == 12 and summary["n_species"] == 5
         assert summary["seed"] == 20261202 and summary["permutations"] == 19

@@ -411,6 +411,8 @@ class SpectralRandomisationTest:
         Size of the complete spatial basis (n − 1).
     environment_moran_i : pandas.Series
         Moran's I under W of each environmental column (kept by every randomisation).
+    conditioning_rank : int
+        Rank of the conditioning table (0: the marginal test of fraction [a + b]).
 
     The p-value is valid when W describes the environment's autocorrelation (see the module
     notes); it tests the link between community and environment, not a causal effect.
@@ -426,6 +428,7 @@ class SpectralRandomisationTest:
     df_residual: int
     n_vectors: int
     environment_moran_i: pd.Series = field(repr=False)
+    conditioning_rank: int = 0
 
     def to_frame(self) -> pd.DataFrame:
         """One-row table of the test.
@@ -445,7 +448,8 @@ class SpectralRandomisationTest:
         return pd.DataFrame([{
             "r2": self.r2, "r2_adj": self.r2_adj, "df_model": self.df_model,
             "df_residual": self.df_residual, "pseudo_f": self.statistic, "p_value": self.p_value,
-            "n_randomisations": self.n_randomisations, "method": "moran_spectral"}])
+            "n_randomisations": self.n_randomisations, "method": "moran_spectral",
+            "conditioning_rank": self.conditioning_rank}])
 
     def summary(self) -> str:
         """Plain-text summary with the test's assumptions.
@@ -462,8 +466,11 @@ class SpectralRandomisationTest:
         >>> "Moran spectral" in t.summary()
         True
         """
-        return (f"pseudo-F = {self.statistic:.4g} (df {self.df_model}, {self.df_residual}), "
-                f"p = {self.p_value:.4g} from {self.n_randomisations} Moran spectral "
+        given = (f" given {self.conditioning_rank} conditioning variable(s)"
+                 if self.conditioning_rank else "")
+        return (f"pseudo-F{given} = {self.statistic:.4g} (df {self.df_model}, "
+                f"{self.df_residual}), p = {self.p_value:.4g} from {self.n_randomisations} "
+                f"Moran spectral "
                 f"randomisations of the environment ({self.n_vectors} spatial eigenvectors, "
                 f"random signs shared by all variables); R² = {self.r2:.4f}, adjusted R² = "
                 f"{self.r2_adj:.4f}. Keeps each variable's Moran's I and the correlations among "
@@ -611,5 +618,6 @@ def spectral_randomisation_test(
         statistic=observed, p_value=_p_value(observed, null), null_distribution=null,
         n_randomisations=n_randomisations, r2=fraction.r2, r2_adj=fraction.r2_adj,
         df_model=rank, df_residual=df_residual, n_vectors=int(u.shape[1]),
-        environment_moran_i=pd.Series(moran, index=pd.Index(x_cols), name="moran_i"))
+        environment_moran_i=pd.Series(moran, index=pd.Index(x_cols), name="moran_i"),
+        conditioning_rank=int(qw.shape[1]))
 

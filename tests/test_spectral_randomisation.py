@@ -172,6 +172,7 @@ class TestSpectralRandomisationTest:
         assert (test.r2, test.r2_adj, test.df_model) == pytest.approx(
             explained_fraction(self.y, env, conditioning=w))
         assert test.df_residual == 40 - 1 - 3 - 3
+        assert test.conditioning_rank == 3 and "given 3 conditioning" in test.summary()
 
     def test_p_value_formula_and_detects_a_real_link(self):
         test = spectral_randomisation_test(self.y, self.env, self.basis, n_randomisations=199,

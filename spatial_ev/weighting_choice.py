@@ -139,6 +139,7 @@ def compare_weighting_schemes(
     conditioning: Any = None,
     sign: str = "positive",
     ceiling: str = "strict",
+    max_vectors: int | None = None,
     engine: str = "local",
     scheduler: Any = None,
     progress: Callable[[str], None] | None = None,
@@ -177,6 +178,9 @@ def compare_weighting_schemes(
         Which eigenvectors are candidates (by the sign of their Moran's I).
     ceiling : {"strict", "keep_last"}
         Adjusted-R² stopping rule of the forward selections (see :func:`forward_selection`).
+    max_vectors : int, optional
+        Keep at most this many of the broadest eigenvectors per scheme (required above
+        :data:`spatial_ev.eigen.DENSE_LIMIT` sites, where the Lanczos path computes only them).
     engine, scheduler, progress :
         As in :func:`forward_selection`.
 
@@ -202,6 +206,8 @@ def compare_weighting_schemes(
     alpha = check_real("alpha", alpha, low=0, high=1, low_inclusive=False, high_inclusive=False)
     n_permutations = check_int("n_permutations", n_permutations, low=1)
     check_option("sign", sign, ["positive", "negative", "all"])
+    if max_vectors is not None:
+        max_vectors = check_int("max_vectors", max_vectors, low=1)
     check_option("ceiling", ceiling, ["strict", "keep_last"])
     check_option("engine", engine, ENGINES)
     k = len(parsed)
@@ -233,11 +239,11 @@ def compare_weighting_schemes(
                 if prebuilt is not None:
                     basis = prebuilt
                 elif graph_method is None:
-                    basis = distance_eigenvectors(coords, sign=sign)
+                    basis = distance_eigenvectors(coords, sign=sign, max_vectors=max_vectors)
                 else:
                     graph = neighbour_graph(coords, method=graph_method)
                     basis = graph_eigenvectors(graph, weighting=weighting, exponent=exponent,
-                                               sign=sign)
+                                               sign=sign, max_vectors=max_vectors)
         except InputError as exc:  # recorded in the table, the scheme still counts in k
             row["note"] = f"not built: {exc}"
             continue

@@ -179,3 +179,21 @@ class TestCompareWeightingSchemesValidation:
         shuffled = self.Y.iloc[::-1]
         with pytest.raises(InputError, match=r"`coords` rows are not the sites of `Y`.*reindex"):
             compare_weighting_schemes(shuffled, self.xy, schemes=["distance"], n_permutations=99)
+
+
+class TestMaxVectors:
+    def test_keeps_only_broadest_vectors(self):
+        # the broadest k vectors are the first k of the full basis (sorted by eigenvalue)
+        rng = np.random.default_rng(1357911)
+        xy = rng.uniform(0, 100, size=(60, 2))
+        Y = np.sin(xy[:, :1] / 20) + 0.2 * rng.normal(size=(60, 1))
+        full = compare_weighting_schemes(Y, xy, schemes=["distance"], n_permutations=99, seed=3)
+        capped = compare_weighting_schemes(Y, xy, schemes=["distance"], n_permutations=99,
+                                           seed=3, max_vectors=5)
+        assert capped.table.loc["distance", "n_vectors"] == 5
+        assert full.table.loc["distance", "n_vectors"] > 5
+
+    def test_bad_value(self):
+        with pytest.raises(InputError, match="max_vectors"):
+            compare_weighting_schemes(np.ones((10, 1)) + np.arange(10)[:, None],
+                                      np.arange(20.0).reshape(10, 2), max_vectors=0)

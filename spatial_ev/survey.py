@@ -379,13 +379,13 @@ def _read_frame(path, role: str, opts: dict, layer=None, site_id=None):
         return read_csv_table(path, role=role, delimiter=opts["delimiter"],
                               decimal=opts["decimal"], id_column=site_id,
                               encoding=opts["encoding"]), None, True
-    gdf = read_vector(path, role=role, layer=layer)
-    return gdf, gdf.crs, False
+    gdf = read_vector(path, role=role, layer=layer)  # a DataFrame for attribute-only tables
+    return gdf, getattr(gdf, "crs", None) if isinstance(gdf, gpd.GeoDataFrame) else None, False
 
 
 def _read_table(path, role: str, site_id, opts: dict) -> T.RawTable:
     frame, crs, is_csv = _read_frame(path, role, opts, site_id=site_id)
-    if not is_csv:
+    if isinstance(frame, gpd.GeoDataFrame):
         frame = pd.DataFrame(frame.drop(columns=frame.geometry.name))
     source = f"file {str(path)!r}"
     id_name, ids, data = T.split_ids(frame, role=role, source=source, site_id=site_id)
@@ -404,6 +404,9 @@ def _read_site_table(path, site_id, x, y, layer, opts: dict) -> T.RawTable:
                            extra={"csv": True, "lines": frame.attrs.get("lines")})
         _points_from_columns(table, x, y, opts)
         return table
+    if not isinstance(frame, gpd.GeoDataFrame):
+        raise InputError(f"sites {source}: the layer has no geometry (an attribute table); "
+                         f"give a layer of points or polygons, or a CSV with coordinate columns")
     if x is not None or y is not None:
         raise InputError(f"`x`/`y` columns apply to CSV site tables; sites {source} is a GIS "
                          f"file whose geometry gives the coordinates")

@@ -141,6 +141,11 @@ def write_gis_cases(folder: str | Path) -> list[str]:
         feat["properties"] = {}
     keep("sites_no_attributes.geojson")
     (out / "sites_no_attributes.geojson").write_text(_feature_collection(bare, UTM))
+    # species as an attribute-only GeoPackage table (no geometry column); the same as sites
+    import pyogrio
+
+    pyogrio.write_dataframe(species, keep("species_attributes.gpkg"), layer="counts")
+    pyogrio.write_dataframe(species, keep("sites_attributes_only.gpkg"), layer="counts")
     # a download cut short
     keep("sites_truncated.geojson")
     (out / "sites_truncated.geojson").write_text(_feature_collection(_point_features(frame))[:300])

@@ -28,6 +28,14 @@ centred environment) and B = Uᵀ Y, the model sum of squares of sign vector s i
 ‖Aᵀ diag(s) B‖², and a whole batch of sign vectors needs one matrix product: the environment
 is never rebuilt, refitted or decomposed per randomisation [derived].
 
+Partial test (``conditioning``: covariables W_c, e.g. the selected spatial vectors; the
+environment-only fraction [a]). Y is replaced by its residuals on W_c and each randomised
+environment is refitted given W_c: with G = Uᵀ Q_X, B = Uᵀ(Y after W_c), Ω = Uᵀ Q_Wc,
+C = Gᵀ diag(s) B and K = Ωᵀ diag(s) G, the model sum of squares is tr(Cᵀ(I − KᵀK)⁻¹C) — one
+more column block in the same matrix product and one small r × r solve per randomisation
+[derived]. W_c is not randomised; the test keeps its validity condition (the randomised
+environment has the observed one's distribution), whatever the covariables.
+
 Assumptions and limits
     * The weighting matrix W describes the autocorrelation of the environment: the test is exact
       when the environment's MEM coefficients a_k are independent of their signs (e.g. a

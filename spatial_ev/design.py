@@ -504,7 +504,7 @@ def _wilson(p: float, m: int, z: float = 1.959964) -> tuple[float, float]:
     Stat. Assoc. 22:209–212); unlike ±2 SE it stays informative at p = 0 or 1."""
     centre = (p + z * z / (2 * m)) / (1 + z * z / m)
     half = z * math.sqrt(p * (1 - p) / m + z * z / (4 * m * m)) / (1 + z * z / m)
-    return max(0.0, centre - half), min(1.0, centre + half)
+    return max(0.0, min(p, centre - half)), min(1.0, max(p, centre + half))
 
 
 def _recommend(power, coverage, target, classes, built) -> list[str]:

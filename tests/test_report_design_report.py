@@ -70,6 +70,14 @@ class TestPowerFigure:
         assert [ln.get_ydata()[0] for ln in ax.lines if ln.get_gid() == "target-power"] == [0.7]
         assert [t.get_text().split("\n")[0] for t in ax.get_xticklabels()] == ["cheap", "dear"]
 
+    def test_intervals_at_certainty(self):
+        # power 1 and 0 with intervals touching the estimate (rounding may put them a hair
+        # beyond it): the bars are drawn without error
+        t = pd.DataFrame({"layout": ["a", "b"], "objective": ["environment"] * 2,
+                          "power": [1.0, 0.0], "mc_se": [0.0, 0.0], "n_sites": [40, 90],
+                          "ci_low": [0.93, 0.0], "ci_high": [1.0 - 1e-16, 1e-17]})
+        assert len(power_figure(t).axes) == 1
+
     def test_missing_column(self):
         with pytest.raises(InputError, match="`power` lacks column 'mc_se'"):
             power_figure(pd.DataFrame({"layout": [], "objective": [], "power": [],

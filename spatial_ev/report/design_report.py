@@ -172,8 +172,8 @@ def power_figure(power: pd.DataFrame, *, target: float = 0.8,
         colour = st.group_colour(j)
         p = part["power"].to_numpy(float)
         if {"ci_low", "ci_high"} <= set(part.columns):  # Wilson interval: informative at 0, 1
-            yerr = np.vstack([p - part["ci_low"].to_numpy(float),
-                              part["ci_high"].to_numpy(float) - p])
+            yerr = np.clip(np.vstack([p - part["ci_low"].to_numpy(float),
+                                      part["ci_high"].to_numpy(float) - p]), 0.0, None)
         else:
             e = 2 * part["mc_se"].to_numpy(float)
             yerr = np.vstack([np.minimum(e, p), np.minimum(e, 1 - p)])  # stay in [0, 1]

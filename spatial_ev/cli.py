@@ -4,8 +4,10 @@ Each sub-command lives in its own module ``spatial_ev/cli_<name>.py`` exposing
 ``configure(parser)`` (adds its options) and ``execute(args) -> int``. This module holds only
 the parser, the dispatch table and the error boundary: any :class:`SpatialEVError` becomes one
 line on standard error and exit status 2, as does an operating-system error (a path that
-cannot be read or written); any other exception is a defect and ends with one line asking for a
-report and exit status 1. ``--debug`` shows the traceback instead.
+cannot be read or written); any other exception is a defect and ends with one line asking for
+a report and exit status 1. ``--debug`` shows the traceback instead. Warnings are held back
+while a command runs: a command that succeeds shows them when it ends, one line each; a failing
+one counts them in its single error line.
 """
 
 from __future__ import annotations
@@ -68,21 +70,31 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     debug = getattr(args, "debug", False)
+    caught: list[tuple[type, str]] = []  # warnings are shown after the command, see below
+
+    def keep(message, category, filename, lineno, file=None, line=None) -> None:
+        caught.append((category, _one_line(str(message))))
+
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("always", SpatialEVWarning)
-            warnings.showwarning = _show_warning
-            return int(args._execute(args) or 0)
+            warnings.showwarning = keep
+            status = int(args._execute(args) or 0)
+        _show_warnings(caught)
+        return status
     except SpatialEVError as exc:
         if debug:
+            _show_warnings(caught)
             raise
-        print(f"spatial-ev {args.command}: error: {_one_line(str(exc))}", file=sys.stderr)
+        print(f"spatial-ev {args.command}: error: {_one_line(str(exc))}{_after(caught)}",
+              file=sys.stderr)
         return 2
     except KeyboardInterrupt:  # pragma: no cover - interactive
         print("spatial-ev: interrupted; nothing was written", file=sys.stderr)
         return 130
     except OSError as exc:  # e.g. an output folder inside a file, a full disk, no permission
         if debug:
+            _show_warnings(caught)
             raise
         where = f" {exc.filename!r}" if exc.filename else ""
         print(f"spatial-ev {args.command}: error: cannot access{where}: "
@@ -91,6 +103,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     except Exception as exc:  # a defect of spatial-ev, not of the user's input
         if debug:
+            _show_warnings(caught)
             raise
         print(f"spatial-ev {args.command}: internal error ({type(exc).__name__}: "
               f"{_one_line(str(exc))}); this is a defect in spatial-ev, not in your data: "
@@ -103,8 +116,18 @@ def _one_line(text: str) -> str:
     return " ".join(text.split())
 
 
-def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
-    print(f"warning ({category.__name__}): {_one_line(str(message))}", file=sys.stderr)
+def _show_warnings(caught: list[tuple[type, str]]) -> None:
+    """Warnings of a finished command, one line each. They are held back while it runs so that
+    a failing command prints one line only and a live progress display is not broken."""
+    for category, message in caught:
+        print(f"warning ({category.__name__}): {message}", file=sys.stderr)
+
+
+def _after(caught: list[tuple[type, str]]) -> str:
+    if not caught:
+        return ""
+    names = ", ".join(sorted({c.__name__ for c, _ in caught}))
+    return f" (after {len(caught)} warning(s): {names}; --debug shows them)"
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -56,3 +56,37 @@ class TestMain:
         assert main(args) == 2
         _one_line(capsys.readouterr().err)
         assert blocker.read_text() == "not a folder"
+
+
+class TestWarnings:
+    def test_warnings_follow_a_successful_command(self, monkeypatch, capsys):
+        import warnings
+
+        from spatial_ev.errors import DroppedSpeciesWarning
+
+        def noisy(args):
+            warnings.warn("dropped 'X'", DroppedSpeciesWarning)
+            print("described")
+            return 0
+
+        monkeypatch.setattr(cli_check, "execute", noisy)
+        assert main(["check", "--sites", "s.csv"]) == 0
+        out, err = capsys.readouterr()
+        assert out == "described\n"
+        assert err == "warning (DroppedSpeciesWarning): dropped 'X'\n"
+
+    def test_warnings_counted_in_the_error_line(self, monkeypatch, capsys):
+        import warnings
+
+        from spatial_ev.errors import DroppedSpeciesWarning, InputError
+
+        def failing(args):
+            warnings.warn("dropped 'X'", DroppedSpeciesWarning)
+            warnings.warn("dropped 'Y'", DroppedSpeciesWarning)
+            raise InputError("bad cell")
+
+        monkeypatch.setattr(cli_check, "execute", failing)
+        assert main(["check", "--sites", "s.csv"]) == 2
+        line = _one_line(capsys.readouterr().err)
+        assert line == ("spatial-ev check: error: bad cell (after 2 warning(s): "
+                        "DroppedSpeciesWarning; --debug shows them)")

@@ -1,0 +1,249 @@
+"""The user guide, README and notebooks mention only commands, options and names that exist.
+
+* every ``spatial-ev COMMAND --option`` line in docs/guide.md, README.md and the notebooks names
+  a real command and real options of ``spatial_ev.cli.build_parser()``; command lines in code
+  blocks parse completely;
+* every ``--option`` mentioned in the guide belongs to some command;
+* every ``spatial_ev.<name>`` and ``from spatial_ev[.module] import X`` resolves;
+* docs/cli.md equals what scripts/make_cli_reference.py generates now;
+* the guide's worked example ("your own files") runs: its three tables are written out, the
+  exact ``check`` and ``run`` commands succeed, and every file the run writes is described in
+  the guide's output table.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import importlib
+import importlib.util
+import io
+import re
+import shlex
+from pathlib import Path
+
+import nbformat
+import pytest
+
+from spatial_ev.cli import build_parser, main
+
+ROOT = Path(__file__).resolve().parents[1]
+GUIDE = ROOT / "docs" / "guide.md"
+CLI_MD = ROOT / "docs" / "cli.md"
+NOTEBOOKS = sorted((ROOT / "notebooks").glob("*.ipynb"))
+CODE_BLOCK = re.compile(r"```[a-z]*\n(.*?)```", re.S)
+COMMAND = re.compile(r"spatial-ev\s+([A-Za-z_][\w-]*)([^`\n]*)")
+OPTION = re.compile(r"(?<![\w-])(--[a-z][a-z0-9-]*)")
+NAME = re.compile(r"(?<![\w/])spatial_ev((?:\.[A-Za-z_]\w*)+)")
+FROM_IMPORT = re.compile(r"from (spatial_ev(?:\.\w+)*) import (\([^)]*\)|[^\n#]+)")
+
+
+def _texts() -> dict[str, str]:
+    texts = {"docs/guide.md": GUIDE.read_text(encoding="utf-8"),
+             "README.md": (ROOT / "README.md").read_text(encoding="utf-8")}
+    for path in NOTEBOOKS:
+        nb = nbformat.read(path, as_version=4)
+        texts[f"notebooks/{path.name}"] = "\n\n".join(c.source for c in nb.cells)
+    return texts
+
+
+def _subparsers() -> dict[str, argparse.ArgumentParser]:
+    parser = build_parser()
+    action = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    return dict(action.choices)
+
+
+def _options(parser: argparse.ArgumentParser) -> set[str]:
+    return {s for a in parser._actions for s in a.option_strings}
+
+
+def _command_mentions() -> list[tuple[str, str, str]]:
+    """(source, command, rest of the line) for every ``spatial-ev COMMAND ...`` mention."""
+    found = []
+    for source, text in _texts().items():
+        for m in COMMAND.finditer(text):
+            if m.group(1) == m.group(1).upper():  # a placeholder such as COMMAND
+                continue
+            found.append((source, m.group(1), m.group(2)))
+    return found
+
+
+def _code_block_commands() -> list[tuple[str, str]]:
+    out = []
+    for source, text in _texts().items():
+        for block in CODE_BLOCK.findall(text):
+            for line in block.splitlines():
+                line = line.split("  #")[0].strip()
+                if line.startswith("spatial-ev "):
+                    out.append((source, line))
+    return out
+
+
+class TestCommandsExist:
+    def test_mentions_are_found(self):
+        mentions = _command_mentions()
+        assert {"check", "run", "demo", "design", "eigen"} <= {c for _, c, _ in mentions}
+        assert len(_code_block_commands()) >= 8
+
+    @pytest.mark.parametrize("source,command,rest", _command_mentions(),
+                             ids=lambda v: v if isinstance(v, str) and len(v) < 30 else None)
+    def test_command_and_options_exist(self, source, command, rest):
+        subs = _subparsers()
+        assert command in subs, f"{source}: `spatial-ev {command}` is not a command"
+        known = _options(subs[command])
+        unknown = [o for o in OPTION.findall(rest) if o not in known]
+        assert not unknown, f"{source}: spatial-ev {command} has no option(s) {unknown}"
+
+    @pytest.mark.parametrize("source,line", _code_block_commands())
+    def test_code_block_command_lines_parse(self, source, line):
+        argv = shlex.split(line)[1:]
+        stderr = io.StringIO()
+        with contextlib.redirect_stderr(stderr):
+            try:
+                build_parser().parse_args(argv)
+            except SystemExit as exc:  # argparse reports the problem and exits
+                pytest.fail(f"{source}: `{line}` does not parse: {stderr.getvalue().strip()} "
+                            f"(exit {exc.code})")
+
+    def test_every_option_in_the_guide_belongs_to_a_command(self):
+        every = set().union(*(_options(p) for p in _subparsers().values()))
+        text = GUIDE.read_text(encoding="utf-8")
+        unknown = sorted({o for o in OPTION.findall(text) if o not in every})
+        assert not unknown, f"docs/guide.md mentions options no command has: {unknown}"
+
+
+def _resolve(dotted: str):
+    parts = dotted.split(".")
+    for cut in range(len(parts), 0, -1):
+        try:
+            obj = importlib.import_module(".".join(parts[:cut]))
+        except ModuleNotFoundError:
+            continue
+        for attr in parts[cut:]:
+            obj = getattr(obj, attr)
+        return obj
+    raise ModuleNotFoundError(dotted)
+
+
+def _python_names() -> list[tuple[str, str]]:
+    names = set()
+    for source, text in _texts().items():
+        for m in NAME.finditer(text):
+            names.add((source, "spatial_ev" + m.group(1).rstrip(".")))
+        for module, imported in FROM_IMPORT.findall(text):
+            for name in re.split(r"[\s,()]+", imported):
+                if name:
+                    names.add((source, f"{module}.{name}"))
+    return sorted(names)
+
+
+class TestPythonNamesExist:
+    def test_names_are_found(self):
+        assert len(_python_names()) >= 20
+
+    @pytest.mark.parametrize("source,dotted", _python_names())
+    def test_name_resolves(self, source, dotted):
+        try:
+            _resolve(dotted)
+        except (AttributeError, ModuleNotFoundError) as exc:
+            pytest.fail(f"{source} mentions {dotted}, which does not exist ({exc})")
+
+
+def _reference_module():
+    spec = importlib.util.spec_from_file_location(
+        "make_cli_reference", ROOT / "scripts" / "make_cli_reference.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+class TestCliReference:
+    def test_docs_cli_md_is_up_to_date(self):
+        generated = _reference_module().render()
+        assert CLI_MD.read_text(encoding="utf-8") == generated, \
+            "docs/cli.md is out of date: run python scripts/make_cli_reference.py"
+
+    def test_every_command_and_option_is_documented(self):
+        text = CLI_MD.read_text(encoding="utf-8")
+        for name, parser in _subparsers().items():
+            assert f"## spatial-ev {name}" in text
+            for action in parser._actions:
+                for option in action.option_strings:
+                    if option not in ("-h", "--help"):
+                        assert f"`{option}`" in text, f"{name} {option} missing from cli.md"
+
+    def test_reference_does_not_depend_on_terminal_width(self, monkeypatch):
+        module = _reference_module()
+        monkeypatch.setenv("COLUMNS", "40")
+        narrow = module.render()
+        monkeypatch.setenv("COLUMNS", "200")
+        assert module.render() == narrow
+
+    def test_check_mode_reports_drift(self, monkeypatch, tmp_path, capsys):
+        module = _reference_module()
+        assert module.main(["--check"]) == 0
+        stale = tmp_path / "cli.md"
+        stale.write_text("# old\n", encoding="utf-8")
+        monkeypatch.setattr(module, "TARGET", stale)
+        assert module.main(["--check"]) == 1
+        assert "out of date" in capsys.readouterr().err
+
+
+def _own_files_section() -> str:
+    text = GUIDE.read_text(encoding="utf-8")
+    start = text.index("## 1. From your own files to a report")
+    return text[start:text.index("## 2. Input files")]
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory):
+    """The guide's three inline tables, written to files."""
+    folder = tmp_path_factory.mktemp("own_files")
+    section = _own_files_section()
+    tables = re.findall(r"`(\w+\.csv)` — [^\n]*\n\n```csv\n(.*?)```", section, re.S)
+    assert [name for name, _ in tables] == ["sites.csv", "species.csv", "environment.csv"]
+    for name, body in tables:
+        (folder / name).write_text(body, encoding="utf-8")
+    return folder
+
+
+class TestWorkedExample:
+    def _command(self, name: str) -> list[str]:
+        lines = [line for _, line in _code_block_commands()
+                 if line.startswith(f"spatial-ev {name} --sites sites.csv")]
+        assert len(lines) == 1, lines
+        return shlex.split(lines[0])[1:]
+
+    def test_check_passes_on_the_inline_tables(self, folder, monkeypatch, capsys):
+        monkeypatch.chdir(folder)
+        assert main(self._command("check")) == 0
+        out = capsys.readouterr().out
+        assert "sites: 16 (point), ids from column 'plot'" in out
+        assert "reference level 'mown'" in out and "metre" in out
+
+    def test_run_writes_the_documented_folder(self, folder, monkeypatch, capsys):
+        monkeypatch.chdir(folder)
+        argv = self._command("run")
+        assert main(argv) == 0
+        out = folder / argv[argv.index("--out") + 1]
+        section = _own_files_section()
+        documented = set(re.findall(r"^\| `([^`]+)` \|", section, re.M))
+        written = {str(p.relative_to(out)) for p in out.rglob("*")
+                   if p.is_file() and p.parent.name != "figures"}
+        assert written - documented == set(), "files written but not described in the guide"
+        assert {"report.html", "summary.json", "manifest.json", "maps.gpkg",
+                "tables/fractions.csv"} <= written
+        assert (out / "figures").is_dir()
+        assert "fractions (adjusted R²)" in capsys.readouterr().out
+
+    def test_config_file_example_loads(self, folder):
+        from spatial_ev.cli_run import load_config
+
+        toml = re.search(r"```toml\n(.*?)```", _own_files_section(), re.S).group(1)
+        (folder / "analysis.toml").write_text(toml, encoding="utf-8")
+        parser = build_parser()
+        args = parser.parse_args(["run", "--config", str(folder / "analysis.toml")])
+        args = load_config(args.config, args._run_parser, args)
+        assert Path(args.sites) == folder / "sites.csv"
+        assert args.crs == "EPSG:32633" and args.weighting == "gabriel/binary"
+        assert args.permutations == 999 and args.seed == 1

@@ -447,7 +447,11 @@ def to_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
               "dense distance-decay weighting (used by `analyse`) stays near α in these designs, "
               "including environments whose autocorrelation is not exponential (Gaussian, "
               "spherical, anisotropic). The community was an exponential field; other "
-              "layouts, sizes and strongly non-Gaussian environments were not simulated.", ""]
+              "layouts, sizes and strongly non-Gaussian environments were not simulated.",
+              "* The same holds for the environment-only fraction [a]: tested given the "
+              "spatial vectors by permutation of residuals it is liberal when the residuals "
+              "and the environment are autocorrelated; the partial spectral randomisation "
+              "stays near α.", ""]
     return "\n".join(lines)
 
 

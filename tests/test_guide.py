@@ -18,6 +18,7 @@ import contextlib
 import importlib
 import importlib.util
 import io
+import json
 import re
 import shlex
 from pathlib import Path
@@ -235,6 +236,10 @@ class TestWorkedExample:
                 "tables/fractions.csv"} <= written
         assert (out / "figures").is_dir()
         assert "fractions (adjusted R²)" in capsys.readouterr().out
+        # what the guide says about this example's result
+        fractions = json.loads((out / "summary.json").read_text())["fractions"]
+        assert fractions["shared"] > fractions["environment_only"] > 0
+        assert -0.05 < fractions["space_only"] < 0.02
 
     def test_config_file_example_loads(self, folder):
         from spatial_ev.cli_run import load_config

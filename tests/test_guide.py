@@ -21,6 +21,7 @@ import io
 import json
 import re
 import shlex
+import shutil
 from pathlib import Path
 
 import nbformat
@@ -252,3 +253,99 @@ class TestWorkedExample:
         assert Path(args.sites) == folder / "sites.csv"
         assert args.crs == "EPSG:32633" and args.weighting == "gabriel/binary"
         assert args.permutations == 999 and args.seed == 1
+
+
+def _error_rows() -> list[str]:
+    text = GUIDE.read_text(encoding="utf-8")
+    section = text[text.index("## 3. Common errors"):text.index("## 4. Choosing")]
+    return re.findall(r"^\| `([^`]+)` \|", section, re.M)
+
+
+def _replace(path: Path, old: str, new: str, encoding: str = "utf-8") -> None:
+    text = path.read_text(encoding="utf-8")
+    assert old in text
+    path.write_bytes(text.replace(old, new, 1).encode(encoding))
+
+
+def _row(path: Path, site: str) -> str:
+    return next(r for r in path.read_text(encoding="utf-8").splitlines()
+                if r.startswith(f"{site},"))
+
+
+def _error_case(key: str, here: Path) -> list[str]:
+    """Command line, run in ``here`` (a copy of the guide's tables), that produces the error
+    whose message contains ``key``; the file it spoils is changed in place."""
+    s, sp, env = here / "sites.csv", here / "species.csv", here / "environment.csv"
+    crs = ["--crs", "EPSG:32633"]
+    check_species = ["check", "--sites", "sites.csv", "--species", "species.csv"] + crs
+    check_environment = ["check", "--sites", "sites.csv", "--environment",
+                         "environment.csv"] + crs
+    if key == "CSV coordinates need a reference system":
+        return ["check", "--sites", "sites.csv"]
+    if key == "look like longitude/latitude":
+        s.write_text("site,lon,lat\nA,10.1,50.2\nB,10.2,50.3\nC,10.3,50.1\nD,10.0,50.0\n"
+                     "E,10.4,50.4\n", encoding="utf-8")
+        return ["check", "--sites", "sites.csv"]
+    if key == "are missing from it":
+        lines = sp.read_text(encoding="utf-8").splitlines(keepends=True)
+        sp.write_text("".join(lines[:-2]), encoding="utf-8")
+        return check_species
+    if key == "duplicate site id(s)":
+        _replace(s, "\nP02,", "\nP01,")
+        return ["check", "--sites", "sites.csv"] + crs
+    if key == "which is not a number":
+        cells = _row(sp, "P05").split(",")
+        _replace(sp, _row(sp, "P05"), ",".join(cells[:2] + ["seven"] + cells[3:]))
+        return check_species
+    if key == "decimal comma":
+        env.write_text(env.read_text(encoding="utf-8").replace(",", ";").replace(".", ","),
+                       encoding="utf-8")
+        return check_environment
+    if key == "is not UTF-8 text":
+        _replace(env, "P01,5,4.9,unmown", "P01,5,4.9,fauché", encoding="latin-1")
+        return check_environment
+    if key == "have missing values":
+        _replace(env, "P07,15,", "P07,,")
+        return check_environment
+    if key == "have no species at all":
+        _replace(sp, _row(sp, "P05"), "P05" + ",0" * 5)
+        return check_species
+    if key == "cannot reach the corrected level":
+        return ["run", "--sites", "sites.csv", "--species", "species.csv", "--permutations",
+                "99", "--out", "never"] + crs
+    if key == "already exists":
+        (here / "fen-run").mkdir()
+        return ["run", "--sites", "sites.csv", "--species", "species.csv", "--out",
+                "fen-run"] + crs
+    if key == "contiguity graph is disconnected":
+        return ["eigen", "--sites", str(ROOT / "data_demo" / "lakes" / "lakes.gpkg"),
+                "--graph", "contiguity", "--out", "never"]
+    raise AssertionError(f"no case for the guide's error row containing {key!r}")
+
+
+_ERROR_KEYS = ["CSV coordinates need a reference system", "look like longitude/latitude",
+               "are missing from it", "duplicate site id(s)", "which is not a number",
+               "decimal comma", "is not UTF-8 text", "have missing values",
+               "have no species at all", "cannot reach the corrected level", "already exists",
+               "contiguity graph is disconnected"]
+
+
+class TestCommonErrors:
+    def test_every_row_has_a_case(self):
+        rows = _error_rows()
+        assert len(rows) == len(_ERROR_KEYS)
+        for row in rows:
+            assert sum(key in row for key in _ERROR_KEYS) == 1, row
+
+    @pytest.mark.parametrize("key", _ERROR_KEYS)
+    def test_message_in_the_guide_is_the_programs(self, key, folder, tmp_path, monkeypatch,
+                                                    capsys):
+        # each fragment of the shortened message (split at "...") appears in the real one
+        row = next(r for r in _error_rows() if key in r)
+        for name in ("sites.csv", "species.csv", "environment.csv"):
+            shutil.copy(folder / name, tmp_path / name)
+        monkeypatch.chdir(tmp_path)
+        assert main(_error_case(key, tmp_path)) == 2
+        message = capsys.readouterr().err
+        for fragment in (f.strip(" ;:") for f in row.split("...")):
+            assert fragment in message, f"{fragment!r} not in {message!r}"

@@ -349,3 +349,19 @@ class TestCommonErrors:
         message = capsys.readouterr().err
         for fragment in (f.strip(" ;:") for f in row.split("...")):
             assert fragment in message, f"{fragment!r} not in {message!r}"
+
+
+class TestGuideCoversTheTopics:
+    def test_sections(self):
+        headings = re.findall(r"^## (.+)$", GUIDE.read_text(encoding="utf-8"), re.M)
+        for topic in ("your own files", "Input files", "Common errors", "transformation",
+                      "connectivity and weights", "fractions and their tests",
+                      "scalogram and the scale maps", "Planning a survey", "dask"):
+            assert any(topic in h for h in headings), topic
+
+    def test_key_cautions_are_stated(self):
+        text = " ".join(GUIDE.read_text(encoding="utf-8").split())
+        for phrase in ("**not testable**", "**Inflation**", "Šidák-corrected level",
+                       "Moran spectral randomisation", "read them as zero",
+                       'engine="dask"', "--engine dask --scheduler", "LocalCluster"):
+            assert phrase in text, phrase

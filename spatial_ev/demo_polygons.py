@@ -195,12 +195,7 @@ def write_lake_survey(folder: str | os.PathLike, *,
     """
     from .report.layers import write_layers, write_table
 
-    folder = Path(folder)
-    if not folder.is_dir():
-        from .errors import InputError
-
-        raise InputError(f"folder {str(folder)!r} does not exist; create it first")
-    lakes = generate_lake_survey() if lakes is None else lakes
+    folder, lakes = _check_write(folder, lakes)
     paths = {"sites": folder / "lakes.gpkg", "species": folder / "species.csv",
              "environment": folder / "environment.csv", "truth": folder / "truth.json"}
     if paths["sites"].exists():
@@ -213,6 +208,22 @@ def write_lake_survey(folder: str | os.PathLike, *,
 
 
 # ------------------------------------------------------------------------------- internals
+
+def _check_write(folder: Any, lakes: Any) -> tuple[Path, LakeSurvey]:
+    from .errors import InputError
+
+    if not isinstance(folder, (str, os.PathLike)):
+        raise InputError(f"`folder` must be a path; got {type(folder).__name__}")
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise InputError(f"folder {str(folder)!r} does not exist; create it first")
+    if lakes is None:
+        return folder, generate_lake_survey()
+    if not isinstance(lakes, LakeSurvey):
+        raise InputError(f"`lakes` must be a LakeSurvey from generate_lake_survey() or None; "
+                         f"got {type(lakes).__name__}")
+    return folder, lakes
+
 
 def _centres(rng: np.random.Generator):
     """Lake radii, then non-overlapping centres (metres), basin labels and ids.

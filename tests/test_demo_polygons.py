@@ -176,3 +176,11 @@ class TestWriteLakeSurvey:
     def test_missing_folder_is_named(self, tmp_path):
         with pytest.raises(InputError, match=r"folder '.*nowhere' does not exist; create it"):
             P.write_lake_survey(tmp_path / "nowhere")
+
+    def test_folder_must_be_a_path(self):
+        with pytest.raises(InputError, match=r"`folder` must be a path; got int"):
+            P.write_lake_survey(3)
+
+    def test_lakes_must_be_a_lake_survey(self, tmp_path):
+        with pytest.raises(InputError, match=r"`lakes` must be a LakeSurvey .*; got dict"):
+            P.write_lake_survey(tmp_path, lakes={})

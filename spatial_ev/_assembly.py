@@ -21,10 +21,12 @@ import pyproj
 import shapely
 
 from . import _tables as T
-from .crs import check_geographic_ranges, crs_label, distance_unit_of, local_metric_crs
+from .crs import (MAX_SCALE_ERROR, check_geographic_ranges, crs_label, distance_unit_of,
+                  local_metric_crs, scale_range)
 from .errors import (CRSError, DroppedSitesWarning, DroppedSpeciesWarning,
                      DroppedVariablesWarning, GeographicCoordinatesWarning, InputError,
-                     MergedSitesWarning, ThreeDimensionalCoordinatesWarning)
+                     MapDistortionWarning, MergedSitesWarning,
+                     ThreeDimensionalCoordinatesWarning)
 
 __all__ = ["assemble", "MIN_SITES"]
 
@@ -168,9 +170,20 @@ def _working_crs(site_table, geometry, index, opts, tables) -> tuple[gpd.GeoSeri
         return projected, {"crs": local, "source_crs": crs_label(crs), "unit": "metre",
                            "note": note}
     unit = distance_unit_of(crs)
-    return geometry, {"crs": crs, "source_crs": crs_label(crs), "unit": unit,
-                      "note": f"projected CRS {crs_label(crs)} used as the working CRS; "
-                              f"distances in its map unit ({unit})"}
+    note = (f"projected CRS {crs_label(crs)} used as the working CRS; distances in its map "
+            f"unit ({unit})")
+    pts = geometry.representative_point()
+    low, high, utm = scale_range(crs, pts.x.to_numpy(), pts.y.to_numpy())
+    if max(high - 1.0, 1.0 - low) > MAX_SCALE_ERROR:  # NaN (unknown) compares False
+        shown = f"{low:.3g}" if round(low, 2) == round(high, 2) else f"{low:.3g} to {high:.3g}"
+        fix = f" (e.g. {utm})" if utm else ""
+        distortion = (f"map distances in {crs_label(crs)} are {shown} times the ground "
+                      f"distances at the sites, so scales, spacings and distances are in map "
+                      f"units of this CRS rather than ground distances; reproject the sites to "
+                      f"a CRS made for the region{fix} to get ground distances")
+        warnings.warn(f"sites {src}: {distortion}", MapDistortionWarning, stacklevel=4)
+        note = f"{note}; {distortion}"
+    return geometry, {"crs": crs, "source_crs": crs_label(crs), "unit": unit, "note": note}
 
 
 def _same_crs(a, b) -> bool:

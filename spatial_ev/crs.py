@@ -36,6 +36,7 @@ __all__ = [
     "check_geographic_ranges",
     "local_metric_crs",
     "looks_geographic_name",
+    "scale_range",
 ]
 
 # accepted spellings of local planar units -> canonical name (the name pyproj uses where any)
@@ -238,6 +239,44 @@ def local_metric_crs(lon: np.ndarray, lat: np.ndarray,
             f"most {100 * scale_error:.2g} % (farthest site {np.degrees(c) * 111.2:.0f} km "
             f"from the centre)")
     return crs, note
+
+
+def scale_range(crs: pyproj.CRS, x: np.ndarray, y: np.ndarray) -> tuple[float, float, str]:
+    """Smallest and largest point scale factor (map distance / ground distance) of a projected
+    CRS at the given map coordinates, along meridians and parallels, and a suggested UTM CRS.
+
+    The factors come from PROJ (``pyproj.Proj.get_factors``). Returns NaNs when PROJ cannot
+    compute them (the suggestion is then empty).
+
+    Examples
+    --------
+    >>> lo, hi, utm = scale_range(pyproj.CRS(3857), np.array([1669792.0]), np.array([8399738.0]))
+    >>> round(hi, 2), utm
+    (2.0, 'EPSG:32633')
+    """
+    try:
+        to_geo = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)
+        lon, lat = to_geo.transform(np.asarray(x, dtype=float), np.asarray(y, dtype=float))
+        factors = pyproj.Proj(crs).get_factors(lon, lat, errcheck=False)
+    except (pyproj.exceptions.PROJError, pyproj.exceptions.CRSError, ValueError, TypeError):
+        return float("nan"), float("nan"), ""
+    scales = np.concatenate([np.atleast_1d(factors.meridional_scale),
+                             np.atleast_1d(factors.parallel_scale)])
+    scales = scales[np.isfinite(scales) & (scales > 0)]
+    if not scales.size:
+        return float("nan"), float("nan"), ""
+    utm = ""
+    try:
+        from pyproj.aoi import AreaOfInterest
+        from pyproj.database import query_utm_crs_info
+
+        clon, clat = float(np.nanmean(lon)), float(np.nanmean(lat))
+        found = query_utm_crs_info(datum_name="WGS 84", area_of_interest=AreaOfInterest(
+            clon, clat, clon, clat))
+        utm = f"{found[0].auth_name}:{found[0].code}" if found else ""
+    except (pyproj.exceptions.PROJError, ValueError, TypeError):  # no suggestion then
+        utm = ""
+    return float(scales.min()), float(scales.max()), utm
 
 
 def _first_line(exc: BaseException) -> str:

@@ -25,6 +25,7 @@ __all__ = [
     "DisconnectedGraphWarning",
     "StandardisedCountsWarning",
     "MergedSitesWarning",
+    "MapDistortionWarning",
 ]
 
 
@@ -82,3 +83,8 @@ class StandardisedCountsWarning(SpatialEVWarning):
 
 class MergedSitesWarning(SpatialEVWarning):
     """Sites sharing coordinates were merged on the user's request."""
+
+
+class MapDistortionWarning(SpatialEVWarning):
+    """The working CRS's map distances differ from ground distances at the sites by more than
+    1 % (e.g. web Mercator away from the equator); results are in map units of that CRS."""

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import pyproj
@@ -124,3 +126,41 @@ class TestHelpers:
                                     source="sites", site_ids=["a", "b"])
         with pytest.raises(errors.CRSError, match="swapped"):
             check_geographic_ranges(np.array([45.0]), np.array([120.0]), source="sites")
+
+
+class TestScaleRange:
+    """Point scale factors from PROJ: web Mercator scales by 1/cos(latitude) (Snyder 1987,
+    Map Projections -- A Working Manual, USGS PP 1395, p. 44 [memory]); UTM by 0.9996 on its
+    central meridian (Snyder 1987, p. 57 [memory])."""
+
+    def test_web_mercator_and_utm(self):
+        import numpy as np
+        import pyproj
+
+        from spatial_ev.crs import scale_range
+
+        lon, lat = np.array([15.0, 15.1]), np.array([60.0, 60.1])
+        for code, expected in ((3857, 1 / np.cos(np.radians(lat))), (32633, [0.9996, 0.9996])):
+            crs = pyproj.CRS(code)
+            x, y = pyproj.Transformer.from_crs(4326, crs, always_xy=True).transform(lon, lat)
+            low, high, utm = scale_range(crs, x, y)
+            assert low == pytest.approx(min(expected), rel=1e-4)
+            assert high == pytest.approx(max(expected), rel=1e-4)
+            assert utm == "EPSG:32633"
+
+    def test_survey_warns_for_distorting_crs(self):
+        import geopandas as gpd
+        import numpy as np
+
+        from spatial_ev.errors import MapDistortionWarning
+        from spatial_ev.survey import Survey
+
+        pts = gpd.GeoSeries(gpd.points_from_xy(15 + np.arange(6) * 1e-3, 60 + np.arange(6) % 3
+                                               * 1e-3), crs=4326)
+        sites = gpd.GeoDataFrame({"site": list("abcdef")}, geometry=pts).set_index("site")
+        with pytest.warns(MapDistortionWarning, match=r"are 2 times the ground distances"):
+            survey = Survey.from_frames(sites.to_crs(3857))
+        assert "2 times the ground distances" in survey.projection_note
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", MapDistortionWarning)
+            Survey.from_frames(sites.to_crs(32633))

@@ -96,6 +96,8 @@ def write_gis_cases(folder: str | Path) -> list[str]:
     (out / "sites_no_prj.prj").unlink()
     # a projected GeoPackage, to combine with a conflicting --crs or a foreign-CRS table
     _points(frame).to_file(keep("sites_utm.gpkg"))
+    # web Mercator at 60 N: map distances twice the ground distances
+    _points(frame).to_crs("EPSG:3857").to_file(keep("sites_web_mercator.gpkg"))
     # species as a GeoJSON attribute table in another CRS (WGS 84)
     species = pd.read_csv(HERE / "good" / "species.csv", dtype={"site": str})
     lonlat = _point_features(frame, lonlat=True)

@@ -41,7 +41,7 @@ from . import __version__
 from ._validation import check_int, check_option, check_real, check_rng
 from .beta import BetaDiversity, beta_diversity
 from .canonical import RedundancyAnalysis, redundancy_analysis
-from .eigen import SpatialBasis, distance_eigenvectors
+from .eigen import DENSE_LIMIT, SpatialBasis, distance_eigenvectors
 from .errors import InputError, SpatialEVWarning
 from .partition import VariationPartition, partition_variation
 from .permutation import PermutationTest, permutation_test
@@ -57,6 +57,7 @@ from .transform import TRANSFORMATIONS, standardise_environment, transform
 __all__ = ["analyse", "Analysis", "ScaleClassFit", "TREND_OPTIONS", "ENVIRONMENT_TESTS"]
 
 TREND_OPTIONS = ("test", "ignore")
+_LARGE_SURVEY_VECTORS = 200  # broadest vectors kept per scheme above the dense-solver limit
 ENVIRONMENT_TESTS = ("spectral", "permutation")
 _GRID_CELLS = 3600  # target number of grid cells over the survey's bounding box
 
@@ -339,7 +340,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
             scale_breaks: Sequence[float] | None = None, trend: str = "test",
             engine: str = "local", scheduler: Any = None,
             progress: Callable[[str], None] | None = None,
-            environment_test: str = "spectral") -> Analysis:
+            environment_test: str = "spectral", max_vectors: int | None = None) -> Analysis:
     """Run the whole spatial-structure analysis of a survey.
 
     Parameters
@@ -383,6 +384,10 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         is significant. Skipped above
         :data:`~spatial_ev.spectral_randomisation.MAX_SITES` sites. ``"permutation"``: the
         free-permutation test only.
+    max_vectors : int, optional
+        Keep only the broadest spatial eigenvectors of each scheme. Default: all positive-I
+        vectors up to :data:`~spatial_ev.eigen.DENSE_LIMIT` sites, the 200 broadest above it
+        (recorded in the notes).
 
     Returns
     -------
@@ -398,6 +403,8 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
     alpha, n_permutations, seed, schemes, scale_breaks = _check_analysis(
         survey, transformation, spatial_weighting, schemes, alpha, n_permutations, seed,
         scale_breaks, trend, engine, environment_test)
+    if max_vectors is not None:
+        max_vectors = check_int("max_vectors", max_vectors, low=1)
     say = progress or (lambda message: None)
     # the seventh stream is new; the first six are unchanged by spawning one more
     streams = dict(zip(["trend", "environment", "space", "partition", "classes", "lcbd",
@@ -437,20 +444,24 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
                                                   run, alpha, notes, say)
 
         say(f"comparing {len(schemes)} spatial weighting scheme(s)")
+        if max_vectors is None and survey.n_sites > DENSE_LIMIT:
+            max_vectors = _LARGE_SURVEY_VECTORS
+            notes.append(f"With {survey.n_sites} sites only the {max_vectors} broadest spatial "
+                         f"eigenvectors of each scheme were computed (Lanczos); finer scales "
+                         f"were not examined. Raise `max_vectors` to look at finer scales.")
         weighting = compare_weighting_schemes(Y, survey, schemes=schemes, alpha=alpha,
                                               seed=streams["space"], conditioning=trend_vars,
-                                              progress=say, **run)
+                                              max_vectors=max_vectors, progress=say, **run)
         basis, space_sel = weighting.basis, weighting.selection
         if basis is None:
             notes.append("No spatial weighting scheme had a significant global test at the "
                          "corrected level: no spatial structure beyond the trend was "
                          "detected. Scales below refer to the distance-based basis.")
-            basis = distance_eigenvectors(survey)
+            basis = distance_eigenvectors(survey, max_vectors=max_vectors)
         chosen = weighting.best or "none"
 
         space_vars = _space_group(basis, space_sel, trend_vars)
-        env_vars = None if env_sel is None or not env_sel.selected \
-            else env[list(env_sel.selected)]
+        env_vars = _environment_group(env, env_sel, alpha, notes)
         partition, fractions, fraction_tests = _partition(
             Y, env, env_vars, env_sel, space_vars, weighting, streams["partition"], run, notes,
             say)
@@ -483,6 +494,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         "schemes": list(schemes), "chosen_scheme": chosen, "alpha": alpha,
         "n_permutations": n_permutations, "seed": seed, "scale_breaks": [float(b) for b in breaks],
         "engine": engine, "crs": survey.summary()["crs"], "environment_test": environment_test,
+        "max_vectors": max_vectors,
     }
     return Analysis(
         survey=survey, settings=settings, response=Y, environment=env, trend=trend_test,
@@ -543,6 +555,26 @@ def _spectral_fraction_test(Y, env_vars, space_vars, full: CompleteBasis, fracti
                      "residuals but not by spectral randomisation: part of it may be a chance "
                      "match between spatially autocorrelated residuals and environment.")
     return test
+
+
+def _environment_group(env: pd.DataFrame | None, selection: ForwardSelection | None,
+                       alpha: float, notes: list[str]) -> pd.DataFrame | None:
+    """The environmental group of the partition: the selected variables; or, when the global
+    test was significant but the adjusted-R² ceiling stopped selection before the first entry,
+    the whole table (its adjusted R² is an unbiased estimate, Peres-Neto et al. 2006)."""
+    if env is None or selection is None:
+        return None
+    if selection.selected:
+        return env[list(selection.selected)]
+    test = selection.global_test
+    if test is not None and test.p_value <= alpha:
+        notes.append("The environmental global test was significant, but the adjusted-R² "
+                     "ceiling of the double stopping rule stopped selection before the first "
+                     "variable (a strong variable among weak ones lifts the model above the "
+                     "global adjusted R²). The whole environmental table is used for the "
+                     "partition; its adjusted R² is unbiased.")
+        return env
+    return None
 
 
 def _space_group(basis: SpatialBasis, selection: ForwardSelection | None,

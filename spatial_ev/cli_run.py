@@ -43,6 +43,15 @@ def _analysis_options(parser: argparse.ArgumentParser) -> None:
                        help="permutations per test (default 999)")
     group.add_argument("--seed", type=int, default=None, metavar="N",
                        help="random seed (default: drawn and recorded in manifest.json)")
+    group.add_argument("--environment-test", default="spectral",
+                       choices=("spectral", "permutation"),
+                       help="test of the environment: 'spectral' (default) adds a Moran "
+                            "spectral randomisation test that allows for spatially "
+                            "autocorrelated environment; 'permutation' uses free permutations "
+                            "only")
+    group.add_argument("--max-vectors", type=int, default=None, metavar="K",
+                       help="keep only the K broadest spatial eigenvectors per scheme "
+                            "(default: all positive-I vectors; 200 above 3000 sites)")
     group.add_argument("--scale-breaks", type=float, nargs="+", default=None, metavar="D",
                        help="boundaries of the scale classes in map units (default: three "
                             "equal-size classes: broad, medium, fine)")
@@ -183,7 +192,8 @@ def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=Non
                          spatial_weighting=weighting, schemes=schemes, alpha=args.alpha,
                          n_permutations=args.permutations, seed=args.seed,
                          scale_breaks=args.scale_breaks, trend=args.trend, engine=args.engine,
-                         scheduler=args.scheduler, progress=progress)
+                         scheduler=args.scheduler, progress=progress,
+                         environment_test=args.environment_test, max_vectors=args.max_vectors)
         progress("writing the run folder")
         params = {"command_line": sys.argv[1:] if sys.argv else []}
         write_run_folder(result, out, overwrite=args.overwrite, inputs=inputs,

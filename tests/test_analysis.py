@@ -30,8 +30,8 @@ def demo_result(repo_root):
     folder = repo_root / "data_demo"
     survey = read_survey(folder / "sites.gpkg", folder / "species.csv",
                          folder / "environment.csv")
-    # 299 permutations: the smallest round number that reaches the Šidák level of 11 schemes
-    return analyse(survey, n_permutations=299, seed=20240917)
+    # 199 permutations reach the Šidák level of the 8 default schemes (α' = 0.0064 > 1/200)
+    return analyse(survey, n_permutations=199, seed=20240917)
 
 
 class TestAnalyseDemo:
@@ -39,17 +39,27 @@ class TestAnalyseDemo:
     def test_recovers_true_fractions(self, demo_result, repo_root):
         # The demo's expected fractions are the adjusted-R² partition (Peres-Neto et al. 2006,
         # Ecology 87:2614-2625) obtained with the true generating predictors, averaged over
-        # redraws of the sampling noise (data_demo/README.md). The analysis has to find the
-        # spatial predictors itself (eigenvectors + forward selection with double stopping,
-        # Blanchet et al. 2008, which is conservative by design), so its spatial fraction can
-        # only approximate the oracle's. Tolerance 0.08 per fraction: measured deviations on
-        # this survey are 0.01-0.07 (README table); a wrong fraction formula, a lost trend or a
-        # failed selection moves a fraction by 0.15 or more.
+        # redraws of the sampling noise (data_demo/README.md; their spread is ~0.004). The
+        # analysis has to find the spatial predictors itself, so:
+        # - environment-only and shared fractions come from the environmental side and the
+        #   broad gradients, which the design resolves well: within 0.05;
+        # - the space-only fraction can only be under-recovered: the 'fine' field has
+        #   wavelengths of 90-160 m, i.e. 2.25-4 grid intervals of 40 m, at the finest scale a
+        #   layout resolves (~2-4 sampling intervals, Nyquist-type reasoning [practice]), and
+        #   forward selection with double stopping is conservative by design (Blanchet,
+        #   Legendre & Borcard 2008, Ecology 89:2623-2632). Bound: between half the true value
+        #   and the true value + 0.05;
+        # - what is not recovered moves to the unexplained fraction: at most 0.12 above truth.
+        # A wrong fraction formula, a lost trend or a failed selection breaks these bounds.
         truth = json.loads((repo_root / "data_demo" / "truth.json").read_text())
         expected = truth["expected_fractions"]
-        for key, value in expected.items():
-            assert demo_result.fractions[key] == pytest.approx(value, abs=0.08), key
-        assert sum(demo_result.fractions.values()) == pytest.approx(1.0, abs=1e-12)
+        got = demo_result.fractions
+        assert got["environment_only"] == pytest.approx(expected["environment_only"], abs=0.05)
+        assert got["shared"] == pytest.approx(expected["shared"], abs=0.05)
+        assert 0.5 * expected["space_only"] <= got["space_only"] <= expected["space_only"] + 0.05
+        assert expected["unexplained"] - 0.05 <= got["unexplained"] \
+            <= expected["unexplained"] + 0.12
+        assert sum(got.values()) == pytest.approx(1.0, abs=1e-12)
         assert demo_result.fraction_tests["environment_only"] <= 0.05
         assert demo_result.fraction_tests["space_only"] <= 0.05
 
@@ -159,3 +169,41 @@ class TestAnalyseSmall:
         with pytest.raises(InputError, match="exactly one scheme"):
             analyse(small_survey(), spatial_weighting="single",
                     schemes=["distance", "gabriel/binary"])
+
+
+class TestAnalyseOptions:
+    def test_max_vectors_caps_the_basis(self):
+        res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
+                      n_permutations=99, seed=777, max_vectors=5)
+        assert res.basis.n_vectors == 5
+        assert res.settings["max_vectors"] == 5
+
+    def test_large_survey_default_is_recorded(self, monkeypatch):
+        import spatial_ev.analysis as module
+
+        monkeypatch.setattr(module, "DENSE_LIMIT", 50)  # treat the 64-site survey as large
+        res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
+                      n_permutations=99, seed=778)
+        assert res.settings["max_vectors"] == 200
+        assert any("broadest spatial eigenvectors" in note for note in res.notes)
+
+    def test_environment_group_fallback(self):
+        # Double stopping can stop before the first variable although the global test was
+        # significant (Blanchet et al. 2008 ceiling); the partition then uses the whole table.
+        from types import SimpleNamespace
+
+        from spatial_ev.analysis import _environment_group
+
+        env = pd.DataFrame({"a": [1.0, 2, 3], "b": [0.0, 1, 0]})
+        notes = []
+        stopped = SimpleNamespace(selected=(), global_test=SimpleNamespace(p_value=0.01))
+        assert _environment_group(env, stopped, 0.05, notes) is env
+        assert "ceiling" in notes[0]
+        rejected = SimpleNamespace(selected=(), global_test=SimpleNamespace(p_value=0.2))
+        assert _environment_group(env, rejected, 0.05, []) is None
+        chosen = SimpleNamespace(selected=("b",), global_test=None)
+        assert list(_environment_group(env, chosen, 0.05, []).columns) == ["b"]
+
+    def test_bad_max_vectors(self):
+        with pytest.raises(InputError, match="max_vectors"):
+            analyse(small_survey(), max_vectors=0)

@@ -77,6 +77,9 @@ class TestNotebooksRun:
                   if o.output_type == "error"]
         assert not errors
         assert all(c.execution_count is not None for c in nb.cells if c.cell_type == "code")
+        images = sum("image/png" in o.get("data", {}) for c in nb.cells
+                     if c.cell_type == "code" for o in c.outputs)
+        assert images >= 3  # figures are displayed as pictures, not as "<Figure ...>" text
         assert (out_folder / name).is_file()
         assert _read(name).cells[1].get("outputs") == []  # the repository copy is untouched
 

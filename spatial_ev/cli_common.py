@@ -15,7 +15,7 @@ from ._validation import check_option
 if TYPE_CHECKING:  # pragma: no cover
     from .survey import Survey
 
-__all__ = ["add_survey_options", "survey_from_args"]
+__all__ = ["add_survey_options", "read_options", "survey_from_args"]
 
 _SPECIES_MODES = ("optional", "required", "absent")
 
@@ -93,6 +93,27 @@ def add_survey_options(parser: argparse.ArgumentParser, *, species: str = "optio
     return parser
 
 
+def read_options(args: argparse.Namespace) -> dict:
+    """The survey-reading options of parsed :func:`add_survey_options` arguments, as keyword
+    arguments of :func:`spatial_ev.survey.read_survey` (recorded in run manifests so a run can
+    be rebuilt from its files).
+
+    Examples
+    --------
+    >>> args = add_survey_options(argparse.ArgumentParser()).parse_args(
+    ...     ["--sites", "s.csv", "--delimiter", "tab"])
+    >>> read_options(args)["delimiter"] == "\t"
+    True
+    """
+    tab = {"tab": "\t", "\\t": "\t"}
+    return {"site_id": args.site_id, "x": args.x, "y": args.y, "crs": args.crs,
+            "local_unit": args.local_unit,
+            "delimiter": tab.get(args.delimiter, args.delimiter), "decimal": args.decimal,
+            "encoding": args.encoding, "layer": args.layer,
+            "incomplete_sites": args.incomplete_sites,
+            "shared_coordinates": args.shared_coordinates}
+
+
 def survey_from_args(args: argparse.Namespace) -> Survey:
     """Read and validate the survey named by parsed :func:`add_survey_options` options.
 
@@ -104,15 +125,9 @@ def survey_from_args(args: argparse.Namespace) -> Survey:
     >>> args = add_survey_options(argparse.ArgumentParser()).parse_args(
     ...     ["--sites", "data_demo/sites.gpkg"])
     >>> survey_from_args(args).n_sites  # doctest: +SKIP
-    200
+    220
     """
     from .survey import read_survey
 
-    tab = {"tab": "\t", "\\t": "\t"}
-    delimiter = args.delimiter
-    delimiter = tab.get(delimiter, delimiter)
-    return read_survey(
-        args.sites, getattr(args, "species", None), getattr(args, "environment", None),
-        site_id=args.site_id, x=args.x, y=args.y, crs=args.crs, local_unit=args.local_unit,
-        delimiter=delimiter, decimal=args.decimal, encoding=args.encoding, layer=args.layer,
-        incomplete_sites=args.incomplete_sites, shared_coordinates=args.shared_coordinates)
+    return read_survey(args.sites, getattr(args, "species", None),
+                       getattr(args, "environment", None), **read_options(args))

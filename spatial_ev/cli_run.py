@@ -17,7 +17,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from .cli_common import add_survey_options, survey_from_args
+from .cli_common import add_survey_options, read_options, survey_from_args
 from .errors import InputError
 
 __all__ = ["configure_run", "execute_run", "configure_demo", "execute_demo", "load_config"]
@@ -174,7 +174,7 @@ class _Progress:
 
 
 def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=None,
-                       before_commit=None, title=None) -> Any:
+                       before_commit=None, title=None, reading=None) -> Any:
     from .analysis import analyse
     from .report.run_folder import write_run_folder
 
@@ -195,7 +195,8 @@ def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=Non
                          scheduler=args.scheduler, progress=progress,
                          environment_test=args.environment_test, max_vectors=args.max_vectors)
         progress("writing the run folder")
-        params = {"command_line": sys.argv[1:] if sys.argv else []}
+        params = {"command_line": sys.argv[1:] if sys.argv else [],
+                  "read_options": reading or {}}
         write_run_folder(result, out, overwrite=args.overwrite, inputs=inputs,
                          parameters=params, title=title, before_commit=before_commit)
     finally:
@@ -233,7 +234,7 @@ def execute_run(args: argparse.Namespace) -> int:
     if args.out is None:
         raise InputError("no output folder: give --out DIR (or `out` in the config file)")
     survey = survey_from_args(args)
-    result, elapsed = _analyse_and_write(survey, args, args.out)
+    result, elapsed = _analyse_and_write(survey, args, args.out, reading=read_options(args))
     for line in _final_lines(result, args.out, elapsed):
         print(line)
     return 0

@@ -73,7 +73,9 @@ def _input_file(folder: Path, role: str, entry: dict) -> Path:
 
 
 def _read_options(parameters: dict) -> dict:
-    """Survey-reading options from the recorded command line (defaults for demo runs)."""
+    """Survey-reading options as recorded (older folders: parsed from the command line)."""
+    if isinstance(parameters.get("read_options"), dict):
+        return dict(parameters["read_options"])
     line = parameters.get("command_line") or []
     if not line or line[0] != "run":
         return {}

@@ -151,3 +151,13 @@ class TestRunReportInBrowser:
         assert check.images_total >= 7 and check.images_broken == ()
         assert check.page_errors == () and check.console_messages == ()
         assert check.screenshot_std > 5.0
+
+
+def test_manifest_records_read_options(small_survey_files, tmp_path):
+    # A run folder must be rebuildable from its files alone: the reading options are recorded
+    # explicitly, not only as the command line.
+    out = tmp_path / "run-opts"
+    assert main(run_args(small_survey_files, out)) == 0
+    recorded = json.loads((out / "manifest.json").read_text())["parameters"]["read_options"]
+    assert recorded["x"] == "easting" and recorded["y"] == "northing"
+    assert recorded["crs"] == "EPSG:32633"

@@ -111,7 +111,10 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
     if not text.strip():
         raise InputError(f"{role} file {str(p)!r} is empty; it needs a header row and one row "
                          f"per site")
-    first_line = text.lstrip().splitlines()[0]
+    physical = text.splitlines(keepends=True)
+    skipped = next(i for i, line in enumerate(physical) if line.strip())  # blank lines on top
+    text = "".join(physical[skipped:])
+    first_line = text.splitlines()[0]
     delimiter = given if given is not None else _sniff_delimiter(first_line, p)
     if decimal == delimiter:  # a detected ',' delimiter: unquoted decimal commas are impossible
         decimal = "."
@@ -137,7 +140,7 @@ def read_csv_table(path: str | os.PathLike, *, role: str, delimiter: str | None 
                   dtype={names[id_at]: str}, keep_default_na=False, na_values=_NA_TOKENS,
                   decimal=decimal, skip_blank_lines=False)
     # spreadsheet exports add empty rows and unnamed empty columns: dropping them is lossless
-    lines = np.arange(len(body)) + 2  # file line of each record (header on line 1)
+    lines = np.arange(len(body)) + 2 + skipped  # file line of each record
     filled = body.notna().any(axis=1).to_numpy()
     body, lines = body[filled], lines[filled]
     if counter_column:

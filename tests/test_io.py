@@ -76,6 +76,10 @@ class TestReadCsvTable:
                                                     r"column 'site'"):
             self._read(tmp_path, ",site,A\np,s1,1\nq,s2,2\n")
 
+    def test_blank_lines_above_header(self, tmp_path):
+        frame = self._read(tmp_path, "\n  \nsite,A\ns1,1\n\ns2,2\n")
+        assert frame["A"].tolist() == [1, 2] and frame.attrs["lines"].tolist() == [4, 6]
+
     def test_title_line_above_header(self, tmp_path):
         with pytest.raises(errors.InputError, match="more fields than the header line"):
             self._read(tmp_path, "# field tablet export\nsite,A\ns1,1\n")

@@ -74,7 +74,7 @@ def _code_block_commands() -> list[tuple[str, str]]:
     out = []
     for source, text in _texts().items():
         for block in CODE_BLOCK.findall(text):
-            for line in block.splitlines():
+            for line in re.sub(r"\\\n\s*", " ", block).splitlines():  # join continued lines
                 line = line.split("  #")[0].strip()
                 if line.startswith("spatial-ev "):
                     out.append((source, line))
@@ -211,8 +211,9 @@ def folder(tmp_path_factory):
 
 class TestWorkedExample:
     def _command(self, name: str) -> list[str]:
-        lines = [line for _, line in _code_block_commands()
-                 if line.startswith(f"spatial-ev {name} --sites sites.csv")]
+        lines = [line for source, line in _code_block_commands()
+                 if source == "docs/guide.md"
+                 and line.startswith(f"spatial-ev {name} --sites sites.csv")]
         assert len(lines) == 1, lines
         return shlex.split(lines[0])[1:]
 

@@ -173,6 +173,8 @@ def _working_crs(site_table, geometry, index, opts, tables) -> tuple[gpd.GeoSeri
     note = (f"projected CRS {crs_label(crs)} used as the working CRS; distances in its map "
             f"unit ({unit})")
     pts = geometry.representative_point()
+    _check_not_degrees(pts.x.to_numpy(), pts.y.to_numpy(), crs, unit, src, index,
+                       declared=bool(site_table.extra.get("declared")))
     low, high, utm = scale_range(crs, pts.x.to_numpy(), pts.y.to_numpy())
     if max(high - 1.0, 1.0 - low) > MAX_SCALE_ERROR:  # NaN (unknown) compares False
         shown = f"{low:.3g}" if round(low, 2) == round(high, 2) else f"{low:.3g} to {high:.3g}"
@@ -184,6 +186,20 @@ def _working_crs(site_table, geometry, index, opts, tables) -> tuple[gpd.GeoSeri
         warnings.warn(f"sites {src}: {distortion}", MapDistortionWarning, stacklevel=4)
         note = f"{note}; {distortion}"
     return geometry, {"crs": crs, "source_crs": crs_label(crs), "unit": unit, "note": note}
+
+
+def _check_not_degrees(x, y, crs, unit, src, index, *, declared: bool) -> None:
+    """Degrees labelled with a projected CRS put every site within about 200 map units of the
+    CRS's false origin (far outside any projected CRS's area of use): refuse them."""
+    if not ((np.abs(x) <= 180).all() and (np.abs(y) <= 90).all()):
+        return
+    fix = ("pass crs='EPSG:4326' (--crs EPSG:4326) for WGS 84 degrees" if declared else
+           "the file's CRS is wrong: assign the geographic CRS (e.g. EPSG:4326) to the layer "
+           "in a GIS (define it, do not reproject)")
+    raise CRSError(f"sites {src}: every coordinate lies within ±180 / ±90 (e.g. site "
+                   f"{index[0]!r} at {x[0]:g}, {y[0]:g}), which in the projected CRS "
+                   f"{crs_label(crs)} puts all sites within about 200 {unit} of its false "
+                   f"origin; these look like longitude/latitude degrees: {fix}")
 
 
 def _same_crs(a, b) -> bool:

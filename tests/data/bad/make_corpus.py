@@ -96,6 +96,10 @@ def write_gis_cases(folder: str | Path) -> list[str]:
     (out / "sites_no_prj.prj").unlink()
     # a projected GeoPackage, to combine with a conflicting --crs or a foreign-CRS table
     _points(frame).to_file(keep("sites_utm.gpkg"))
+    # longitude/latitude written into a file that declares UTM (a wrongly assigned CRS)
+    keep("sites_degrees_labelled_utm.geojson")
+    (out / "sites_degrees_labelled_utm.geojson").write_text(_feature_collection(
+        _point_features(frame, lonlat=True), crs_member="urn:ogc:def:crs:EPSG::32633"))
     # web Mercator at 60 N: map distances twice the ground distances
     _points(frame).to_crs("EPSG:3857").to_file(keep("sites_web_mercator.gpkg"))
     # species as a GeoJSON attribute table in another CRS (WGS 84)

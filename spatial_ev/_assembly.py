@@ -214,8 +214,8 @@ def _coordinates(geometry: gpd.GeoSeries, gtype: str, index: pd.Index, source: s
     big = np.abs(xy).max(axis=1)
     if not np.isfinite(xy).all() or big.max() > MAX_COORDINATE:
         i = int(np.argmax(np.where(np.isfinite(big), big, np.inf)))
-        raise InputError(f"sites {source}: site {index[i]!r} has coordinates ({xy[i, 0]:g}, {xy[i, 1]:g}) "
-                         f"(working CRS, {unit}); coordinates beyond ±{MAX_COORDINATE:g} map "
+        raise InputError(f"sites {source}: site {index[i]!r} has coordinates "
+                         f"({xy[i, 0]:g}, {xy[i, 1]:g}) (working CRS, {unit}); coordinates beyond ±{MAX_COORDINATE:g} map "
                          f"units are not a survey on the ground: check the coordinate columns, "
                          f"the CRS and the unit")
     span = float(np.ptp(xy, axis=0).max())

@@ -216,7 +216,7 @@ FULL_RUNS = [pytest.param(c, id=c["id"], marks=[_NO_ENV_SELECTED]
 class TestOtherCommands:
     @pytest.mark.parametrize("case", SITE_ERRORS, ids=_ids(SITE_ERRORS))
     def test_eigen_exits_2_and_writes_nothing(self, case, in_corpus, tmp_path, capsys):
-        args = [a for a in file_args(case)]
+        args = file_args(case)
         for role in ("--species", "--environment"):  # `eigen` reads the site table only
             at = args.index(role)
             del args[at:at + 2]

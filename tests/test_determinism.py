@@ -75,21 +75,25 @@ class TestRepeatedRuns:
         assert not np.array_equal(b.trend.null_distribution, a.trend.null_distribution)
         pd.testing.assert_series_equal(c.beta.p_value, a.beta.p_value)
 
-    def test_run_folder_summary_json_identical(self, tmp_path):
+    def test_run_folder_summary_json_identical(self, tmp_path, cluster):
+        """Two local runs and one on a dask cluster write the same summary.json, byte for
+        byte (the engine is recorded in manifest.json, not in the summary)."""
         sites, species, env = make_small_survey_tables(n_side=6, n_species=8)
         for name, frame in (("sites", sites), ("species", species), ("environment", env)):
             frame.to_csv(tmp_path / f"{name}.csv", index=False)
         texts = []
-        for k in range(2):
+        engines = (["--engine", "local"], ["--engine", "local"],
+                   ["--engine", "dask", "--scheduler", cluster.scheduler_address])
+        for k, engine in enumerate(engines):
             out = tmp_path / f"run{k}"
             args = ["run", "--sites", str(tmp_path / "sites.csv"),
                     "--species", str(tmp_path / "species.csv"),
                     "--environment", str(tmp_path / "environment.csv"),
                     "--crs", "EPSG:32633", "--weighting", "distance", "--permutations", "49",
-                    "--seed", str(SEED), "--out", str(out), "--quiet"]
+                    "--seed", str(SEED), "--out", str(out), "--quiet", *engine]
             assert main(args) == 0
             texts.append((out / "summary.json").read_bytes())
-        assert texts[0] == texts[1]
+        assert texts[0] == texts[1] == texts[2]
         assert json.loads(texts[0])["seed"] == SEED
 
 

@@ -200,7 +200,7 @@ class Analysis:
         if self.environment_selection is None:
             return pd.DataFrame(columns=["variable", "r2_adj_cum", "p"])
         steps = self.environment_selection.steps
-        added = steps[steps["added"]]
+        added = steps[steps["added"].to_numpy(dtype=bool)]
         return pd.DataFrame({"variable": added["variable"].astype(str).to_numpy(),
                              "r2_adj_cum": added["r2_adj"].to_numpy(dtype=float),
                              "p": added["p_value"].to_numpy(dtype=float)})

@@ -94,7 +94,7 @@ class ForwardSelection:
     @property
     def r2_adj(self) -> float:
         """Adjusted R² of the selected model (0.0 when nothing was selected)."""
-        added = self.steps[self.steps["added"]]
+        added = self.steps[self.steps["added"].to_numpy(dtype=bool)]
         return float(added["r2_adj"].iloc[-1]) if len(added) else 0.0
 
     def to_frame(self) -> pd.DataFrame:

@@ -201,16 +201,9 @@ class TestCommandLine:
 
 
 SITE_ERRORS = [c for c in READ_ERRORS if "species" not in c and "environment" not in c]
-# Known defect (spatial_ev/analysis.py, Analysis.environment_table): when forward selection
-# keeps no environmental variable, `steps[steps["added"]]` indexes columns with an empty object
-# Series and raises KeyError('variable'), so `run` stops with an internal error (exit 1).
-# These small surveys select nothing; the spatial-only case shows the rest of the chain works.
-# Remove the marker when the defect is fixed (strict: an unexpected pass fails).
-_NO_ENV_SELECTED = pytest.mark.xfail(strict=True,
-                                     reason="Analysis.environment_table with nothing selected")
-FULL_RUNS = [pytest.param(c, id=c["id"], marks=[_NO_ENV_SELECTED]
-                          if c.get("environment") != "none" else [])
-             for c in WORKING if c.get("full_run")]
+# Small awkward-but-valid surveys analysed end to end (some select no environmental variable:
+# the chain must still write a whole run folder).
+FULL_RUNS = [pytest.param(c, id=c["id"]) for c in WORKING if c.get("full_run")]
 
 
 class TestOtherCommands:

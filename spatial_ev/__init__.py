@@ -26,7 +26,7 @@ _PUBLIC = {
     "graph_eigenvectors": "eigen",
     "SpatialBasis": "eigen",
     "morans_i": "moran",
-    "transform": "transform",
+    "transform": "transformations",
     "redundancy_analysis": "canonical",
     "forward_selection": "selection",
     "compare_weighting_schemes": "selection",

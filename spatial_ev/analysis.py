@@ -52,7 +52,7 @@ from .spectral_randomisation import (MAX_SITES, CompleteBasis, SpectralRandomisa
                                      complete_spatial_basis, distance_decay_weights,
                                      spectral_randomisation_test)
 from .survey import Survey
-from .transform import TRANSFORMATIONS, standardise_environment, transform
+from .transformations import TRANSFORMATIONS, standardise_environment, transform
 
 __all__ = ["analyse", "Analysis", "ScaleClassFit", "TREND_OPTIONS", "ENVIRONMENT_TESTS"]
 

@@ -1,7 +1,7 @@
 """Redundancy analysis (RDA): multivariate regression followed by a PCA of the fitted values.
 
 Model (Legendre & Legendre 2012, Numerical Ecology, ch. 11 [memory]): the response table Y
-(n sites x p species, usually transformed, see :mod:`spatial_ev.transform`) and the explanatory
+(n sites x p species, usually transformed, see :mod:`spatial_ev.transformations`) and the explanatory
 table X (n x m) are centred (the model always has an intercept). An orthonormal basis Q of the
 centred X comes from a column-pivoted QR decomposition; the fitted values are ``Q Q^T Y`` and
 their singular value decomposition gives the canonical axes. The residuals ``Y - Q Q^T Y`` give
@@ -451,11 +451,11 @@ def redundancy_analysis(Y: Table, X: Table | None = None, *,
     Parameters
     ----------
     Y : DataFrame or array, shape (n_sites, n_species)
-        Response table, usually transformed (:func:`spatial_ev.transform.transform`).
+        Response table, usually transformed (:func:`spatial_ev.transformations.transform`).
     X : DataFrame or array, shape (n_sites, n_variables), optional
         Explanatory variables; rank-deficient tables are handled (redundant columns do not
         count in the rank). Standardise variables in different units first
-        (:func:`spatial_ev.transform.standardise_environment`): it changes biplot scores,
+        (:func:`spatial_ev.transformations.standardise_environment`): it changes biplot scores,
         not R².
     conditioning : DataFrame or array, shape (n_sites, n_covariables), optional
         Covariables whose effect is removed first (partial RDA).

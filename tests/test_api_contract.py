@@ -43,7 +43,7 @@ def data(tmp_path_factory) -> dict:
     from spatial_ev.connectivity import neighbour_graph
     from spatial_ev.eigen import distance_eigenvectors
     from spatial_ev.survey import Survey
-    from spatial_ev.transform import transform
+    from spatial_ev.transformations import transform
 
     rng = np.random.default_rng(SEED)
     n = 30
@@ -317,9 +317,6 @@ class TestRegistry:
     def test_public_name_is_the_function(self, name, public_kinds):
         """A public name must stay the function even after its defining module has been
         imported (a submodule of the same name replaces the package attribute)."""
-        if name == "transform" and public_kinds[name] == "module":
-            pytest.xfail("spatial_ev/transform.py shadows the public function "
-                         "spatial_ev.transform once the module is imported")
         assert public_kinds[name] == "function"
 
     @pytest.mark.parametrize("name", sorted(CLASSES))

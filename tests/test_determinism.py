@@ -28,7 +28,7 @@ from spatial_ev.cli import main
 from spatial_ev.errors import SpatialEVWarning
 from spatial_ev.permutation import axis_tests, permutation_test, term_tests
 from spatial_ev.survey import Survey
-from spatial_ev.transform import transform
+from spatial_ev.transformations import transform
 
 SEED = 3_141_592_653
 FAST = dict(spatial_weighting="single", schemes="distance", n_permutations=99)

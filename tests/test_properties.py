@@ -35,7 +35,7 @@ from spatial_ev.moran import morans_i
 from spatial_ev.partition import partition_variation
 from spatial_ev.permutation import permutation_test
 from spatial_ev.survey import Survey
-from spatial_ev.transform import transform
+from spatial_ev.transformations import transform
 
 SETTINGS = settings(max_examples=12, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.too_slow])

@@ -293,7 +293,7 @@ class TestAnalyseOption:
     def test_spectral_test_recorded_everywhere(self):
         from spatial_ev.analysis import analyse
         from spatial_ev.report.context import analysis_context
-        from spatial_ev.transform import standardise_environment, transform
+        from spatial_ev.transformations import standardise_environment, transform
         survey = self.survey()
         result = analyse(survey, schemes="distance", spatial_weighting="single",
                          n_permutations=99, seed=20261202)

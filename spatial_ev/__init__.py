@@ -38,6 +38,9 @@ _PUBLIC = {
     "permutation_test": "permutation",
     "partition_variation": "partition",
     "analyse": "analysis",
+    "spectral_randomisation_test": "spectral_randomisation",
+    "spectral_coverage": "design",
+    "evaluate_design": "design",
 }
 
 __all__ = sorted(_PUBLIC) + ["__version__"]

@@ -68,8 +68,12 @@ def data(tmp_path_factory) -> dict:
         Y = transform(species, "hellinger")
         graph = neighbour_graph(coords, "gabriel")
         basis = distance_eigenvectors(coords)
+        from spatial_ev.analysis import analyse
+
+        pilot = analyse(survey, spatial_weighting="single", schemes="distance",
+                        n_permutations=49, seed=SEED)
     return {"ids": ids, "coords": coords, "species": species, "env": env, "Y": Y,
-            "graph": graph, "basis": basis, "survey": survey, "folder": folder,
+            "graph": graph, "basis": basis, "survey": survey, "folder": folder, "pilot": pilot,
             "paths": {k: folder / f"{k}.csv" for k in ("sites", "species", "environment")}}
 
 
@@ -199,6 +203,23 @@ CONTRACTS: dict[str, Contract] = {
         labels=lambda r, d: [(r.response.index, d["ids"]), (r.beta.lcbd.index, d["ids"]),
                              (r.basis.vectors.index, d["ids"])],
         bad=lambda d: _f("analyse")(d["survey"], n_permutations=5), bad_match=r"n_permutations"),
+    "spectral_randomisation_test": Contract(
+        lambda d: _f("spectral_randomisation_test")(d["Y"], d["env"], d["graph"],
+                                                    n_randomisations=49, seed=SEED),
+        ("Y", "environment", "spatial"), seeded=True,
+        bad=lambda d: _f("spectral_randomisation_test")(d["Y"], d["env"], d["graph"],
+                                                        n_randomisations=-1),
+        bad_match=r"n_randomisations"),
+    "spectral_coverage": Contract(
+        lambda d: _f("spectral_coverage")(d["pilot"], ["thin:every=2"]), ("pilot", "layouts"),
+        bad=lambda d: _f("spectral_coverage")(d["pilot"], ["hexagons:size=3"]),
+        bad_match=r"layout|hexagons"),
+    "evaluate_design": Contract(
+        lambda d: _f("evaluate_design")(d["pilot"], ["thin:every=2"], n_simulations=3,
+                                        n_permutations=19, seed=SEED, reference="none"),
+        ("pilot", "layouts"), seeded=True,
+        bad=lambda d: _f("evaluate_design")(d["pilot"], ["thin:every=2"], n_simulations=0),
+        bad_match=r"n_simulations"),
 }
 CLASSES = {"Survey": "from_frames", "NeighbourGraph": None, "SpatialBasis": None}
 FUNCTIONS = sorted(CONTRACTS)

@@ -367,8 +367,8 @@ class TestWeightingFigure:
         with pytest.raises(InputError, match="parameter `corrected_alpha` must be > 0.0 and "
                                              "<= 0.05; got 0.1"):
             weighting_figure(self.TABLE, corrected_alpha=0.1)
-        bad = self.TABLE.assign(p=[0.1, None, 0.2])
-        with pytest.raises(InputError, match="must hold a p-value for every scheme"):
+        bad = self.TABLE.assign(r2_adj=[0.1, float("inf"), 0.2])
+        with pytest.raises(InputError, match="infinite value; use NaN"):
             weighting_figure(bad)
 
 
@@ -524,3 +524,19 @@ class TestSiteMapFigure:
             site_map_figure(pts, column="score", palette="rainbow")
         with pytest.raises(InputError, match="must be a GeoDataFrame"):
             site_map_figure(pd.DataFrame({"score": [1.0]}), column="score")
+
+
+def test_weighting_figure_marks_schemes_without_selection_or_basis():
+    # a scheme whose global test failed has no adjusted R² (NaN); one that could not be built
+    # has no p-value either: both are labelled, not drawn, and the figure is still made
+    import pandas as pd
+
+    from spatial_ev.report.figures import weighting_figure
+
+    table = pd.DataFrame({"scheme": ["gabriel/binary", "delaunay/binary", "distance_band/linear"],
+                          "r2_adj": [0.12, float("nan"), float("nan")],
+                          "p": [0.002, 0.4, float("nan")]})
+    fig = weighting_figure(table, corrected_alpha=0.016952, chosen="gabriel/binary")
+    labels = [t.get_text().strip() for t in fig.axes[0].texts if t.get_gid() == "no-bar-label"]
+    assert labels == ["none selected", "not built"]
+    assert len(fig.axes[0].patches) == 1

@@ -539,7 +539,9 @@ def weighting_figure(table: pd.DataFrame, *, alpha: float = 0.05,
 
     Parameters
     ----------
-    table : DataFrame with columns ``scheme`` (str), ``r2_adj`` (float), ``p`` (float in (0, 1]).
+    table : DataFrame with columns ``scheme`` (str), ``r2_adj`` (float; NaN for a scheme under
+        which nothing was selected: no bar, labelled "none selected"), ``p`` (float in (0, 1];
+        NaN for a scheme that could not be built: no point, labelled "not built").
     alpha : nominal level.
     corrected_alpha : corrected level (e.g. Šidák for the number of schemes), or None.
     chosen : name of the retained scheme, or None.
@@ -559,10 +561,12 @@ def weighting_figure(table: pd.DataFrame, *, alpha: float = 0.05,
     if corrected_alpha is not None:
         corrected_alpha = check_real("corrected_alpha", corrected_alpha, low=0.0, high=alpha,
                                      low_inclusive=False)
-    r2 = ck.check_numeric("table['r2_adj']", frame["r2_adj"])
-    p = np.array([ck.check_p(v) for v in frame["p"]], dtype=float)
-    if np.isnan(p).any():
-        raise InputError("`table['p']` must hold a p-value for every scheme")
+    r2 = ck.check_numeric("table['r2_adj']", frame["r2_adj"], finite=False)
+    if np.isinf(r2).any():
+        raise InputError("`table['r2_adj']` has an infinite value; use NaN for a scheme under "
+                         "which nothing was selected")
+    p = np.array([np.nan if ck.check_p(v) is None else ck.check_p(v) for v in frame["p"]],
+                 dtype=float)
     schemes = [str(s) for s in frame["scheme"]]
     if chosen is not None and chosen not in schemes:
         raise InputError(f"`chosen` {chosen!r} is not one of the schemes {schemes}")
@@ -572,22 +576,29 @@ def weighting_figure(table: pd.DataFrame, *, alpha: float = 0.05,
     fig = Figure(figsize=(8.0, 1.3 + 0.36 * n), layout="constrained")
     ax_r, ax_p = fig.subplots(1, 2, sharey=True, width_ratios=[1.2, 1.0])
     colours = [st.group_colour(1) if s == chosen else st.MUTED for s in schemes]
-    ax_r.barh(y, r2, color=colours, height=0.6, zorder=2)
+    drawn = np.isfinite(r2)
+    ax_r.barh(y[drawn], r2[drawn], color=[c for c, d in zip(colours, drawn) if d], height=0.6,
+              zorder=2)
+    for yy, has_bar, has_p in zip(y, drawn, np.isfinite(p)):
+        if not has_bar:
+            ax_r.text(0, yy, "  none selected" if has_p else "  not built", va="center",
+                      ha="left", fontsize=8, color=st.MUTED, gid="no-bar-label")
     ax_r.axvline(0, color=st.INK, lw=0.8)
     ax_r.set_yticks(y, schemes)
     ax_r.set_xlabel("adjusted R² of the spatial model")
     ax_r.grid(axis="x", zorder=0)
     filled = p <= level
+    above = np.isfinite(p) & ~filled
     ax_p.scatter(p[filled], y[filled], s=40, color=[c for c, f in zip(colours, filled) if f],
                  zorder=3, gid="p-below-level")
-    ax_p.scatter(p[~filled], y[~filled], s=40, facecolor="white", zorder=3,
-                 edgecolor=[c for c, f in zip(colours, filled) if not f], gid="p-above-level")
+    ax_p.scatter(p[above], y[above], s=40, facecolor="white", zorder=3,
+                 edgecolor=[c for c, f in zip(colours, above) if f], gid="p-above-level")
     ax_p.set_xscale("log")
     ax_p.axvline(alpha, color=st.MUTED, ls=":", lw=1.2, label=f"nominal α = {alpha:g}")
     if corrected_alpha is not None:
         ax_p.axvline(corrected_alpha, color=st.INK, lw=1.3, gid="corrected-level",
                      label=f"corrected α′ = {corrected_alpha:.4g}")
-    lo = min(p.min(), level) / 3
+    lo = min(np.nanmin(p) if np.isfinite(p).any() else level, level) / 3
     ax_p.set_xlim(lo, 1.5)
     _log_axis(ax_p.xaxis, lo, 1.5)
     ax_p.set_xlabel("p-value (log axis; filled = at or below the level used)")

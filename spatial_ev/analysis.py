@@ -395,8 +395,10 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
 
     Examples
     --------
-    >>> from spatial_ev.demo_survey import demo_survey  # doctest: +SKIP
-    >>> result = analyse(demo_survey(), n_permutations=199, seed=1)  # doctest: +SKIP
+    >>> from spatial_ev import read_survey
+    >>> survey = read_survey("data_demo/sites.gpkg", "data_demo/species.csv",
+    ...                      "data_demo/environment.csv")  # doctest: +SKIP
+    >>> result = analyse(survey, n_permutations=199, seed=1)  # doctest: +SKIP
     >>> sorted(result.fractions)  # doctest: +SKIP
     ['environment_only', 'shared', 'space_only', 'unexplained']
     """

@@ -337,8 +337,9 @@ def _p_value(observed: float, null: np.ndarray) -> float:
     return (k + 1) / (null.size + 1)
 
 
-def _check_run(n_permutations, chunk_size, engine, progress):
-    n_permutations = check_int("n_permutations", n_permutations, low=0)
+def _check_run(n_permutations, chunk_size, engine, progress, *, count_name="n_permutations"):
+    """Validate the options every batched resampling test shares (count named by caller)."""
+    n_permutations = check_int(count_name, n_permutations, low=0)
     if chunk_size is not None:
         chunk_size = check_int("chunk_size", chunk_size, low=1)
     engine = check_option("engine", engine, ENGINES)

@@ -76,18 +76,17 @@ import numpy as np
 import pandas as pd
 from scipy import sparse
 
-from ._validation import as_matrix, check_int, check_option, check_rng
+from ._validation import as_matrix, check_int, check_rng
 from .canonical import _check_explanatory, _check_response, _column_basis, explained_fraction
-from .engines import ENGINES, run_tasks
+from .engines import run_tasks
 from .errors import InputError
-from .permutation import BLOCK_SIZE, _p_value, _reduce
+from .permutation import BLOCK_SIZE, _check_run, _p_value, _reduce
 
 __all__ = ["spectral_randomisation_test", "SpectralRandomisationTest", "spectral_randomisations",
            "complete_spatial_basis", "CompleteBasis", "distance_decay_weights", "MAX_SITES"]
 
 #: largest number of sites for which the complete basis (a dense eigendecomposition) is built
 MAX_SITES = 3000
-_DEFAULT_CHUNK = 2 * BLOCK_SIZE
 _PRODUCT_ELEMENTS = 2 ** 22   # largest (n − 1) × rank(X) × rank(Y) product table kept whole
 _BATCH_BYTES = 8 * 2 ** 20    # bound of the per-batch arrays of the fallback path
 
@@ -486,16 +485,6 @@ class SpectralRandomisationTest:
                 "environment's autocorrelation; higher-order spatial structure is not kept.")
 
 
-def _check_run(n_randomisations, chunk_size, engine, progress):
-    n_randomisations = check_int("n_randomisations", n_randomisations, low=0)
-    if chunk_size is not None:
-        chunk_size = check_int("chunk_size", chunk_size, low=1)
-    engine = check_option("engine", engine, ENGINES)
-    if progress is not None and not callable(progress):
-        raise InputError("parameter `progress` must be a callable progress(done, total) or None")
-    return n_randomisations, chunk_size or _DEFAULT_CHUNK, engine
-
-
 def _check_test_data(Y, environment, conditioning):
     y, rows, _ = _check_response(Y)
     x, x_cols = _check_explanatory("environment", environment, y.shape[0], rows)
@@ -589,8 +578,8 @@ def spectral_randomisation_test(
     >>> test.p_value
     0.005
     """
-    n_randomisations, chunk_size, engine = _check_run(n_randomisations, chunk_size, engine,
-                                                      progress)
+    n_randomisations, chunk_size, engine = _check_run(
+        n_randomisations, chunk_size, engine, progress, count_name="n_randomisations")
     yc, x, x_cols, qx, qw, rank, rows = _check_test_data(Y, environment, conditioning)
     n = yc.shape[0]
     basis = _basis_for(spatial, n, rows, "Y")

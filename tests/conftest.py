@@ -14,6 +14,22 @@ os.environ.setdefault("MPLBACKEND", "Agg")
 ROOT = Path(__file__).resolve().parents[1]
 
 
+def load_validation_studies():
+    """The simulation studies of validation/error_rates.py, imported once as a module (the
+    tests and the validation script share them)."""
+    import importlib.util
+    import sys
+
+    if "error_rates" in sys.modules:
+        return sys.modules["error_rates"]
+    spec = importlib.util.spec_from_file_location("error_rates",
+                                                  ROOT / "validation" / "error_rates.py")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules["error_rates"] = module      # dataclasses look their module up there
+    spec.loader.exec_module(module)
+    return module
+
+
 @pytest.fixture(scope="session")
 def repo_root() -> Path:
     """The repository's top folder."""

@@ -7,28 +7,19 @@ around α = 0.05 (scipy.stats.binom.interval) unless a comment says otherwise.
 
 from __future__ import annotations
 
-import importlib.util
-import sys
 
 import numpy as np
 import pytest
 from scipy import stats
 
-from conftest import ROOT
+from conftest import load_validation_studies
 from spatial_ev.canonical import explained_fraction
 
 REPS = 500
 
 
 def _studies():
-    if "error_rates" in sys.modules:
-        return sys.modules["error_rates"]
-    spec = importlib.util.spec_from_file_location("error_rates",
-                                                  ROOT / "validation" / "error_rates.py")
-    module = importlib.util.module_from_spec(spec)
-    sys.modules["error_rates"] = module      # dataclasses look their module up there
-    spec.loader.exec_module(module)
-    return module
+    return load_validation_studies()
 
 
 studies = _studies()

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import importlib.util
-import sys
 
 import numpy as np
 import pandas as pd
@@ -11,6 +9,7 @@ import pytest
 from scipy import stats
 from scipy.spatial.distance import cdist
 
+from conftest import load_validation_studies
 from spatial_ev.canonical import explained_fraction
 from spatial_ev.connectivity import neighbour_graph
 from spatial_ev.eigen import distance_eigenvectors
@@ -346,15 +345,7 @@ class TestAnalyseOption:
 # ------------------------------------------------------------------------------ simulations
 
 def _studies():
-    from conftest import ROOT
-    if "error_rates" in sys.modules:
-        return sys.modules["error_rates"]
-    spec = importlib.util.spec_from_file_location("error_rates",
-                                                  ROOT / "validation" / "error_rates.py")
-    module = importlib.util.module_from_spec(spec)
-    sys.modules["error_rates"] = module      # dataclasses look their module up there
-    spec.loader.exec_module(module)
-    return module
+    return load_validation_studies()
 
 
 @pytest.mark.slow

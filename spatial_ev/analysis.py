@@ -674,12 +674,9 @@ def _fit_classes(Yd: pd.DataFrame, basis: SpatialBasis, classes: list[ScaleClass
         cond = pd.concat([df for df in (trend_vars, basis.vectors[others] if others else None)
                           if df is not None], axis=1) if (trend_vars is not None or others) \
             else None
-        p = None
-        if len(selected) > len(names) or trend_vars is not None:
-            p = float(permutation_test(Yd, basis.vectors[names], conditioning=cond,
-                                       seed=stream, **run).p_value)
-        else:  # the only class and no trend: the marginal test
-            p = float(permutation_test(Yd, basis.vectors[names], seed=stream, **run).p_value)
+        # given the other classes and the trend; marginal when it is the only class (cond None)
+        p = float(permutation_test(Yd, basis.vectors[names], conditioning=cond, seed=stream,
+                                   **run).p_value)
         rda = redundancy_analysis(Yd, basis.vectors[names])
         u = basis.vectors[names].to_numpy()
         u = u - u.mean(axis=0)

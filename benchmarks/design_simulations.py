@@ -33,12 +33,12 @@ import numpy as np
 import scipy.linalg
 from threadpoolctl import threadpool_info
 
-import spatial_ev.canonical as canonical
-import spatial_ev.permutation as permutation
-from spatial_ev.analysis import analyse
-from spatial_ev.demo_survey import generate_demo_survey
-from spatial_ev.design import evaluate_design
-from spatial_ev.survey import Survey
+import spatial_ev.stats.canonical as canonical
+import spatial_ev.inference.permutation as permutation
+from spatial_ev.pipeline.analysis import analyse
+from spatial_ev.datasets.mudflat import generate_demo_survey
+from spatial_ev.design.evaluate import evaluate_design
+from spatial_ev.input.survey import Survey
 
 
 class KernelClock:
@@ -72,7 +72,7 @@ def instrument(clock: KernelClock) -> list:
         patched.append((owner, name, original))
 
     patch(permutation._Kernel, "__call__")
-    patch(canonical, "_column_basis")
+    patch(canonical, "column_basis")
     for name in ("qr", "lstsq", "svd", "eigh"):
         patch(np.linalg, name)
     for name in ("qr", "svd", "eigh"):

@@ -38,14 +38,14 @@ def clustered_layout(n: int, seed: int = 20_240_607) -> np.ndarray:
 
 def run_one(n: int, solver: str, k: int) -> dict:
     """Build the basis once in this process; return timings and peak memory."""
-    from spatial_ev.connectivity import _band_pairs, _check_coords, mst_threshold
-    from spatial_ev.eigen import distance_eigenvectors
+    from spatial_ev.space.geometry import band_pairs, check_coordinates, mst_threshold
+    from spatial_ev.space.eigen import distance_eigenvectors
 
     xy = clustered_layout(n)
     t0 = time.perf_counter()
-    layout = _check_coords(xy, distance="euclidean")
+    layout = check_coordinates(xy, distance="euclidean")
     t = mst_threshold(layout)
-    i, _, _ = _band_pairs(layout, t)
+    i, _, _ = band_pairs(layout, t)
     t_graph = time.perf_counter() - t0
     t0 = time.perf_counter()
     c0 = _cpu_seconds()

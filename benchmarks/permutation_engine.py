@@ -25,8 +25,8 @@ import time
 import numpy as np
 from threadpoolctl import threadpool_info, threadpool_limits
 
-from spatial_ev.canonical import _prepare
-from spatial_ev.permutation import permutation_test, permutations
+from spatial_ev.stats.linear import prepare_model
+from spatial_ev.inference.permutation import permutation_test, permutations
 
 N_SITES, N_SPECIES, N_PREDICTORS, N_PERMUTATIONS = 1000, 50, 100, 999
 SEED = 20260512
@@ -68,7 +68,7 @@ def main() -> None:
     rng = np.random.default_rng(SEED)
     x = rng.normal(size=(N_SITES, N_PREDICTORS))
     y = x[:, :5] @ rng.normal(size=(5, N_SPECIES)) * 0.1 + rng.normal(size=(N_SITES, N_SPECIES))
-    model = _prepare(y, x, None, require_x=True)
+    model = prepare_model(y, x, None, require_x=True)
     q, yc = model.qx, model.y
     perms = permutations(N_SITES, N_PERMUTATIONS, seed=np.random.default_rng(SEED + 1))
     stacked = yc.take(perms.T, axis=0).reshape(N_SITES, -1)          # already permuted data

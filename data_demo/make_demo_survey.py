@@ -6,7 +6,7 @@ Usage: python data_demo/make_demo_survey.py [FOLDER]   (default: the folder of t
 import sys
 from pathlib import Path
 
-from spatial_ev.demo_survey import write_demo_survey
+from spatial_ev.datasets.mudflat import write_demo_survey
 
 if __name__ == "__main__":
     folder = Path(sys.argv[1]) if len(sys.argv) > 1 else Path(__file__).resolve().parent

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .errors import InputError
+from spatial_ev.errors import InputError
 
 
 def import_distributed():

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.analysis (the whole chain) on the demo survey and small invented surveys."""
+"""Tests of spatial_ev.pipeline.analysis (the whole chain) on the demo survey and small invented surveys."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ import pandas as pd
 import pytest
 
 from conftest import make_small_survey_tables
-from spatial_ev.analysis import analyse
+from spatial_ev.pipeline.analysis import analyse
 from spatial_ev.errors import InputError
-from spatial_ev.survey import Survey, read_survey
+from spatial_ev.input.survey import Survey, read_survey
 
 CONTRACT_KEYS = {"n_sites", "n_species", "transformation", "crs", "distance_unit",
                  "spatial_basis", "global_tests", "selected", "fractions", "fraction_tests",
@@ -118,7 +118,7 @@ class TestAnalyseSmall:
     def test_grid_prediction_reproduces_sites(self):
         # The basis extension (Gower 1968 add-a-point, Nyström form) is exact at the sampled
         # sites [derived], so a "grid" made of the site coordinates must give the site scores.
-        from spatial_ev.analysis import _fit_classes
+        from spatial_ev.pipeline.analysis import _fit_classes
 
         res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
                       n_permutations=99, seed=4242)
@@ -179,7 +179,7 @@ class TestAnalyseOptions:
         assert res.settings["max_vectors"] == 5
 
     def test_large_survey_default_is_recorded(self, monkeypatch):
-        import spatial_ev.analysis as module
+        import spatial_ev.pipeline.analysis as module
 
         monkeypatch.setattr(module, "DENSE_LIMIT", 50)  # treat the 64-site survey as large
         res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
@@ -192,7 +192,7 @@ class TestAnalyseOptions:
         # significant (Blanchet et al. 2008 ceiling); the partition then uses the whole table.
         from types import SimpleNamespace
 
-        from spatial_ev.analysis import _environment_group
+        from spatial_ev.pipeline.analysis import _environment_group
 
         env = pd.DataFrame({"a": [1.0, 2, 3], "b": [0.0, 1, 0]})
         notes = []

@@ -40,10 +40,10 @@ SEED = 2_718_281_828
 @pytest.fixture(scope="module")
 def data(tmp_path_factory) -> dict:
     """A small survey keyed by non-contiguous integer site ids, in files and frames."""
-    from spatial_ev.connectivity import neighbour_graph
-    from spatial_ev.eigen import distance_eigenvectors
-    from spatial_ev.survey import Survey
-    from spatial_ev.transformations import transform
+    from spatial_ev.space.graphs import neighbour_graph
+    from spatial_ev.space.eigen import distance_eigenvectors
+    from spatial_ev.input.survey import Survey
+    from spatial_ev.stats.transform import transform
 
     rng = np.random.default_rng(SEED)
     n = 30
@@ -68,7 +68,7 @@ def data(tmp_path_factory) -> dict:
         Y = transform(species, "hellinger")
         graph = neighbour_graph(coords, "gabriel")
         basis = distance_eigenvectors(coords)
-        from spatial_ev.analysis import analyse
+        from spatial_ev.pipeline.analysis import analyse
 
         pilot = analyse(survey, spatial_weighting="single", schemes="distance",
                         n_permutations=49, seed=SEED)
@@ -326,7 +326,7 @@ class TestRegistry:
     def public_kinds() -> dict:
         """What each public name is in a fresh interpreter after the whole package (analysis,
         command line) has been imported."""
-        code = ("import inspect, json, spatial_ev, spatial_ev.analysis, spatial_ev.cli; "
+        code = ("import inspect, json, spatial_ev, spatial_ev.pipeline.analysis, spatial_ev.cli.main; "
                 "print(json.dumps({n: type(getattr(spatial_ev, n)).__name__ "
                 "for n in spatial_ev.__all__}))")
         proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
@@ -452,7 +452,7 @@ class TestSurveyFromFrames:
     """``Survey.from_frames``: the in-memory entry point of the public ``Survey`` class."""
 
     def test_contract(self, data, capsys):
-        from spatial_ev.survey import Survey
+        from spatial_ev.input.survey import Survey
 
         sites = data["coords"].assign(x=data["coords"]["x"] + 400_000)
         tables = {"sites": sites, "species": data["species"], "env": data["env"]}

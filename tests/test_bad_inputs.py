@@ -2,7 +2,7 @@
 
 Every case is checked three ways:
 
-* the library (:func:`spatial_ev.cli_common.survey_from_args`, i.e. :func:`read_survey` with the
+* the library (:func:`spatial_ev.cli.common.survey_from_args`, i.e. :func:`read_survey` with the
   case's options) raises exactly the documented error class with a message naming the file,
   column, line or site at fault — or, for inputs that must work, returns a survey and issues
   exactly the named warnings;
@@ -32,9 +32,9 @@ except ModuleNotFoundError:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
 from spatial_ev import errors
-from spatial_ev.cli import main
-from spatial_ev.cli_check import configure as configure_check
-from spatial_ev.cli_common import survey_from_args
+from spatial_ev.cli.main import main
+from spatial_ev.cli.check import configure as configure_check
+from spatial_ev.cli.common import survey_from_args
 
 BAD = Path(__file__).resolve().parent / "data" / "bad"
 CASES = tomllib.loads((BAD / "cases.toml").read_text(encoding="utf-8"))["case"]
@@ -154,7 +154,7 @@ class TestLibrary:
         assert list(survey.species.index) == list(survey.coords.index)
 
     def test_run_stage_errors(self, in_corpus):
-        from spatial_ev.analysis import analyse
+        from spatial_ev.pipeline.analysis import analyse
 
         for case in [c for c in ERRORS if c.get("command") == "run"]:
             with warnings.catch_warnings():
@@ -273,7 +273,7 @@ def _frames():
 
 
 def _survey(sites=None, species=None, environment=None, **kw):
-    from spatial_ev.survey import Survey
+    from spatial_ev.input.survey import Survey
 
     s0, y0 = _frames()
     with warnings.catch_warnings():

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.canonical against statsmodels, scikit-learn, numpy and published values."""
+"""Tests of spatial_ev.stats.canonical against statsmodels, scikit-learn, numpy and published values."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ import statsmodels.api as sm
 from scipy.spatial.distance import pdist
 from sklearn.decomposition import PCA
 
-from spatial_ev.canonical import (ExplainedFraction, adjusted_r2, explained_fraction,
-                                  redundancy_analysis)
+from spatial_ev.stats.canonical import redundancy_analysis
+from spatial_ev.stats.linear import ExplainedFraction, adjusted_r2, explained_fraction
 from spatial_ev.errors import InputError
 
 

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from spatial_ev import cli_check
-from spatial_ev.cli import build_parser, main
+from spatial_ev.cli import check as cli_check
+from spatial_ev.cli.main import COMMANDS, build_parser, main
 
 
 def _one_line(err: str) -> str:
@@ -29,7 +29,7 @@ class TestMain:
         def broken(args):
             raise KeyError("variable")
 
-        monkeypatch.setattr(cli_check, "execute", broken)
+        monkeypatch.setitem(COMMANDS, "check", COMMANDS["check"]._replace(execute=broken))
         assert main(["check", "--sites", "s.csv"]) == 1
         line = _one_line(capsys.readouterr().err)
         assert "internal error (KeyError: 'variable')" in line and "--debug" in line
@@ -40,7 +40,7 @@ class TestMain:
         def unwritable(args):
             raise PermissionError(13, "Permission denied", str(tmp_path / "out"))
 
-        monkeypatch.setattr(cli_check, "execute", unwritable)
+        monkeypatch.setitem(COMMANDS, "check", COMMANDS["check"]._replace(execute=unwritable))
         assert main(["check", "--sites", "s.csv"]) == 2
         line = _one_line(capsys.readouterr().err)
         assert "cannot access" in line and "Permission denied" in line and "out'" in line
@@ -69,7 +69,7 @@ class TestWarnings:
             print("described")
             return 0
 
-        monkeypatch.setattr(cli_check, "execute", noisy)
+        monkeypatch.setitem(COMMANDS, "check", COMMANDS["check"]._replace(execute=noisy))
         assert main(["check", "--sites", "s.csv"]) == 0
         out, err = capsys.readouterr()
         assert out == "described\n"
@@ -85,7 +85,7 @@ class TestWarnings:
             warnings.warn("dropped 'Y'", DroppedSpeciesWarning)
             raise InputError("bad cell")
 
-        monkeypatch.setattr(cli_check, "execute", failing)
+        monkeypatch.setitem(COMMANDS, "check", COMMANDS["check"]._replace(execute=failing))
         assert main(["check", "--sites", "s.csv"]) == 2
         line = _one_line(capsys.readouterr().err)
         assert line == ("spatial-ev check: error: bad cell (after 2 warning(s): "

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from spatial_ev.cli import main
+from spatial_ev.cli.main import main
 
 
 @pytest.fixture

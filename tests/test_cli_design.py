@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 import shapely
 
-from spatial_ev.cli import main
+from spatial_ev.cli.main import main
 
 FILES = {"design.json", "coverage.csv", "power.csv", "fractions.csv", "layouts.csv",
          "figures", "design_report.html", "layouts.gpkg"}

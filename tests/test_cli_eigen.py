@@ -7,10 +7,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from spatial_ev.cli import main
-from spatial_ev.connectivity import neighbour_graph
-from spatial_ev.eigen import distance_eigenvectors, graph_eigenvectors
-from spatial_ev.survey import read_survey
+from spatial_ev.cli.main import main
+from spatial_ev.space.graphs import neighbour_graph
+from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
+from spatial_ev.input.survey import read_survey
 
 
 @pytest.fixture(scope="module")

@@ -8,7 +8,7 @@ import geopandas as gpd
 import pytest
 
 from conftest import make_small_survey_tables
-from spatial_ev.cli import main
+from spatial_ev.cli.main import main
 
 FAST = ["--weighting", "distance", "--permutations", "99", "--seed", "20261202", "--quiet"]
 RUN_FILES = {"summary.json", "manifest.json", "report.html", "maps.gpkg", "figures", "tables"}

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.connectivity: neighbour graphs and edge weightings."""
+"""Tests of spatial_ev.space.graphs: neighbour graphs and edge weightings."""
 
 from __future__ import annotations
 
@@ -15,8 +15,8 @@ from scipy.sparse import csgraph
 from scipy.spatial import Delaunay
 from scipy.spatial.distance import cdist
 
-from spatial_ev.connectivity import (EARTH_RADIUS_M, NeighbourGraph, insertion_neighbours,
-                                     mst_threshold, neighbour_graph)
+from spatial_ev.space.geometry import EARTH_RADIUS_M, mst_threshold
+from spatial_ev.space.graphs import NeighbourGraph, insertion_neighbours, neighbour_graph
 from spatial_ev.errors import (DisconnectedGraphWarning, GeographicCoordinatesWarning,
                                GraphError, InputError)
 

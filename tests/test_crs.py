@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.crs: CRS parsing, range checks and the local metric projection."""
+"""Tests of spatial_ev.input.crs: CRS parsing, range checks and the local metric projection."""
 
 from __future__ import annotations
 
@@ -10,10 +10,10 @@ import pyproj
 import pytest
 
 from spatial_ev import errors
-from spatial_ev.crs import (check_geographic_ranges, crs_label, distance_unit_of,
+from spatial_ev.input.crs import (check_geographic_ranges, crs_label, distance_unit_of,
                             local_metric_crs, looks_geographic_name, normalise_local_unit,
                             parse_crs)
-from spatial_ev.survey import Survey
+from spatial_ev.input.survey import Survey
 
 
 def _pairwise_errors(lon, lat, max_km=100.0):
@@ -137,7 +137,7 @@ class TestScaleRange:
         import numpy as np
         import pyproj
 
-        from spatial_ev.crs import scale_range
+        from spatial_ev.input.crs import scale_range
 
         lon, lat = np.array([15.0, 15.1]), np.array([60.0, 60.1])
         for code, expected in ((3857, 1 / np.cos(np.radians(lat))), (32633, [0.9996, 0.9996])):
@@ -153,7 +153,7 @@ class TestScaleRange:
         import numpy as np
 
         from spatial_ev.errors import MapDistortionWarning
-        from spatial_ev.survey import Survey
+        from spatial_ev.input.survey import Survey
 
         pts = gpd.GeoSeries(gpd.points_from_xy(15 + np.arange(6) * 1e-3, 60 + np.arange(6) % 3
                                                * 1e-3), crs=4326)

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.demo_polygons: the invented lake survey (polygons in longitude/latitude).
+"""Tests of spatial_ev.datasets.lakes: the invented lake survey (polygons in longitude/latitude).
 
 Determinism and the committed files, the geometry (valid, non-overlapping, irregular, the
 projection round trip checked with pyproj), lake areas checked against geodesic areas on the
@@ -20,9 +20,9 @@ from scipy.spatial import cKDTree
 from sklearn.linear_model import LinearRegression
 from sklearn.metrics import r2_score
 
-from spatial_ev import demo_polygons as P
+from spatial_ev.datasets import lakes as P
 from spatial_ev.errors import GeographicCoordinatesWarning, InputError, SpatialEVWarning
-from spatial_ev.survey import read_survey
+from spatial_ev.input.survey import read_survey
 
 
 @pytest.fixture(scope="module")

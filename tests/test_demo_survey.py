@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.demo_survey: determinism, committed files, and the expected fractions."""
+"""Tests of spatial_ev.datasets.mudflat: determinism, committed files, and the expected fractions."""
 
 from __future__ import annotations
 
@@ -12,9 +12,9 @@ import pytest
 from sklearn.linear_model import LinearRegression
 from sklearn.metrics import r2_score
 
-from spatial_ev import demo_survey as D
+from spatial_ev.datasets import mudflat as D
 from spatial_ev.errors import SpatialEVWarning
-from spatial_ev.survey import read_survey
+from spatial_ev.input.survey import read_survey
 
 
 @pytest.fixture(scope="module")
@@ -81,7 +81,7 @@ class TestPartitionHelper:
         Q, _ = np.linalg.qr(np.column_stack([np.ones(20), rng.normal(size=(20, 6))]))
         Q = Q[:, 1:]  # orthonormal, orthogonal to the constant
         y = Q @ np.sqrt([0.15, 0.15, 0.1, 0.1, 0.0, 0.5])
-        a, b, c, d = D._partition(y[:, None], Q[:, :2], Q[:, 2:5])
+        a, b, c, d = D.oracle_partition(y[:, None], Q[:, :2], Q[:, 2:5])
         assert (a, b, c) == pytest.approx((0.271429, -0.053782, 0.103782), abs=1e-6)
         assert a + b + c + d == pytest.approx(1.0)
 

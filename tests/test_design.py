@@ -1,4 +1,4 @@
-"""Tests of spectral coverage and simulated power of candidate layouts (spatial_ev.design)."""
+"""Tests of spectral coverage and simulated power of candidate layouts (spatial_ev.design.evaluate)."""
 
 from __future__ import annotations
 
@@ -9,12 +9,12 @@ import pandas as pd
 import pytest
 import shapely
 
-from spatial_ev.analysis import analyse
-from spatial_ev.design import (DesignEvaluation, evaluate_design, layout_basis,
+from spatial_ev.pipeline.analysis import analyse
+from spatial_ev.design.evaluate import (DesignEvaluation, evaluate_design, layout_basis,
                                spectral_coverage)
 from spatial_ev.errors import DesignError, InputError
-from spatial_ev.layouts import grid_layout, transect_layout
-from spatial_ev.survey import Survey
+from spatial_ev.design.layouts import grid_layout, transect_layout
+from spatial_ev.input.survey import Survey
 
 
 def _grid_survey(n_side: int = 12, spacing: float = 10.0, seed: int = 20261202) -> Survey:
@@ -198,7 +198,7 @@ class TestEvaluateDesign:
 
 @pytest.fixture(scope="module")
 def demo_pilot():
-    from spatial_ev.demo_survey import generate_demo_survey
+    from spatial_ev.datasets.mudflat import generate_demo_survey
 
     demo = generate_demo_survey()
     survey = Survey.from_frames(demo.sites, demo.species, demo.environment)

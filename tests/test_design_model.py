@@ -1,4 +1,4 @@
-"""Tests of the pilot model used as a data generator (spatial_ev.design_model)."""
+"""Tests of the pilot model used as a data generator (spatial_ev.design.simulate)."""
 
 from __future__ import annotations
 
@@ -8,13 +8,13 @@ import pandas as pd
 import pytest
 from scipy.spatial.distance import cdist
 
-from spatial_ev.analysis import analyse
-from spatial_ev.design_model import (_LayoutModel, _layout_model, _owners, _pilot_model,
+from spatial_ev.pipeline.analysis import analyse
+from spatial_ev.design.simulate import (_LayoutModel, layout_model, _owners, pilot_model,
                                      environment_at)
-from spatial_ev.design import layout_basis
+from spatial_ev.design.evaluate import layout_basis
 from spatial_ev.errors import InputError
-from spatial_ev.layouts import CandidateLayout
-from spatial_ev.survey import Survey
+from spatial_ev.design.layouts import CandidateLayout
+from spatial_ev.input.survey import Survey
 from conftest import make_small_survey_tables
 
 
@@ -92,10 +92,10 @@ class TestPilotModel:
         # at the pilot's own sites the generating signal is the least-squares fit of the
         # transformed community on trend + selected environment + selected vectors
         # (numpy lstsq as the oracle)
-        model = _pilot_model(pilot)
+        model = pilot_model(pilot)
         lay = CandidateLayout("pilot", "pilot", pilot.survey.coords[["x", "y"]], None, {})
         basis, _, _ = layout_basis(lay.coords.to_numpy(), "distance")
-        lm, info = _layout_model(pilot, model, lay, basis, None)
+        lm, info = layout_model(pilot, model, lay, basis, None)
         Y = pilot.response.to_numpy()
         parts = []
         if pilot.trend_kept:

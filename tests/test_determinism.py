@@ -8,7 +8,7 @@ summaries are compared as whole dictionaries. The permutation engine itself is c
 null distributions (to 1e-12 relative) and p-values (exactly).
 
 ``analyse`` takes no ``chunk_size``; the chunk-size invariance is tested where chunks are
-chosen, in :func:`spatial_ev.permutation.permutation_test`, :func:`axis_tests` and
+chosen, in :func:`spatial_ev.inference.permutation.permutation_test`, :func:`axis_tests` and
 :func:`term_tests`, which every test of the analysis goes through.
 """
 
@@ -24,11 +24,11 @@ from threadpoolctl import threadpool_info, threadpool_limits
 
 from conftest import make_small_survey_tables
 from spatial_ev import analyse
-from spatial_ev.cli import main
+from spatial_ev.cli.main import main
 from spatial_ev.errors import SpatialEVWarning
-from spatial_ev.permutation import axis_tests, permutation_test, term_tests
-from spatial_ev.survey import Survey
-from spatial_ev.transformations import transform
+from spatial_ev.inference.permutation import axis_tests, permutation_test, term_tests
+from spatial_ev.input.survey import Survey
+from spatial_ev.stats.transform import transform
 
 SEED = 3_141_592_653
 FAST = dict(spatial_weighting="single", schemes="distance", n_permutations=99)
@@ -133,7 +133,7 @@ class TestChunkSizes:
                                    b.select_dtypes("number").to_numpy(), rtol=1e-12)
 
     def test_lcbd_test(self, model):
-        from spatial_ev.beta import beta_diversity
+        from spatial_ev.stats.beta import beta_diversity
 
         Y, _, _ = model
         base = beta_diversity(Y, n_permutations=99, seed=SEED)

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.eigen: distance-based and graph-based spatial eigenvectors."""
+"""Tests of spatial_ev.space.eigen: distance-based and graph-based spatial eigenvectors."""
 
 from __future__ import annotations
 
@@ -7,10 +7,11 @@ import pandas as pd
 import pytest
 from scipy.spatial.distance import cdist
 
-from spatial_ev.connectivity import mst_threshold, neighbour_graph
-from spatial_ev.eigen import SpatialBasis, distance_eigenvectors, graph_eigenvectors
+from spatial_ev.space.geometry import mst_threshold
+from spatial_ev.space.graphs import neighbour_graph
+from spatial_ev.space.eigen import SpatialBasis, distance_eigenvectors, graph_eigenvectors
 from spatial_ev.errors import InputError
-from spatial_ev.moran import morans_i
+from spatial_ev.space.moran import morans_i
 
 SEEDS = [2_147_483_647, 305_175_781, 9_999_991]
 
@@ -265,7 +266,7 @@ class TestGreatCircle:
         # planar distances differ from great-circle ones by ~1e-7 relative [derived].
         import pyproj
 
-        from spatial_ev.connectivity import EARTH_RADIUS_M
+        from spatial_ev.space.geometry import EARTH_RADIUS_M
         rng = np.random.default_rng(SEEDS[0])
         lonlat = np.column_stack([-4.0 + rng.uniform(0, 0.05, 120),
                                   52.0 + rng.uniform(0, 0.03, 120)])

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.engines: task order, progress, thread pool and dask.distributed."""
+"""Tests of spatial_ev.inference.engines: task order, progress, thread pool and dask.distributed."""
 
 from __future__ import annotations
 
@@ -7,8 +7,8 @@ import time
 
 import pytest
 
-from spatial_ev import engines
-from spatial_ev.engines import run_tasks
+from spatial_ev.inference import engines
+from spatial_ev.inference.engines import run_tasks
 from spatial_ev.errors import InputError
 
 

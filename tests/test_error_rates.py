@@ -13,7 +13,7 @@ import pytest
 from scipy import stats
 
 from conftest import load_validation_studies
-from spatial_ev.canonical import explained_fraction
+from spatial_ev.stats.linear import explained_fraction
 
 REPS = 500
 

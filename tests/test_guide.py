@@ -1,7 +1,7 @@
 """The user guide, README and notebooks mention only commands, options and names that exist.
 
 * every ``spatial-ev COMMAND --option`` line in docs/guide.md, README.md and the notebooks names
-  a real command and real options of ``spatial_ev.cli.build_parser()``; command lines in code
+  a real command and real options of ``spatial_ev.cli.main.build_parser()``; command lines in code
   blocks parse completely;
 * every ``--option`` mentioned in the guide belongs to some command;
 * every ``spatial_ev.<name>`` and ``from spatial_ev[.module] import X`` resolves;
@@ -27,7 +27,7 @@ from pathlib import Path
 import nbformat
 import pytest
 
-from spatial_ev.cli import build_parser, main
+from spatial_ev.cli.main import build_parser, main
 
 ROOT = Path(__file__).resolve().parents[1]
 GUIDE = ROOT / "docs" / "guide.md"
@@ -244,7 +244,7 @@ class TestWorkedExample:
         assert -0.05 < fractions["space_only"] < 0.02
 
     def test_config_file_example_loads(self, folder):
-        from spatial_ev.cli_run import load_config
+        from spatial_ev.cli.run import load_config
 
         toml = re.search(r"```toml\n(.*?)```", _own_files_section(), re.S).group(1)
         (folder / "analysis.toml").write_text(toml, encoding="utf-8")

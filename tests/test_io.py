@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.io: CSV quirks, GIS layers and numeric parsing."""
+"""Tests of spatial_ev.input.io: CSV quirks, GIS layers and numeric parsing."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import pytest
 import shapely
 
 from spatial_ev import errors
-from spatial_ev.io import file_format, numeric_hint, parse_numeric, read_csv_table, read_vector
+from spatial_ev.input.io import file_format, numeric_hint, parse_numeric, read_csv_table, read_vector
 
 
 class TestFileFormat:

@@ -1,4 +1,4 @@
-"""Tests of the candidate-layout builders and the layout spec syntax (spatial_ev.layouts)."""
+"""Tests of the candidate-layout builders and the layout spec syntax (spatial_ev.design.layouts)."""
 
 from __future__ import annotations
 
@@ -13,7 +13,7 @@ import shapely
 from scipy.spatial import cKDTree
 
 from spatial_ev.errors import DesignError, InputError
-from spatial_ev.layouts import (augmented_layout, build_layout, file_layout, grid_layout,
+from spatial_ev.design.layouts import (augmented_layout, build_layout, file_layout, grid_layout,
                                 parse_layout_spec, thinned_layout, transect_layout)
 
 

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.moran: Moran's I, its moments and tests, and correlograms."""
+"""Tests of spatial_ev.space.moran: Moran's I, its moments and tests, and correlograms."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from scipy import sparse
 from scipy.spatial.distance import cdist
 
 from spatial_ev.errors import InputError
-from spatial_ev.moran import moran_correlogram, morans_i
+from spatial_ev.space.moran import moran_correlogram, morans_i
 
 SEEDS = [31_415_926_535, 27_182_818_284, 16_180_339_887]
 
@@ -90,7 +90,7 @@ class TestMoransI:
         assert t.p_normal.iloc[0] == pytest.approx(2 * g.p_normal.iloc[0])
 
     def test_accepts_graph_and_basis(self):
-        from spatial_ev.connectivity import neighbour_graph
+        from spatial_ev.space.graphs import neighbour_graph
         xy = np.column_stack([np.arange(12.0), np.zeros(12)])
         g = neighbour_graph(xy, "gabriel")
         res = morans_i(np.sin(np.arange(12) / 2), g)

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.partition (variation partitioning among 2–4 groups)."""
+"""Tests of spatial_ev.selection.partition (variation partitioning among 2–4 groups)."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ import statsmodels.api as sm
 from scipy import stats
 
 from spatial_ev.errors import InputError
-from spatial_ev.partition import VariationPartition, partition_variation
-from spatial_ev.permutation import permutation_test
+from spatial_ev.selection.partition import VariationPartition, partition_variation
+from spatial_ev.inference.permutation import permutation_test
 
 
 def _orthonormal_centred(n: int, k: int, seed: int) -> np.ndarray:

@@ -11,10 +11,12 @@ import pytest
 import scipy.stats
 import statsmodels.api as sm
 
-from spatial_ev.canonical import explained_fraction, redundancy_analysis
+from spatial_ev.stats.canonical import redundancy_analysis
+from spatial_ev.stats.linear import explained_fraction
 from spatial_ev.errors import InputError
-from spatial_ev.permutation import (BLOCK_SIZE, PermutationTest, axis_tests, permutation_test,
-                                    permutations, term_tests)
+from spatial_ev.inference.permutation import (
+    PermutationTest, axis_tests, permutation_test, permutations, term_tests)
+from spatial_ev.inference.null import BLOCK_SIZE
 
 
 def data(seed: int, n: int = 30, p: int = 5, m: int = 3, k: int = 2, effect: float = 0.5):
@@ -164,7 +166,7 @@ class TestPermutationTest:
         # dask workers in other processes receive the batched kernel by pickling
         import pickle
 
-        from spatial_ev import permutation as engine_module
+        from spatial_ev.inference import permutation as engine_module
 
         y, x, w = data(1357913579)
         sent = []

@@ -1,4 +1,4 @@
-"""Tests of rebuilding a pilot analysis from a run folder (spatial_ev.pilot_folder)."""
+"""Tests of rebuilding a pilot analysis from a run folder (spatial_ev.pipeline.rerun)."""
 
 from __future__ import annotations
 
@@ -10,9 +10,9 @@ from unittest import mock
 import pytest
 
 from conftest import make_small_survey_tables
-from spatial_ev.cli import main
+from spatial_ev.cli.main import main
 from spatial_ev.errors import DesignError, InputError
-from spatial_ev.pilot_folder import load_pilot
+from spatial_ev.pipeline.rerun import load_pilot
 
 
 @pytest.fixture(scope="module")
@@ -84,7 +84,7 @@ class TestLoadPilot:
 
 class TestDesignFromFolder:
     def test_evaluate_design_takes_the_folder(self, run_folder):
-        from spatial_ev.design import evaluate_design, spectral_coverage
+        from spatial_ev.design.evaluate import evaluate_design, spectral_coverage
 
         out, _ = run_folder
         cov = spectral_coverage(out, ["thin:every=2"])

@@ -28,14 +28,14 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from spatial_ev.canonical import redundancy_analysis
-from spatial_ev.connectivity import neighbour_graph
-from spatial_ev.eigen import distance_eigenvectors, graph_eigenvectors
-from spatial_ev.moran import morans_i
-from spatial_ev.partition import partition_variation
-from spatial_ev.permutation import permutation_test
-from spatial_ev.survey import Survey
-from spatial_ev.transformations import transform
+from spatial_ev.stats.canonical import redundancy_analysis
+from spatial_ev.space.graphs import neighbour_graph
+from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
+from spatial_ev.space.moran import morans_i
+from spatial_ev.selection.partition import partition_variation
+from spatial_ev.inference.permutation import permutation_test
+from spatial_ev.input.survey import Survey
+from spatial_ev.stats.transform import transform
 
 SETTINGS = settings(max_examples=12, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.too_slow])

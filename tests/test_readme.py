@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import re
 
-from spatial_ev.cli import build_parser
+from spatial_ev.cli.main import build_parser
 
 
 def quick_start_commands(readme: str) -> list[str]:

@@ -7,9 +7,9 @@ import pandas as pd
 import pytest
 import shapely
 
-from spatial_ev.design import DesignEvaluation, SpectralCoverage, layout_basis
+from spatial_ev.design.evaluate import DesignEvaluation, SpectralCoverage, layout_basis
 from spatial_ev.errors import InputError
-from spatial_ev.layouts import grid_layout
+from spatial_ev.design.layouts import grid_layout
 from spatial_ev.report.design_report import (coverage_figure, layer_name, layout_map_figure,
                                              power_figure, render_design_report)
 

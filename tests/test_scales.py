@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.scales (scalogram and scale classes)."""
+"""Tests of spatial_ev.space.scales (scalogram and scale classes)."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import pytest
 import statsmodels.api as sm
 
 from spatial_ev.errors import InputError
-from spatial_ev.scales import classify_scales, default_scale_breaks, scalogram
+from spatial_ev.space.scales import classify_scales, default_scale_breaks, scalogram
 
 
 def centred_orthonormal_basis(n, rng):

@@ -10,13 +10,13 @@ from scipy import stats
 from scipy.spatial.distance import cdist
 
 from conftest import load_validation_studies
-from spatial_ev.canonical import explained_fraction
-from spatial_ev.connectivity import neighbour_graph
-from spatial_ev.eigen import distance_eigenvectors
+from spatial_ev.stats.linear import explained_fraction
+from spatial_ev.space.graphs import neighbour_graph
+from spatial_ev.space.eigen import distance_eigenvectors
 from spatial_ev.errors import InputError
-from spatial_ev.moran import morans_i
-from spatial_ev.permutation import permutation_test
-from spatial_ev.spectral_randomisation import (_signs, complete_spatial_basis,
+from spatial_ev.space.moran import morans_i
+from spatial_ev.inference.permutation import permutation_test
+from spatial_ev.inference.spectral import (_signs, complete_spatial_basis,
                                                distance_decay_weights,
                                                spectral_randomisation_test,
                                                spectral_randomisations)
@@ -193,7 +193,7 @@ class TestSpectralRandomisationTest:
             other = spectral_randomisation_test(self.y, self.env, full, **kw, **extra)
             assert other.p_value == ref.p_value
             assert np.allclose(other.null_distribution, ref.null_distribution, rtol=1e-12)
-        import spatial_ev.spectral_randomisation as msr
+        import spatial_ev.inference.spectral as msr
         monkeypatch.setattr(msr, "_PRODUCT_ELEMENTS", 0)      # batched fallback path
         monkeypatch.setattr(msr, "_BATCH_BYTES", 8 * 39 * 3 * 10)
         other = spectral_randomisation_test(self.y, self.env, self.basis, **kw)
@@ -282,7 +282,7 @@ class TestAnalyseOption:
     @staticmethod
     def survey(environment: bool = True):
         from conftest import make_small_survey_tables
-        from spatial_ev.survey import Survey
+        from spatial_ev.input.survey import Survey
         sites, species, env = make_small_survey_tables(n_side=6, n_species=8)
         frame = sites.set_index("site").rename(columns={"easting": "x", "northing": "y"})
         return Survey.from_frames(frame, species.set_index("site"),
@@ -290,9 +290,9 @@ class TestAnalyseOption:
                                   crs="EPSG:32633")
 
     def test_spectral_test_recorded_everywhere(self):
-        from spatial_ev.analysis import analyse
+        from spatial_ev.pipeline.analysis import analyse
         from spatial_ev.report.context import analysis_context
-        from spatial_ev.transformations import standardise_environment, transform
+        from spatial_ev.stats.transform import standardise_environment, transform
         survey = self.survey()
         result = analyse(survey, schemes="distance", spatial_weighting="single",
                          n_permutations=99, seed=20261202)
@@ -326,7 +326,7 @@ class TestAnalyseOption:
             assert only is None and summary["environment_only"] is None
 
     def test_permutation_only_and_spatial_only(self):
-        from spatial_ev.analysis import analyse
+        from spatial_ev.pipeline.analysis import analyse
         from spatial_ev.report.context import analysis_context
         plain = analyse(self.survey(), schemes="distance", spatial_weighting="single",
                         n_permutations=99, seed=5, environment_test="permutation")

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.survey: reading every input format, alignment and every validation rule."""
+"""Tests of spatial_ev.input.survey: reading every input format, alignment and every validation rule."""
 
 from __future__ import annotations
 
@@ -14,7 +14,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from spatial_ev import errors
-from spatial_ev.survey import Survey, read_survey
+from spatial_ev.input.survey import Survey, read_survey
 
 EPSG_UTM = 32630
 

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.transformations against published transformation values and formulas."""
+"""Tests of spatial_ev.stats.transform against published transformation values and formulas."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ import scipy.stats
 from scipy.spatial.distance import pdist
 
 from spatial_ev.errors import InputError, StandardisedCountsWarning
-from spatial_ev.transformations import TRANSFORMATIONS, standardise_environment, transform
+from spatial_ev.stats.transform import TRANSFORMATIONS, standardise_environment, transform
 
 # The 3 x 3 table of Legendre & Gallagher (2001, Oecologia 129:271-280), see REFERENCES.md
 TABLE = pd.DataFrame([[10, 10, 20], [10, 15, 10], [15, 5, 5]], index=["s1", "s2", "s3"],

@@ -1,4 +1,4 @@
-"""Tests of spatial_ev.weighting_choice (Šidák level, comparison of spatial weighting schemes)."""
+"""Tests of spatial_ev.selection.weighting (Šidák level, comparison of spatial weighting schemes)."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ import pytest
 from scipy import stats
 
 from spatial_ev.errors import DisconnectedGraphWarning, InputError
-from spatial_ev.weighting_choice import (DEFAULT_SCHEMES, WeightingComparison,
+from spatial_ev.selection.weighting import (DEFAULT_SCHEMES, WeightingComparison,
                                          compare_weighting_schemes, sidak_level)
 
 
@@ -98,8 +98,8 @@ class TestCompareWeightingSchemes:
             alone.table.loc["distance", "global_pseudo_f"])
 
     def test_prebuilt_bases_by_name(self):
-        from spatial_ev.connectivity import neighbour_graph
-        from spatial_ev.eigen import graph_eigenvectors
+        from spatial_ev.space.graphs import neighbour_graph
+        from spatial_ev.space.eigen import graph_eigenvectors
         xy, Y = _broad_scale_survey(45, 5150, signal=1.5)
         knn = graph_eigenvectors(neighbour_graph(xy, method="k_nearest", k=5))
         out = compare_weighting_schemes(Y, xy, schemes={"five nearest": knn, "pcnm": "distance"},

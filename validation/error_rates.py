@@ -68,11 +68,11 @@ from scipy import stats
 from scipy.spatial.distance import cdist
 from threadpoolctl import threadpool_limits
 
-from spatial_ev.eigen import distance_eigenvectors
-from spatial_ev.partition import partition_variation
-from spatial_ev.permutation import permutation_test
-from spatial_ev.selection import forward_selection
-from spatial_ev.spectral_randomisation import (complete_spatial_basis, distance_decay_weights,
+from spatial_ev.space.eigen import distance_eigenvectors
+from spatial_ev.selection.partition import partition_variation
+from spatial_ev.inference.permutation import permutation_test
+from spatial_ev.selection.forward import forward_selection
+from spatial_ev.inference.spectral import (complete_spatial_basis, distance_decay_weights,
                                                spectral_randomisation_test)
 
 ALPHA = 0.05
@@ -112,7 +112,7 @@ def square_grid(side: int, spacing: float) -> np.ndarray:
     return np.column_stack([gx.ravel(), gy.ravel()])
 
 
-def _one_blas_thread(study):
+def one_blas_thread(study):
     """Run a study with one BLAS thread: its problems are small (n ≤ 100), and on a busy
     2-core machine a second BLAS thread made each test about five times slower (measured)."""
     @functools.wraps(study)
@@ -124,7 +124,7 @@ def _one_blas_thread(study):
 
 # ------------------------------------------------------------------------------ no structure
 
-@_one_blas_thread
+@one_blas_thread
 def null_study(layout_name: str, replicates: int, *, permutations: int = 199,
                seed: int = 20261202) -> dict[str, float | int]:
     """Rejection / selection rates under no structure (see the module notes, items 1-5)."""
@@ -182,7 +182,7 @@ def structure(kind: str, xy: np.ndarray) -> np.ndarray:
     return (f - f.mean()) / f.std()
 
 
-@_one_blas_thread
+@one_blas_thread
 def power_study(kind: str, side: int, replicates: int, *, permutations: int = 99,
                 seed: int = 20261203) -> dict[str, float | int]:
     """Rate of a significant global test (and of ≥ 1 selected vector) for a known structure."""
@@ -235,7 +235,7 @@ def true_fractions() -> dict[str, float]:
             "unexplained": 1 - xw}
 
 
-@_one_blas_thread
+@one_blas_thread
 def bias_study(replicates: int, *, seed: int = 20261204) -> dict[str, tuple[float, float]]:
     """Mean and Monte Carlo standard error of each adjusted fraction over random designs."""
     rng = np.random.default_rng(seed)
@@ -277,7 +277,7 @@ _COVARIANCES = {
 }
 
 
-@_one_blas_thread
+@one_blas_thread
 def spectral_study(environment: str, layout_name: str, replicates: int, *,
                    randomisations: int = 99, seed: int = 20261205,
                    environment_range: float = 100.0) -> dict[str, float]:
@@ -312,7 +312,7 @@ def spectral_study(environment: str, layout_name: str, replicates: int, *,
     return {**{k: v / replicates for k, v in hits.items()}, "n": n}
 
 
-@_one_blas_thread
+@one_blas_thread
 def fraction_spectral_study(layout_name: str, replicates: int, *, randomisations: int = 99,
                             seed: int = 20261206, environment_range: float = 200.0
                             ) -> dict[str, float]:

@@ -6,7 +6,7 @@ Usage: python data_demo/lakes/make_lake_survey.py [FOLDER]   (default: the folde
 import sys
 from pathlib import Path
 
-from spatial_ev.demo_polygons import write_lake_survey
+from spatial_ev.datasets.lakes import write_lake_survey
 
 if __name__ == "__main__":
     folder = Path(sys.argv[1]) if len(sys.argv) > 1 else Path(__file__).resolve().parent

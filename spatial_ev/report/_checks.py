@@ -11,7 +11,7 @@ from collections.abc import Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError
+from spatial_ev.errors import InputError
 
 __all__ = ["check_frame", "check_numeric", "check_p", "check_series_pair", "check_selected"]
 

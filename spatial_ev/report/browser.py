@@ -37,8 +37,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .._validation import check_option
-from ..errors import InputError
+from spatial_ev._validation import check_option
+from spatial_ev.errors import InputError
 
 __all__ = ["BrowserCheck", "find_chromium", "inspect_in_browser"]
 

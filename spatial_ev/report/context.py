@@ -1,4 +1,4 @@
-"""Turn an :class:`~spatial_ev.analysis.Analysis` into the report context and map layers.
+"""Turn an :class:`~spatial_ev.pipeline.analysis.Analysis` into the report context and map layers.
 
 Only reading and re-shaping here: every number comes from the analysis result. The context
 follows the contract documented in :mod:`spatial_ev.report.html`.
@@ -13,7 +13,7 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 
-from .. import __version__
+from spatial_ev import __version__
 
 __all__ = ["analysis_context", "map_layers"]
 
@@ -65,7 +65,7 @@ def analysis_context(analysis, *, title: str | None = None,
 
     Parameters
     ----------
-    analysis : spatial_ev.analysis.Analysis
+    analysis : spatial_ev.pipeline.analysis.Analysis
     title, subtitle : str, optional
         Page title and subtitle.
 

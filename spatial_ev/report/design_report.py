@@ -15,7 +15,7 @@ target power), :func:`layout_map_figure` (the candidate layouts over the pilot s
     layouts.gpkg         one point layer per layout
 
 Nothing here computes statistics; every number is read from the
-:class:`~spatial_ev.design.DesignEvaluation`.
+:class:`~spatial_ev.design.evaluate.DesignEvaluation`.
 """
 
 from __future__ import annotations
@@ -34,19 +34,19 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import MaxNLocator
 
-from ..errors import InputError
-from . import _style as st
-from .figures import _log_axis, save_figure, unit_symbol
-from .folder import atomic_folder
-from .html import _figure_uri
-from .layers import write_layers, write_table
+from spatial_ev.errors import InputError
+from spatial_ev.report import _style as st
+from spatial_ev.report.figures import log_axis, save_figure, unit_symbol
+from spatial_ev.report.folder import atomic_folder
+from spatial_ev.report.html import figure_uri
+from spatial_ev.report.layers import write_layers, write_table
 
 __all__ = ["coverage_figure", "power_figure", "layout_map_figure", "render_design_report",
            "write_design_folder", "layer_name"]
 
 
 def _check_evaluation(evaluation: Any) -> Any:
-    from ..design import DesignEvaluation
+    from spatial_ev.design.evaluate import DesignEvaluation
 
     if not isinstance(evaluation, DesignEvaluation):
         raise InputError(f"`evaluation` must be a DesignEvaluation (from evaluate_design); got "
@@ -123,7 +123,7 @@ def coverage_figure(layouts: pd.DataFrame, classes: pd.DataFrame,
                                       for n in names][::-1])
     ax.set_ylim(-0.8, len(names) - 0.1)
     ax.set_xlim(lo, hi)
-    _log_axis(ax.xaxis, lo, hi)
+    log_axis(ax.xaxis, lo, hi)
     ax.set_xlabel(f"scale of each spatial vector ({unit}, logarithmic)   fine  ←  →  broad")
     ax.tick_params(axis="y", left=False)
     ax.legend(handles=[Line2D([], [], color=c, lw=3, label=f"class {k}")
@@ -344,14 +344,14 @@ def render_design_report(evaluation, *, figures: dict[str, Figure] | None = None
     --------
     >>> page = render_design_report(result)  # doctest: +SKIP
     """
-    from .. import __version__
+    from spatial_ev import __version__
 
     ev = _check_evaluation(evaluation)
     if figures is None:
         if pilot_xy is None:
             raise InputError("`pilot_xy` is needed to draw the layout maps")
         figures = _figures(ev, unit, pilot_xy)
-    uris = {k: _figure_uri(f) for k, f in figures.items()}
+    uris = {k: figure_uri(f) for k, f in figures.items()}
     s = ev.settings
     layouts = ev.coverage.layouts.reset_index()[["layout", "kind", "n_sites", "line_length",
                                                   "scheme", "n_vectors", "finest_scale",

@@ -26,10 +26,10 @@ from matplotlib.patheffects import withStroke
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 from matplotlib.transforms import blended_transform_factory
 
-from .._validation import check_option, check_real
-from ..errors import InputError
-from . import _checks as ck
-from . import _style as st
+from spatial_ev._validation import check_option, check_real
+from spatial_ev.errors import InputError
+from spatial_ev.report import _checks as ck
+from spatial_ev.report import _style as st
 
 __all__ = ["save_figure", "partition_figure", "scalogram_figure", "triplot_figure",
            "weighting_figure", "moran_scale_figure", "unit_symbol"]
@@ -52,7 +52,7 @@ def unit_symbol(distance_unit: str | None) -> str:
     return _UNIT_SYMBOLS.get(str(distance_unit).strip().lower(), str(distance_unit))
 
 
-def _log_axis(axis, lo: float, hi: float) -> None:
+def log_axis(axis, lo: float, hi: float) -> None:
     """Logarithmic axis with plain-number ticks at 1, 2, 5 × 10^k (or 10^k on wide ranges)."""
     exps = np.arange(np.floor(np.log10(lo)), np.ceil(np.log10(hi)) + 1)
     ticks = np.array([m * 10.0 ** e for e in exps for m in (1, 2, 5)])
@@ -356,7 +356,7 @@ def scalogram_figure(r2: pd.Series, scale: pd.Series, *, selected: Iterable[str]
     if bands is not None:
         lo, hi = min(lo, bands["low"].min()), max(hi, bands["high"].max())
     ax.set_xlim(lo / 1.25, hi * 1.25)
-    _log_axis(ax.xaxis, lo / 1.25, hi * 1.25)
+    log_axis(ax.xaxis, lo / 1.25, hi * 1.25)
     ax.set_ylim(0, top)
     ax.grid(axis="y", zorder=0)
     ax.set_xlabel(f"scale ({unit}, logarithmic)   fine  ←  →  broad")
@@ -600,7 +600,7 @@ def weighting_figure(table: pd.DataFrame, *, alpha: float = 0.05,
                      label=f"corrected α′ = {corrected_alpha:.4g}")
     lo = min(np.nanmin(p) if np.isfinite(p).any() else level, level) / 3
     ax_p.set_xlim(lo, 1.5)
-    _log_axis(ax_p.xaxis, lo, 1.5)
+    log_axis(ax_p.xaxis, lo, 1.5)
     ax_p.set_xlabel("p-value (log axis; filled = at or below the level used)")
     ax_p.grid(axis="x", which="major", zorder=0)
     ax_p.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0), ncols=2, fontsize=7.5,
@@ -658,7 +658,7 @@ def moran_scale_figure(moran_i: pd.Series, scale: pd.Series, *, selected: Iterab
     ax.grid(zorder=0)
     lo, hi = float(scale.min()) / 1.25, float(scale.max()) * 1.25
     ax.set_xlim(lo, hi)
-    _log_axis(ax.xaxis, lo, hi)
+    log_axis(ax.xaxis, lo, hi)
     ax.set_xlabel(f"scale ({unit}, logarithmic)")
     ax.set_ylabel("Moran's I")
     ax.legend(loc="upper left")

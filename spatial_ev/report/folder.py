@@ -9,7 +9,7 @@ import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 
-from ..errors import InputError
+from spatial_ev.errors import InputError
 
 __all__ = ["atomic_folder"]
 

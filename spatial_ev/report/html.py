@@ -105,10 +105,10 @@ import jinja2
 import pandas as pd
 from matplotlib.figure import Figure
 
-from ..errors import InputError
-from . import figures as figs
-from . import maps
-from ._text import (REFERENCES, Citations, data_rows, distance, glance_items, limits_items,
+from spatial_ev.errors import InputError
+from spatial_ev.report import figures as figs
+from spatial_ev.report import maps
+from spatial_ev.report._text import (REFERENCES, Citations, data_rows, distance, glance_items, limits_items,
                     methods_paragraphs, num, pvalue)
 
 __all__ = ["render_report", "build_figures", "write_report", "example_context", "SECTIONS",
@@ -129,7 +129,7 @@ SECTIONS: dict[str, str] = {
     "references": "References",
 }
 
-def _figure_uri(fig: Figure, *, dpi: int = 110) -> str:
+def figure_uri(fig: Figure, *, dpi: int = 110) -> str:
     buffer = io.BytesIO()
     fig.savefig(buffer, format="png", dpi=dpi, bbox_inches="tight",
                 metadata={"Software": None})
@@ -356,7 +356,7 @@ def render_report(context: Mapping[str, Any], *,
     figures = build_figures(context) if figures is None else figures
     pngs = figure_pngs or {}
     uris = {k: ("data:image/png;base64," + base64.b64encode(pngs[k]).decode("ascii"))
-            if k in pngs else _figure_uri(f) for k, f in figures.items()}
+            if k in pngs else figure_uri(f) for k, f in figures.items()}
     unit = figs.unit_symbol(_get(context["data"], "distance_unit"))
     cite = Citations()
     reasons = dict(context.get("missing_reasons") or {})
@@ -408,4 +408,4 @@ def write_report(context: Mapping[str, Any], folder: str | os.PathLike, *,
     return path
 
 
-from ._example import example_context  # noqa: E402  (kept apart: synthetic data, ~150 lines)
+from spatial_ev.report._example import example_context  # noqa: E402  (kept apart: synthetic data, ~150 lines)

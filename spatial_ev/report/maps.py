@@ -23,10 +23,10 @@ from matplotlib.patches import Rectangle
 from matplotlib.patheffects import withStroke
 from matplotlib.ticker import FuncFormatter
 
-from .._validation import check_option
-from ..errors import CRSError, InputError
-from . import _style as st
-from .figures import unit_symbol
+from spatial_ev._validation import check_option
+from spatial_ev.errors import CRSError, InputError
+from spatial_ev.report import _style as st
+from spatial_ev.report.figures import unit_symbol
 
 __all__ = ["site_map_figure", "nice_scale_bar"]
 

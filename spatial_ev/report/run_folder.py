@@ -27,11 +27,11 @@ from typing import Any
 
 import pandas as pd
 
-from .. import __version__
-from .context import analysis_context, map_layers
-from .folder import atomic_folder
-from .html import write_report
-from .layers import write_layers, write_table
+from spatial_ev import __version__
+from spatial_ev.report.context import analysis_context, map_layers
+from spatial_ev.report.folder import atomic_folder
+from spatial_ev.report.html import write_report
+from spatial_ev.report.layers import write_layers, write_table
 
 __all__ = ["write_run_folder", "manifest"]
 
@@ -128,7 +128,7 @@ def write_run_folder(analysis, out: str | os.PathLike, *, overwrite: bool = Fals
 
     Parameters
     ----------
-    analysis : spatial_ev.analysis.Analysis
+    analysis : spatial_ev.pipeline.analysis.Analysis
     out : path
         The folder to create; an existing one is replaced only with ``overwrite=True``.
     inputs : mapping, optional

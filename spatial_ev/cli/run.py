@@ -1,0 +1,278 @@
+"""``spatial-ev run`` and ``spatial-ev demo``: the whole analysis, written as a run folder.
+
+``run`` reads the user's survey files (the same options as ``check``), or an ``analysis.toml``
+holding the same keys; ``demo`` generates the shipped demo survey files, analyses them and
+copies them into the run folder's ``inputs/``. On a terminal both show the stage, the latest
+test and the elapsed time; with ``--quiet`` or when output is not a terminal they print only
+the final lines.
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+from spatial_ev.cli.common import add_survey_options, read_options, survey_from_args
+from spatial_ev.errors import InputError
+
+__all__ = ["configure_run", "execute_run", "configure_demo", "execute_demo", "load_config"]
+
+_SCHEMES_HELP = ("spatial weighting: 'compare' (default: every standard scheme, judged at a "
+                 "Šidák-corrected level) or one scheme, 'distance' or '<graph>/<weighting>' "
+                 "such as 'gabriel/linear'")
+
+
+def _analysis_options(parser: argparse.ArgumentParser) -> None:
+    group = parser.add_argument_group("analysis")
+    group.add_argument("--transformation", default="hellinger",
+                       choices=("hellinger", "chord", "chi_square", "log_chord",
+                                "presence_absence", "none"),
+                       help="community transformation (default: hellinger)")
+    group.add_argument("--weighting", default="compare", metavar="SCHEME", help=_SCHEMES_HELP)
+    group.add_argument("--trend", default="test", choices=("test", "ignore"),
+                       help="test a linear trend on the coordinates and keep it as a "
+                            "covariable when significant (default), or ignore trends")
+    group.add_argument("--alpha", type=float, default=0.05,
+                       help="significance level of every test (default 0.05)")
+    group.add_argument("--permutations", type=int, default=999, metavar="N",
+                       help="permutations per test (default 999)")
+    group.add_argument("--seed", type=int, default=None, metavar="N",
+                       help="random seed (default: drawn and recorded in manifest.json)")
+    group.add_argument("--environment-test", default="spectral",
+                       choices=("spectral", "permutation"),
+                       help="test of the environment: 'spectral' (default) adds a Moran "
+                            "spectral randomisation test that allows for spatially "
+                            "autocorrelated environment; 'permutation' uses free permutations "
+                            "only")
+    group.add_argument("--max-vectors", type=int, default=None, metavar="K",
+                       help="keep only the K broadest spatial eigenvectors per scheme "
+                            "(default: all positive-I vectors; 200 above 3000 sites)")
+    group.add_argument("--scale-breaks", type=float, nargs="+", default=None, metavar="D",
+                       help="boundaries of the scale classes in map units (default: three "
+                            "equal-size classes: broad, medium, fine)")
+    ex = parser.add_argument_group("execution and output")
+    ex.add_argument("--engine", default="local", choices=("local", "dask"),
+                    help="where permutation batches run (default local threads)")
+    ex.add_argument("--scheduler", default=None, metavar="ADDR",
+                    help="dask.distributed scheduler address (with --engine dask; default: a "
+                         "local cluster)")
+    ex.add_argument("--overwrite", action="store_true",
+                    help="replace the output folder if it exists")
+    ex.add_argument("--quiet", action="store_true", help="print only the final lines")
+
+
+def configure_run(parser: argparse.ArgumentParser) -> None:
+    """Options of ``spatial-ev run``.
+
+    Examples
+    --------
+    >>> p = argparse.ArgumentParser(); configure_run(p)
+    >>> p.parse_args(["--sites", "s.gpkg", "--species", "y.csv", "--out", "r"]).permutations
+    999
+    """
+    add_survey_options(parser, species="optional", environment=True)
+    for action in parser._actions:  # may come from --config instead
+        if action.dest == "sites":
+            action.required = False
+    parser.add_argument("--config", metavar="FILE", default=None,
+                        help="analysis.toml with the same keys as these options (command-line "
+                             "options override it; paths are relative to the file)")
+    parser.add_argument("--out", metavar="DIR", default=None,
+                        help="run folder to create (required, here or in the config file)")
+    _analysis_options(parser)
+    parser.set_defaults(_run_parser=parser)  # load_config needs the option table
+
+
+def configure_demo(parser: argparse.ArgumentParser) -> None:
+    """Options of ``spatial-ev demo``.
+
+    Examples
+    --------
+    >>> p = argparse.ArgumentParser(); configure_demo(p)
+    >>> p.parse_args([]).out
+    'spatial-ev-demo'
+    """
+    parser.add_argument("--out", metavar="DIR", default="spatial-ev-demo",
+                        help="run folder to create (default: spatial-ev-demo)")
+    _analysis_options(parser)
+
+
+def load_config(path: str, parser: argparse.ArgumentParser,
+                args: argparse.Namespace) -> argparse.Namespace:
+    """Fill options not given on the command line from an ``analysis.toml`` file.
+
+    Keys are the long option names with ``-`` or ``_``; relative paths are taken from the
+    file's folder. Unknown keys are an error naming the key.
+
+    Examples
+    --------
+    >>> load_config("analysis.toml", parser, args)  # doctest: +SKIP
+    """
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # pragma: no cover - Python 3.10
+        import tomli as tomllib
+    file = Path(path)
+    if not file.is_file():
+        raise InputError(f"config file {path!r} does not exist")
+    try:
+        data = tomllib.loads(file.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"config file {path!r} is not valid TOML: {exc}") from None
+    known = {a.dest: a for a in parser._actions
+             if a.dest not in ("help", "config", "debug") and not a.dest.startswith("_")}
+    for key, value in data.items():
+        dest = key.replace("-", "_")
+        if dest not in known:
+            raise InputError(f"config file {path!r}: unknown key {key!r}; allowed keys are "
+                             f"{', '.join(sorted(k.replace('_', '-') for k in known))}")
+        if getattr(args, dest) != parser.get_default(dest):
+            continue  # given on the command line: it wins
+        if dest in ("sites", "species", "environment", "out") and isinstance(value, str):
+            value = str((file.parent / value)) if not Path(value).is_absolute() else value
+        action = known[dest]
+        if action.type is not None and not isinstance(value, list):
+            try:
+                value = action.type(value)
+            except (TypeError, ValueError):
+                raise InputError(f"config file {path!r}: key {key!r} must be "
+                                 f"{action.type.__name__}; got {value!r}") from None
+        if action.choices is not None and value not in action.choices:
+            raise InputError(f"config file {path!r}: key {key!r} must be one of "
+                             f"{', '.join(map(str, action.choices))}; got {value!r}")
+        setattr(args, dest, value)
+    return args
+
+
+class _Progress:
+    """Stage messages with elapsed time on a terminal (rich), silent otherwise."""
+
+    def __init__(self, quiet: bool) -> None:
+        self.live = not quiet and sys.stderr.isatty()
+        self.start = time.perf_counter()
+        self.status = None
+        if self.live:
+            from rich.console import Console
+
+            self.console = Console(stderr=True)
+            self.status = self.console.status("starting")
+            self.status.start()
+
+    def __call__(self, message: str) -> None:
+        if self.status is not None:
+            self.status.update(f"[{time.perf_counter() - self.start:6.1f} s] {message}")
+
+    def stop(self) -> float:
+        if self.status is not None:
+            self.status.stop()
+        return time.perf_counter() - self.start
+
+
+def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=None,
+                       before_commit=None, title=None, reading=None) -> Any:
+    from spatial_ev.pipeline.analysis import analyse
+    from spatial_ev.report.run_folder import write_run_folder
+
+    if args.permutations < 19:
+        raise InputError(f"--permutations must be at least 19; got {args.permutations}")
+    weighting = "compare" if args.weighting == "compare" else "single"
+    schemes = None if weighting == "compare" else [args.weighting]
+    out_path = Path(out)
+    if out_path.exists() and not args.overwrite:  # fail before a long analysis, not after
+        raise InputError(f"output folder {out!r} already exists; choose another folder or pass "
+                         f"--overwrite")
+    progress = _Progress(args.quiet)
+    try:
+        result = analyse(survey, transformation=args.transformation,
+                         spatial_weighting=weighting, schemes=schemes, alpha=args.alpha,
+                         n_permutations=args.permutations, seed=args.seed,
+                         scale_breaks=args.scale_breaks, trend=args.trend, engine=args.engine,
+                         scheduler=args.scheduler, progress=progress,
+                         environment_test=args.environment_test, max_vectors=args.max_vectors)
+        progress("writing the run folder")
+        params = {"command_line": sys.argv[1:] if sys.argv else [],
+                  "read_options": reading or {}}
+        write_run_folder(result, out, overwrite=args.overwrite, inputs=inputs,
+                         parameters=params, title=title, before_commit=before_commit)
+    finally:
+        elapsed = progress.stop()
+    return result, elapsed
+
+
+def _final_lines(result, out: str, elapsed: float) -> list[str]:
+    lines = [f"run folder written: {out} ({elapsed:.1f} s)"]
+    if result.fractions is not None:
+        f = result.fractions
+        lines.append("fractions (adjusted R²): environment only {environment_only:.3f}, "
+                     "shared {shared:.3f}, space only {space_only:.3f}, unexplained "
+                     "{unexplained:.3f}".format(**f))
+    lines.append(f"spatial vectors selected: {len(result.selected_space)} "
+                 f"({result.settings['chosen_scheme']}); report: {Path(out) / 'report.html'}")
+    return lines
+
+
+def execute_run(args: argparse.Namespace) -> int:
+    """Run the analysis on the user's files and write the run folder.
+
+    Examples
+    --------
+    >>> from spatial_ev.cli.main import main
+    >>> main(["run", "--sites", "s.gpkg", "--species", "y.csv", "--out", "r"])  # doctest: +SKIP
+    0
+    """
+    if args.config is not None:
+        args = load_config(args.config, args._run_parser, args)
+    if args.sites is None:
+        raise InputError("no site file: give --sites FILE (or `sites` in the config file)")
+    if getattr(args, "species", None) is None:
+        raise InputError("`run` needs a species table: give --species FILE")
+    if args.out is None:
+        raise InputError("no output folder: give --out DIR (or `out` in the config file)")
+    survey = survey_from_args(args)
+    result, elapsed = _analyse_and_write(survey, args, args.out, reading=read_options(args))
+    for line in _final_lines(result, args.out, elapsed):
+        print(line)
+    return 0
+
+
+def execute_demo(args: argparse.Namespace) -> int:
+    """Generate the demo survey files, analyse them and write the run folder.
+
+    Examples
+    --------
+    >>> from spatial_ev.cli.main import main
+    >>> main(["demo", "--out", "demo-run"])  # doctest: +SKIP
+    0
+    """
+    import json
+
+    from spatial_ev.datasets.mudflat import write_demo_survey
+    from spatial_ev.input.survey import read_survey
+
+    with tempfile.TemporaryDirectory(prefix="spatial-ev-demo-") as tmp:
+        paths = write_demo_survey(tmp)
+        survey = read_survey(paths["sites"], paths["species"], paths["environment"])
+
+        def copy_inputs(folder: Path) -> None:
+            (folder / "inputs").mkdir()
+            for path in paths.values():
+                shutil.copy2(path, folder / "inputs" / Path(path).name)
+
+        inputs = {k: v for k, v in paths.items()}
+        if args.seed is None:
+            args.seed = 20240917
+        result, elapsed = _analyse_and_write(
+            survey, args, args.out, inputs=inputs, before_commit=copy_inputs,
+            title="Demo: benthic cores on an invented estuarine mudflat")
+        truth = json.loads(Path(paths["truth"]).read_text())["expected_fractions"]
+    for line in _final_lines(result, args.out, elapsed):
+        print(line)
+    if result.fractions is not None:
+        print("true fractions of the generating model: " + ", ".join(
+            f"{k.replace('_', ' ')} {v:.3f}" for k, v in truth.items()))
+    return 0

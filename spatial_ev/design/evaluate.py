@@ -1,0 +1,567 @@
+"""Sampling redesign: which scales a candidate layout resolves, and its simulated power.
+
+Two questions for next season's layout and budget, answered from a pilot :class:`Analysis`:
+
+1. **Spectral coverage** (:func:`spectral_coverage`). Each layout gets its own spatial basis
+   under the *pilot's chosen weighting scheme* (distance-based MEM when the pilot chose none,
+   or when that graph cannot be built on the layout, e.g. Delaunay on a straight transect —
+   the table says which). The basis's vector scales (equivalent wavelengths, map units) give
+   the broadest and finest scale the layout represents and the number of vectors in each of
+   the pilot's scale classes. Rule: a class is **resolved** when the layout has at least as
+   many vectors inside the class bounds as the pilot selected there (and at least one);
+   **partly** when it has some but fewer; **not resolved** when it has none. Extent sets the
+   broadest wavelength (≈ 2 × extent) and spacing the finest (≈ 2–4 sampling intervals,
+   Nyquist-type reasoning [practice]).
+
+2. **Simulated power** (:func:`evaluate_design`). The pilot's fitted model is the truth: the
+   transformed community is regressed jointly on the kept trend (coordinates), the selected
+   environmental variables and the selected spatial vectors; at a layout's sites the signal is
+   the trend at the new coordinates + the environmental coefficients × the environment there
+   + each scale class's coefficients × the pilot vectors extended to the new points
+   (:meth:`SpatialBasis.extend`, Nyström). The environment at new sites comes from a
+   user-supplied vector layer (nearest feature; a raster is not read) or, by default, is
+   interpolated from the pilot sites (inverse-distance weighting of the 8 nearest sites,
+   power 2, nearest site for category indicators). Residual variation: whole rows of the
+   pilot residuals resampled with replacement (keeps the species' covariance) and inflated
+   by √((n − 1)/(n − 1 − m)) for the m fitted terms. Each simulated table is analysed in a
+   lighter form keeping the same statistics: trend test, forward selection of environmental
+   variables (global test, double stopping), forward selection of the layout's spatial vectors under one
+   scheme (global test at the pilot's Šidák-corrected level by default, because next season's
+   analysis will again compare schemes; then double stopping), variation partition with tests
+   of the unique fractions, and detection of each scale class by a partial test of its
+   selected vectors. Simulations are on the transformed scale (no counts are drawn).
+
+Permutations. Every test uses ``n_permutations`` (default 199). A rejection rate at α = 0.05
+needs p-values accurate near 0.05: with N = 199 the Monte Carlo standard error of a p-value of
+0.05 is √(0.05 · 0.95 / 199) ≈ 0.015, so a test with true p near 0.05 is occasionally
+misjudged, which blurs power by at most a few points — less than the simulation error of the
+power itself (√(0.8 · 0.2 / 100) = 0.04 with 100 simulations). The spatial global test is
+judged at the much smaller corrected level α' (0.0051 for ten schemes); with 199 permutations
+it would reject only when no permuted statistic reaches the observed one, so a test with true
+p = 0.001 would fail 18 % of the time (1 − 0.999^199) and power would be underestimated. That
+test therefore uses max(N, ⌈4/α'⌉ − 1) permutations (783 for α' = 0.0051: up to three
+exceedances still reject, and a true p of 0.001 rejects 96 % of the time).
+
+Detection of a scale class at a layout: each spatial vector selected in a simulated analysis
+is attributed to the pilot class whose generating structure it carries most of (share
+‖F_cᵀu‖² of the class's structure F_c at the layout's sites); the class is detected when it
+has at least one such vector and their partial test (given the other selected vectors and the
+trend) has p ≤ α. Attribution goes by the structure carried rather than by the vector's
+nominal scale because scale estimates differ between bases: a denser layout's basis labels the
+same wave finer, which would credit it with a "finer" class it only resolves at the broader
+scale. Classes without selected pilot vectors carry no structure and are never detected.
+
+Assumptions, stated in every result: the pilot model is right (linear effects of the selected
+variables, the selected spatial structure is the real one); stationarity (the structure seen
+in the pilot area holds wherever the layout samples, and the extension of fine vectors
+between pilot sites shrinks them toward zero); residuals spatially independent; interpolated
+environment is smoother than the real one (local variation between pilot sites is lost, so
+environmental power away from pilot sites is pessimistic). Power refers to this model's effect
+sizes.
+
+Seeds: one seed → ``SeedSequence(seed).spawn(n_layouts)``, each layout's sequence spawns one
+child per simulation; results are identical on any engine and number of workers.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from spatial_ev._validation import check_int, check_option, check_real
+from spatial_ev.errors import DesignError, InputError, SpatialEVWarning
+from spatial_ev.design.simulate import (layout_model, pilot_model, SimulationSettings, Simulator,
+                           environment_at)
+from spatial_ev.design.layouts import CandidateLayout, build_layout
+
+__all__ = ["spectral_coverage", "evaluate_design", "DesignEvaluation", "SpectralCoverage",
+           "layout_basis", "environment_at", "SPACE_LEVELS"]
+
+SPACE_LEVELS = ("corrected", "nominal")
+_MIN_SITES = 10  # the simulated analysis, like analyse(), needs at least 10 sites
+_FRACTIONS = ("environment_only", "shared", "space_only", "unexplained")
+
+
+# ------------------------------------------------------------------------------ coverage
+
+@dataclass(frozen=True)
+class SpectralCoverage:
+    """Which scales each layout represents.
+
+    Attributes
+    ----------
+    layouts : DataFrame
+        One row per layout (index ``layout``): ``kind``, ``n_sites``, ``line_length``,
+        ``scheme`` (the basis built), ``n_vectors``, ``broadest_scale``, ``finest_scale``
+        (map units), ``note``.
+    classes : DataFrame
+        One row per (layout, pilot scale class): ``layout``, ``scale_class``, ``lower``,
+        ``upper`` (map units), ``pilot_significant`` (bool), ``pilot_vectors`` (selected in
+        the pilot), ``layout_vectors`` (layout basis vectors inside the bounds), ``status``
+        (``"resolved"``, ``"partly"``, ``"not resolved"``).
+    bases : dict
+        Layout name → its :class:`~spatial_ev.space.eigen.SpatialBasis`.
+    """
+
+    layouts: pd.DataFrame
+    classes: pd.DataFrame
+    bases: dict = field(repr=False)
+
+    def to_frame(self) -> pd.DataFrame:
+        """The per-class table."""
+        return self.classes.copy()
+
+
+def layout_basis(coords: Any, scheme: str) -> tuple[Any, str, str]:
+    """Spatial basis of a layout under a weighting scheme (distance-based as fallback).
+
+    Returns ``(basis, scheme_used, note)``. Raises :class:`DesignError` when the layout has too
+    few sites for any positively autocorrelated vector.
+
+    Examples
+    --------
+    >>> xy = np.column_stack([np.arange(20.0), np.zeros(20)])
+    >>> basis, used, _ = layout_basis(xy, "distance")
+    >>> used, basis.n_vectors
+    ('distance', 9)
+    """
+    from spatial_ev.space.graphs import neighbour_graph
+    from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
+    from spatial_ev.selection.weighting import check_schemes
+
+    xy = np.asarray(coords, dtype=float)
+    if len(xy) < 4:
+        raise DesignError(f"a layout of {len(xy)} sites has no spatial eigenvector with positive "
+                          "Moran's I (at least 4 sites are needed, 10 for the simulated "
+                          "analysis); use a denser or larger layout")
+    note = ""
+    parsed = check_schemes([scheme if scheme != "none" else "distance"])[0]
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", SpatialEVWarning)
+        try:
+            if parsed[1] is None:
+                basis, used = distance_eigenvectors(xy), "distance"
+            else:
+                graph = neighbour_graph(xy, method=parsed[1])
+                basis = graph_eigenvectors(graph, weighting=parsed[2], exponent=parsed[3])
+                used = scheme
+        except InputError as exc:
+            note = f"{scheme} could not be built here ({exc}); distance-based vectors used"
+            basis, used = distance_eigenvectors(xy), "distance"
+    if caught:
+        note = (note + "; " if note else "") + "; ".join(str(w.message) for w in caught)
+    if basis.n_vectors == 0:
+        raise DesignError(f"a layout of {len(xy)} sites gives no spatial eigenvector with "
+                          "positive Moran's I; use more sites")
+    return basis, used, note
+
+
+def _pilot_classes(pilot) -> pd.DataFrame:
+    alpha = pilot.settings["alpha"]
+    rows = []
+    for fit in pilot.scale_fits:
+        c = fit.scale_class
+        rows.append({"scale_class": c.name, "lower": c.bounds[0], "upper": c.bounds[1],
+                     "finest_selected": None if c.scale_range is None else c.scale_range[0],
+                     "pilot_vectors": len(c.vectors), "r2_adj": fit.r2_adj, "p": fit.p_value,
+                     "pilot_significant": bool(fit.p_value is not None and fit.p_value <= alpha)})
+    return pd.DataFrame(rows)
+
+
+def _status(count: int, need: int) -> str:
+    if count == 0:
+        return "not resolved"
+    return "resolved" if count >= max(1, need) else "partly"
+
+
+def spectral_coverage(pilot, layouts: Sequence[CandidateLayout | str], *,
+                      area: Any = None, seed: int | None = None) -> SpectralCoverage:
+    """Scales each candidate layout represents, against the pilot's scale classes.
+
+    Parameters
+    ----------
+    pilot : Analysis or path of a run folder
+        From :func:`spatial_ev.analyse`; a run folder is rebuilt by
+        :func:`spatial_ev.pipeline.rerun.load_pilot`.
+    layouts : sequence of CandidateLayout or layout spec strings
+        See :mod:`spatial_ev.design.layouts` for the spec syntax.
+    area : shapely Polygon, optional
+        Study area for grids and augmentation (default: the pilot's convex hull).
+    seed : int, optional
+        For random thinning specs without their own seed.
+
+    Returns
+    -------
+    SpectralCoverage
+
+    Examples
+    --------
+    >>> cov = spectral_coverage(pilot, ["grid:spacing=40", "thin:every=2"])  # doctest: +SKIP
+    >>> cov.classes["status"].unique()  # doctest: +SKIP
+    """
+    pilot, built = _check_pilot_layouts(pilot, layouts, area, seed)
+    return _coverage(pilot, built)
+
+
+def _coverage(pilot, built: list[CandidateLayout]) -> SpectralCoverage:
+    classes = _pilot_classes(pilot)
+    scheme = pilot.settings.get("chosen_scheme", "none")
+    rows, crow, bases = [], [], {}
+    for lay in built:
+        basis, used, note = layout_basis(lay.coords.to_numpy(), scheme)
+        bases[lay.name] = basis
+        scale = basis.scale.to_numpy()
+        rows.append({"layout": lay.name, "kind": lay.kind, "n_sites": lay.n_sites,
+                     "line_length": lay.line_length, "scheme": used,
+                     "n_vectors": basis.n_vectors, "broadest_scale": float(scale.max()),
+                     "finest_scale": float(scale.min()),
+                     "note": "; ".join(t for t in (lay.note, note) if t)})
+        for c in classes.itertuples():
+            count = int(np.count_nonzero((scale > c.lower) & (scale <= c.upper)))
+            crow.append({"layout": lay.name, "scale_class": c.scale_class, "lower": c.lower,
+                         "upper": c.upper, "pilot_significant": c.pilot_significant,
+                         "pilot_vectors": c.pilot_vectors, "layout_vectors": count,
+                         "status": _status(count, c.pilot_vectors)})
+    return SpectralCoverage(pd.DataFrame(rows).set_index("layout"), pd.DataFrame(crow), bases)
+
+
+def _check_pilot_layouts(pilot, layouts, area, seed) -> tuple[Any, list[CandidateLayout]]:
+    from spatial_ev.pipeline.analysis import Analysis
+
+    if isinstance(pilot, str) or hasattr(pilot, "__fspath__"):
+        from spatial_ev.pipeline.rerun import load_pilot
+        pilot = load_pilot(pilot)
+    if not isinstance(pilot, Analysis):
+        raise InputError(f"`pilot` must be an Analysis (from analyse() or load_pilot()); got "
+                         f"{type(pilot).__name__}")
+    if isinstance(layouts, (str, CandidateLayout)) or not hasattr(layouts, "__iter__"):
+        layouts = [layouts]
+    built = []
+    for item in layouts:
+        if isinstance(item, str):
+            item = build_layout(item, pilot.survey.coords, area=area, crs=pilot.survey.crs,
+                                distance_unit=pilot.survey.distance_unit, seed=seed)
+        elif not isinstance(item, CandidateLayout):
+            raise InputError(f"`layouts` entries must be CandidateLayout objects or spec "
+                             f"strings such as 'grid:spacing=30'; got {type(item).__name__}")
+        built.append(item)
+    if not built:
+        raise InputError("`layouts` is empty; give at least one candidate layout")
+    names = [b.name for b in built]
+    dup = sorted({n for n in names if names.count(n) > 1})
+    if dup:
+        raise InputError(f"layout names must be unique; {dup} appear twice (add name=... to "
+                         "the spec)")
+    return pilot, built
+
+
+# ------------------------------------------------------------------------------ result
+
+@dataclass(frozen=True)
+class DesignEvaluation:
+    """Coverage and simulated power of candidate layouts, with recommendations.
+
+    Attributes
+    ----------
+    layouts : tuple of CandidateLayout
+    coverage : SpectralCoverage
+    power : DataFrame
+        One row per (layout, objective): ``layout``, ``objective`` (``"environment"`` or
+        ``"scale:<class>"``), ``pilot_significant``, ``power`` (share of simulations that
+        detected it), ``mc_se`` (its Monte Carlo standard error), ``ci_low``, ``ci_high``
+        (Wilson 95 % interval), ``n_sites``, ``line_length``.
+    fractions : DataFrame
+        One row per (layout, fraction): ``pilot`` (the pilot's estimate), ``truth`` (mean over
+        simulations of the partition with the generating predictors at the layout's sites),
+        ``mean_estimate``, ``bias`` (mean of estimate − truth, per simulation), ``sd``.
+    simulations : DataFrame
+        One row per simulation: layout, replicate, detections, estimates, truths.
+    recommendations : tuple of str
+        One sentence per objective.
+    settings : dict
+        Every parameter and choice (seed, permutations, simulations, levels, environment
+        source, residual model, scheme).
+    notes : tuple of str
+        Assumptions and per-layout remarks.
+    """
+
+    layouts: tuple
+    coverage: SpectralCoverage
+    power: pd.DataFrame
+    fractions: pd.DataFrame
+    simulations: pd.DataFrame = field(repr=False)
+    recommendations: tuple
+    settings: dict
+    notes: tuple
+
+    def to_frame(self) -> pd.DataFrame:
+        """The power table."""
+        return self.power.copy()
+
+    def summary(self) -> str:
+        """Plain-text account: coverage, power, recommendations and assumptions."""
+        lines = [f"{len(self.layouts)} candidate layout(s), {self.settings['n_simulations']} "
+                 f"simulations each, {self.settings['n_permutations']} permutations per test, "
+                 f"seed {self.settings['seed']}"]
+        cov = self.coverage.layouts
+        for name, row in cov.iterrows():
+            lines.append(f"  {name}: {row['n_sites']} sites, {row['n_vectors']} vectors "
+                         f"({row['scheme']}), scales {row['finest_scale']:.4g}–"
+                         f"{row['broadest_scale']:.4g}")
+        for r in self.power.itertuples():
+            lines.append(f"  power {r.layout} / {r.objective}: {r.power:.2f} ± {r.mc_se:.2f}")
+        lines += list(self.recommendations)
+        lines += list(self.notes)
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        """JSON-ready record (``design.json``)."""
+        def clean(frame: pd.DataFrame) -> list[dict]:
+            out = []
+            for rec in frame.reset_index().to_dict(orient="records"):
+                out.append({str(k): (None if isinstance(v, float) and not math.isfinite(v)
+                                     else (round(v, 10) if isinstance(v, float) else
+                                           (v.item() if hasattr(v, "item") else v)))
+                            for k, v in rec.items()})
+            return out
+        return {"settings": self.settings,
+                "layouts": clean(self.coverage.layouts),
+                "coverage": clean(self.coverage.classes),
+                "power": clean(self.power), "fractions": clean(self.fractions),
+                "recommendations": list(self.recommendations), "notes": list(self.notes)}
+
+
+def _check_evaluate(n_simulations, n_permutations, alpha_target, space_level, seed, engine):
+    n_simulations = check_int("n_simulations", n_simulations, low=1)
+    n_permutations = check_int("n_permutations", n_permutations, low=19)
+    target = check_real("target_power", alpha_target, low=0, high=1, low_inclusive=False)
+    space_level = check_option("space_level", space_level, SPACE_LEVELS)
+    check_option("engine", engine, ["local", "dask"])
+    if seed is None:
+        seed = int(np.random.SeedSequence().entropy % (2 ** 32))
+    elif not isinstance(seed, (int, np.integer)) or isinstance(seed, bool) or seed < 0:
+        raise InputError(f"parameter `seed` must be a non-negative integer (recorded so the "
+                         f"design can be repeated); got {seed!r}")
+    return n_simulations, n_permutations, target, space_level, int(seed)
+
+
+def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
+                    n_simulations: int = 100, n_permutations: int = 199,
+                    target_power: float = 0.8, space_level: str = "corrected",
+                    environment_layer: Any = None, area: Any = None,
+                    reference: str = "pilot", seed: int | None = None,
+                    engine: str = "local", scheduler: Any = None, n_workers: int | None = None,
+                    progress: Callable[[int, int], Any] | None = None) -> DesignEvaluation:
+    """Spectral coverage and simulated power of candidate sampling layouts.
+
+    Parameters
+    ----------
+    pilot : Analysis or path of a run folder
+        The pilot analysis (a run folder is re-analysed from its recorded, checksum-verified
+        inputs and parameters; see :func:`spatial_ev.pipeline.rerun.load_pilot`).
+    layouts : sequence of CandidateLayout or spec strings
+        See :mod:`spatial_ev.design.layouts` (e.g. ``"grid:spacing=30"``, ``"thin:every=2"``).
+    n_simulations : int, keyword-only
+        Simulated surveys per layout (power's Monte Carlo SE ≤ 0.5/√n_simulations).
+    n_permutations : int
+        Permutations per test in each simulated analysis (199 is enough; module docstring).
+    target_power : float
+        Power the recommendations ask for (default 0.8).
+    space_level : {"corrected", "nominal"}
+        Level of the spatial global test: the pilot's Šidák-corrected level (default; what a
+        full analysis comparing schemes applies) or the nominal α.
+    environment_layer : GeoDataFrame, optional
+        Environmental values for new sites (default: interpolation from the pilot sites).
+    area : shapely Polygon, optional
+        Study area for grids and augmentation (default: the pilot's convex hull).
+    reference : {"pilot", "none"}
+        ``"pilot"``: also evaluate the pilot layout as sampled (named ``"pilot"``), the
+        baseline the candidates are compared with; ``"none"``: only the candidates.
+    seed : int, optional
+        One seed for every simulation (drawn and recorded when omitted).
+    engine, scheduler, n_workers :
+        Where simulations run (:func:`spatial_ev.inference.engines.run_tasks`): local threads or dask.
+    progress : callable, optional
+        ``progress(done, total)`` after each simulation.
+
+    Returns
+    -------
+    DesignEvaluation
+
+    Examples
+    --------
+    >>> result = evaluate_design(pilot, ["grid:spacing=60", "thin:every=2"],
+    ...                          n_simulations=50, seed=1)  # doctest: +SKIP
+    >>> print(result.recommendations[0])  # doctest: +SKIP
+    """
+    from spatial_ev.inference.engines import run_tasks
+
+    n_simulations, n_permutations, target, space_level, seed = _check_evaluate(
+        n_simulations, n_permutations, target_power, space_level, seed, engine)
+    reference = check_option("reference", reference, ["pilot", "none"])
+    pilot, built = _check_pilot_layouts(pilot, layouts, area, seed)
+    if reference == "pilot" and "pilot" not in [b.name for b in built]:
+        built = [CandidateLayout("pilot", "pilot", pilot.survey.coords[["x", "y"]].copy(), None,
+                                 {}, f"the pilot's {pilot.survey.n_sites} sites as sampled")] \
+            + built
+    small = [f"{b.name!r} ({b.n_sites} sites)" for b in built if b.n_sites < _MIN_SITES]
+    if small:
+        raise DesignError(f"layout(s) {', '.join(small)} have fewer than {_MIN_SITES} sites: "
+                          "too few for spatial eigenvectors, selection and permutation tests; "
+                          "use denser or larger layouts")
+    alpha = float(pilot.settings["alpha"])
+    level = float(pilot.weighting.alpha_corrected) if space_level == "corrected" else alpha
+    coverage = _coverage(pilot, built)
+    model = pilot_model(pilot)
+    models, infos = [], {}
+    for lay in built:
+        lm, infos[lay.name] = layout_model(pilot, model, lay, coverage.bases[lay.name],
+                                            environment_layer)
+        models.append(lm)
+    classes = _pilot_classes(pilot)
+    global_permutations = max(n_permutations, math.ceil(4 / level) - 1)
+    settings = SimulationSettings(alpha, level, n_permutations, global_permutations,
+                         pilot.settings["trend"],
+                         tuple(pilot.settings["scale_breaks"]), tuple(classes["scale_class"]),
+                         model["residuals"])
+    layout_seqs = np.random.SeedSequence(seed).spawn(len(built))
+    tasks = [(i, child) for i, s in enumerate(layout_seqs) for child in s.spawn(n_simulations)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SpatialEVWarning)
+        results = run_tasks(Simulator(models, settings), tasks, engine=engine,
+                            scheduler=scheduler, n_workers=n_workers, progress=progress)
+    sims = _simulation_frame(built, results, n_simulations)
+    power, fractions = _power_tables(pilot, built, sims, classes)
+    env_source = next((i["environment_source"] for i in infos.values()
+                       if "environment_source" in i), "no environmental table")
+    settings_out = {
+        "seed": seed, "n_simulations": n_simulations, "n_permutations": n_permutations,
+        "global_space_permutations": global_permutations,
+        "alpha": alpha, "space_level": space_level, "space_test_level": level,
+        "target_power": target, "scheme": pilot.settings.get("chosen_scheme"),
+        "scale_breaks": list(pilot.settings["scale_breaks"]),
+        "environment_source": env_source,
+        "residual_model": f"pilot residual rows resampled with replacement, inflated by "
+                          f"{model['inflate']:.4f}; spatially independent",
+        "pilot_seed": pilot.settings["seed"], "engine": engine,
+        "layout_diagnostics": {k: {kk: vv for kk, vv in v.items() if kk != "environment_source"}
+                               for k, v in infos.items()},
+    }
+    return DesignEvaluation(tuple(built), coverage, power, fractions, sims,
+                            tuple(_recommend(power, coverage, target, classes, built)),
+                            settings_out,
+                            tuple([n for n in pilot.notes if n.startswith("The rebuilt pilot")]
+                                  + _notes(infos)))
+
+
+def _simulation_frame(built, results, n_sim) -> pd.DataFrame:
+    rows = []
+    for k, res in enumerate(results):
+        lay = built[k // n_sim]
+        row = {"layout": lay.name, "replicate": k % n_sim, **res["detected"],
+               "n_environment": res["n_environment"], "n_space": res["n_space"]}
+        row.update({f"estimate_{f}": v for f, v in zip(_FRACTIONS, res["estimate"])})
+        row.update({f"truth_{f}": v for f, v in zip(_FRACTIONS, res["truth"])})
+        rows.append(row)
+    return pd.DataFrame(rows)
+
+
+def _power_tables(pilot, built, sims, classes) -> tuple[pd.DataFrame, pd.DataFrame]:
+    objectives = ["environment"] + [f"scale:{c}" for c in classes["scale_class"]]
+    sig = {f"scale:{r.scale_class}": r.pilot_significant for r in classes.itertuples()}
+    env_p = (pilot.fraction_tests or {}).get("environment_only")
+    sig["environment"] = bool(pilot.selected_environment) and env_p is not None \
+        and env_p <= pilot.settings["alpha"]
+    prow, frow = [], []
+    pilot_fr = pilot.fractions or {}
+    for lay in built:
+        part = sims[sims["layout"] == lay.name]
+        m = len(part)
+        for obj in objectives:
+            p = float(part[obj].mean()) if obj in part else 0.0
+            low, high = _wilson(p, m)
+            prow.append({"layout": lay.name, "objective": obj, "pilot_significant": sig[obj],
+                         "power": p, "mc_se": math.sqrt(p * (1 - p) / m), "ci_low": low,
+                         "ci_high": high,
+                         "n_sites": lay.n_sites, "line_length": lay.line_length})
+        for f in _FRACTIONS:
+            est, tru = part[f"estimate_{f}"], part[f"truth_{f}"]
+            frow.append({"layout": lay.name, "fraction": f, "pilot": pilot_fr.get(f, np.nan),
+                         "truth": float(tru.mean()), "mean_estimate": float(est.mean()),
+                         "bias": float((est - tru).mean()), "sd": float(est.std(ddof=1))
+                         if m > 1 else np.nan})
+    return pd.DataFrame(prow), pd.DataFrame(frow)
+
+
+def _wilson(p: float, m: int, z: float = 1.959964) -> tuple[float, float]:
+    """Wilson score 95 % interval of a proportion p from m simulations (Wilson 1927, J. Am.
+    Stat. Assoc. 22:209–212); unlike ±2 SE it stays informative at p = 0 or 1."""
+    centre = (p + z * z / (2 * m)) / (1 + z * z / m)
+    half = z * math.sqrt(p * (1 - p) / m + z * z / (4 * m * m)) / (1 + z * z / m)
+    return max(0.0, min(p, centre - half)), min(1.0, max(p, centre + half))
+
+
+def _recommend(power, coverage, target, classes, built) -> list[str]:
+    cost = {b.name: (b.n_sites, b.line_length or 0.0) for b in built}
+    bounds = {f"scale:{r.scale_class}": (r.lower, r.upper) for r in classes.itertuples()}
+    finest = {f"scale:{r.scale_class}": r.finest_selected for r in classes.itertuples()}
+    out = []
+    for obj, part in power.groupby("objective", sort=False):
+        if not part["pilot_significant"].iloc[0]:
+            continue
+        if obj == "environment":
+            label = "the environmental fraction"
+        else:
+            lo, hi = bounds[obj]
+            label = (f"the {obj[6:]} scale class ({lo:.4g}–"
+                     f"{'∞' if not math.isfinite(hi) else f'{hi:.4g}'} map units)")
+        ok = part[part["power"] >= target]
+        if len(ok):
+            best = min(ok.itertuples(), key=lambda r: cost[r.layout])
+            extra = f", {best.line_length:.4g} map units of line" if best.line_length else ""
+            out.append(f"To detect {label} with power ≥ {target:g} you need {best.layout!r} "
+                       f"({best.n_sites} sites{extra}; estimated power {best.power:.2f}, "
+                       f"95 % interval {best.ci_low:.2f}–{best.ci_high:.2f}), the cheapest "
+                       f"candidate that reaches it.")
+        else:
+            top = part.loc[part["power"].idxmax()]
+            hint = "more sites over the same extent, or stronger replication"
+            wave = finest.get(obj)
+            if obj != "environment" and wave is not None and math.isfinite(wave):
+                hint = (f"sites at most {wave / 4:.4g}–{wave / 2:.4g} map units apart where "
+                        f"this class matters (its pilot structure reaches wavelengths of "
+                        f"{wave:.4g}; the finest resolvable wavelength is ≈ 2–4 sampling "
+                        f"intervals), or more sites over the same extent")
+            out.append(f"To detect {label} with power ≥ {target:g}: none of the candidates "
+                       f"(best {top['layout']!r}, power {top['power']:.2f}); consider {hint}.")
+    if not out:
+        out.append("The pilot detected no environmental fraction or scale class, so there is "
+                   "no effect whose detection a new layout could secure.")
+    return out
+
+
+def _notes(infos) -> list[str]:
+    notes = ["Simulations assume the pilot model is right (linear effects of the selected "
+             "variables and vectors), stationarity of the spatial structure over the layouts' "
+             "area, and spatially independent residuals; power is for this model's effect "
+             "sizes and would be lower for weaker effects.",
+             "Environment at new sites is interpolated or read from a layer, with error "
+             "that the simulation does not include; interpolation smooths away local "
+             "variation, which makes environmental power at new sites pessimistic."]
+    for name, info in infos.items():
+        if info.get("constant_environment"):
+            notes.append(f"{name}: variable(s) {info['constant_environment']} take a single "
+                         "value at this layout and cannot be selected there.")
+        weak = {k: v for k, v in info.get("class_variance_ratio", {}).items() if v < 0.5}
+        if weak:
+            notes.append(f"{name}: the pilot's structure extended to these sites keeps only "
+                         + ", ".join(f"{v:.0%} of the {k} class's variance" for k, v in
+                                     weak.items())
+                         + " (sites outside the pilot's reach, or finer than its spacing).")
+    return notes

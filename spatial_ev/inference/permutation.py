@@ -1,0 +1,598 @@
+"""Batched permutation tests for (partial) redundancy analysis.
+
+Statistic: pseudo-F = (SS_model / df_model) / (SS_residual / df_residual), with df_model the
+rank of X (after the conditioning table W) and df_residual = n - 1 - rank(W) - rank(X).
+
+Permutation methods
+    * ``"raw"`` (no conditioning table): the rows of the centred Y are permuted.
+    * ``"reduced_residual"`` (with W): the residuals R of Y on W (the reduced model) are
+      permuted (Freedman & Lane 1983, J. Bus. Econ. Stat. 1:292-298 [memory]). The variant
+      that adds the reduced model's fitted values back before refitting gives the same pseudo-F
+      here, because the numerator's basis is orthogonal to W and the residual sum of squares of
+      the full model removes W again; we therefore compute it from the permuted residuals
+      directly. This is the method of choice for partial tests (Anderson & Legendre 1999,
+      J. Stat. Comput. Simul. 62:271-303).
+
+p-value: ``(k + 1) / (N + 1)`` with k the number of permuted statistics >= the observed one
+(Phipson & Smyth 2010, Stat. Appl. Genet. Mol. Biol. 9:39 [memory]); a permuted value counts as
+"as large" when it is >= observed x (1 - 1e-10), so that rounding in the last digits (the
+identity permutation, symmetric designs) never turns a tie into a miss.
+
+Batched engine. For an orthonormal basis Q = [Q_W | Q_X] (n x k) and permuted residuals ΠR,
+the sums of squares are ``||Q^T Π R||²`` split by block. Many permutations share one matrix
+product: either the rows of R are gathered for a batch of permutations and multiplied by Q^T
+(``(k x n) @ (n x batch*p)``), or -- when Q has fewer columns than R -- the rows of Q are
+gathered with the inverse permutations (``Q[Π⁻¹]^T R``); the narrower side is gathered, in
+cache-sized batches (about 8 MiB, ``_GATHER_BYTES``). Memory is O(batch * n * min(p, k)) per
+task thread. With more species than sites R is first reduced to its n x rank(R)
+singular-value form, which keeps every sum of squares. When X spans more dimensions than the
+residual space (many spatial eigenvectors on few sites; up to 5,000 sites), a basis of the
+residual space (orthogonal complement of [1, W, X]) replaces Q_X and SS_X = ||ΠR||² - SS_W -
+SS_residual, which is cheaper. Tasks (``chunk_size`` permutations each) run on
+:func:`spatial_ev.inference.engines.run_tasks`: locally one thread per core, each drawing its own
+permutations and calling single-threaded BLAS.
+
+Reproducibility. Permutations are drawn in fixed blocks of 128 from
+``SeedSequence(entropy, spawn_key=(block,))``, where ``entropy`` is drawn once from the seed.
+The same seed therefore gives the same permutations -- and the same null distribution up to
+floating-point rounding (~1e-15 relative) and the same p-value -- whatever ``chunk_size``,
+thread count or engine.
+
+Restricted permutations (``restriction``)
+    * ``"free"``: all n! orders; assumes the sites are exchangeable under H0 (no spatial
+      autocorrelation of the residuals, no strata).
+    * ``"blocks"``: rows are permuted only within strata given by ``blocks`` (e.g. survey
+      years, regions, nested plots); use when sites are exchangeable only within strata.
+    * ``"cyclic"``: circular shifts of the row order (n distinct permutations); for a regular
+      transect whose rows are in transect order, it keeps the autocorrelation of the series.
+    * ``"toroidal"``: shifts of a complete regular grid (``grid_shape=(n_rows, n_cols)``, sites
+      in row-major order) in both directions, wrapping around (n distinct permutations); keeps
+      two-dimensional autocorrelation. Cyclic and toroidal shifts are exact only for designs
+      where wrapping around is plausible; with n small, p-values cannot go below ~1/n.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field, replace
+from functools import partial
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import scipy.linalg
+
+from spatial_ev._validation import check_int, check_option, check_rng
+from spatial_ev.stats.linear import (
+    Table, LinearModel, check_explanatory, check_response, model_fraction, prepare_model)
+from spatial_ev.inference.engines import run_tasks
+from spatial_ev.errors import InputError
+from spatial_ev.inference.null import (SeedBlocks, check_run_options,
+                                       permutation_p_value)
+from spatial_ev.stats.linear import reduce_response
+
+__all__ = ["permutation_test", "PermutationTest", "axis_tests", "term_tests", "permutations",
+           "RESTRICTIONS"]
+
+RESTRICTIONS = ("free", "blocks", "cyclic", "toroidal")
+_GATHER_BYTES = 8 * 2 ** 20
+_COMPLEMENT_MAX_SITES = 5000   # the complement is built from an n x n orthogonal matrix
+
+
+# ----------------------------------------------------------------------------------------------
+# permutation indices
+# ----------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class _Scheme:
+    """How permutations are drawn: restriction, number of sites and the seed's entropy."""
+
+    restriction: str
+    n: int
+    entropy: int
+    strata: np.ndarray | None = None     # (n,) integer codes for "blocks"
+    grid_shape: tuple[int, int] | None = None
+
+    def rows(self, start: int, stop: int) -> np.ndarray:
+        """Permutations number ``start`` to ``stop - 1``, shape (stop - start, n), from the
+        null service's seed blocks."""
+        return SeedBlocks(self.entropy, partial(_DRAW[self.restriction], self)).rows(start, stop)
+
+
+def _draw_free(scheme: _Scheme, rng: np.random.Generator, m: int) -> np.ndarray:
+    return rng.permuted(np.broadcast_to(np.arange(scheme.n, dtype=np.intp), (m, scheme.n)),
+                        axis=1)
+
+
+def _draw_blocks(scheme: _Scheme, rng: np.random.Generator, m: int) -> np.ndarray:
+    keys = rng.random((m, scheme.n))
+    codes = np.broadcast_to(scheme.strata, (m, scheme.n))
+    shuffled = np.lexsort((keys, codes), axis=-1)         # random order within each stratum
+    base = np.argsort(scheme.strata, kind="stable")       # the same slots, in site order
+    out = np.empty((m, scheme.n), dtype=np.intp)
+    out[:, base] = shuffled
+    return out
+
+
+def _draw_cyclic(scheme: _Scheme, rng: np.random.Generator, m: int) -> np.ndarray:
+    shift = rng.integers(0, scheme.n, size=(m, 1))
+    return (np.arange(scheme.n) + shift) % scheme.n
+
+
+def _draw_toroidal(scheme: _Scheme, rng: np.random.Generator, m: int) -> np.ndarray:
+    n_rows, n_cols = scheme.grid_shape
+    shift_r = rng.integers(0, n_rows, size=(m, 1, 1))
+    shift_c = rng.integers(0, n_cols, size=(m, 1, 1))
+    r = (np.arange(n_rows)[None, :, None] + shift_r) % n_rows
+    c = (np.arange(n_cols)[None, None, :] + shift_c) % n_cols
+    return (r * n_cols + c).reshape(m, scheme.n)
+
+
+_DRAW: dict[str, Callable[[_Scheme, np.random.Generator, int], np.ndarray]] = {
+    "free": _draw_free, "blocks": _draw_blocks, "cyclic": _draw_cyclic,
+    "toroidal": _draw_toroidal,
+}
+
+
+def _check_scheme(n, seed, restriction, blocks, grid_shape, rows) -> _Scheme:
+    restriction = check_option("restriction", restriction, RESTRICTIONS)
+    if restriction != "blocks" and blocks is not None:
+        raise InputError(f"parameter `blocks` is used only with restriction='blocks'; got "
+                         f"restriction={restriction!r}")
+    if restriction != "toroidal" and grid_shape is not None:
+        raise InputError(f"parameter `grid_shape` is used only with restriction='toroidal'; "
+                         f"got restriction={restriction!r}")
+    rng = check_rng(seed)
+    entropy = int(rng.integers(0, 2 ** 63))
+    strata = shape = None
+    if restriction == "blocks":
+        if blocks is None:
+            raise InputError("restriction='blocks' needs `blocks`: one stratum label per site")
+        if isinstance(blocks, pd.Series) and rows is not None and not blocks.index.equals(rows):
+            raise InputError("`blocks` is a Series whose index differs from the sites of `Y`; "
+                             "align it first, e.g. `blocks.loc[Y.index]`")
+        labels = np.asarray(blocks)
+        if labels.ndim != 1 or len(labels) != n:
+            raise InputError(f"`blocks` must give one stratum label per site ({n}); got shape "
+                             f"{labels.shape}")
+        _, strata = np.unique(labels, return_inverse=True)
+        if np.bincount(strata).max() < 2:
+            raise InputError("`blocks` puts every site in its own stratum, so no permutation "
+                             "is possible; use larger strata")
+    if restriction == "toroidal":
+        ok = (isinstance(grid_shape, (tuple, list)) and len(grid_shape) == 2
+              and all(isinstance(v, (int, np.integer)) and v >= 1 for v in grid_shape))
+        if not ok or int(grid_shape[0]) * int(grid_shape[1]) != n:
+            raise InputError(f"restriction='toroidal' needs `grid_shape=(n_rows, n_cols)` with "
+                             f"n_rows * n_cols = {n} sites in row-major order; got {grid_shape!r}")
+        shape = (int(grid_shape[0]), int(grid_shape[1]))
+    return _Scheme(restriction, n, entropy, strata, shape)
+
+
+def permutations(n_sites: int, n_permutations: int, *,
+                 seed: None | int | np.random.Generator = None, restriction: str = "free",
+                 blocks: Any = None, grid_shape: tuple[int, int] | None = None) -> np.ndarray:
+    """The permutations a test with these settings uses, shape (n_permutations, n_sites).
+
+    Row i maps site positions to the position whose residual they receive.
+
+    Examples
+    --------
+    >>> permutations(5, 2, seed=123456789).shape
+    (2, 5)
+    """
+    n_sites = check_int("n_sites", n_sites, low=2)
+    n_permutations = check_int("n_permutations", n_permutations, low=1)
+    scheme = _check_scheme(n_sites, seed, restriction, blocks, grid_shape, None)
+    return scheme.rows(0, n_permutations)
+
+
+# ----------------------------------------------------------------------------------------------
+# the batched kernel
+# ----------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class _Kernel:
+    """Statistic of every permutation in a range; picklable so that dask can ship it."""
+
+    basis: np.ndarray        # (n, q + r'): [Q_W | Q_X], or [Q_W | complement] (see below)
+    response: np.ndarray     # (n, p'): residuals of Y on W (possibly SVD-reduced)
+    q: int
+    ss_total: float          # ||response||²
+    df_model: int
+    df_residual: int
+    statistic: str           # "f" (pseudo-F) or "first_axis" (largest eigenvalue, axis tests)
+    scheme: _Scheme
+    complement: bool = False  # second block spans the residual space instead of X
+
+    def __call__(self, task: tuple[int, int]) -> np.ndarray:
+        start, stop = task
+        perms = self.scheme.rows(start, stop)
+        k, p = self.basis.shape[1], self.response.shape[1]
+        width = min(k, p)
+        step = max(1, _GATHER_BYTES // (8 * self.scheme.n * width))
+        return np.concatenate([self._batch(perms[i:i + step], gather_basis=k < p)
+                               for i in range(0, len(perms), step)])
+
+    def _batch(self, perms: np.ndarray, *, gather_basis: bool) -> np.ndarray:
+        m, n = perms.shape
+        k, p = self.basis.shape[1], self.response.shape[1]
+        if gather_basis:
+            # (Π R)^T Q = R^T Q[Π⁻¹]: gather the narrower basis with inverse permutations
+            inverse = np.empty_like(perms)
+            np.put_along_axis(inverse, perms, np.arange(n)[None, :], axis=1)
+            g = self.basis.take(inverse.T, axis=0).reshape(n, m * k)   # (n, m*k)
+            prod = (g.T @ self.response).reshape(m, k, p)                # (m, k, p)
+            ss = np.einsum("mkp,mkp->mk", prod, prod)
+        else:
+            g = self.response.take(perms.T, axis=0).reshape(n, m * p)  # (n, m*p)
+            prod = (self.basis.T @ g).reshape(k, m, p)                   # (k, m, p)
+            ss = np.einsum("kmp,kmp->km", prod, prod).T
+        ss_w = ss[:, :self.q].sum(axis=1)
+        ss_2 = ss[:, self.q:].sum(axis=1)
+        if self.complement:  # permuted residuals are centred: total = W part + X part + rest
+            ss_x = np.maximum(self.ss_total - ss_w - ss_2, 0.0)
+            return ss_x / self.df_model / (ss_2 / self.df_residual)
+        resid = np.maximum(self.ss_total - ss_w - ss_2, 0.0) / self.df_residual
+        if self.statistic == "f":
+            return ss_2 / self.df_model / resid
+        block = prod[:, self.q:, :] if gather_basis else prod[self.q:].transpose(1, 0, 2)
+        gram = block @ block.transpose(0, 2, 1) if k - self.q <= p \
+            else block.transpose(0, 2, 1) @ block
+        return np.linalg.eigvalsh(gram)[:, -1] / resid
+
+
+# ----------------------------------------------------------------------------------------------
+# result and the public tests
+# ----------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class PermutationTest:
+    """Result of :func:`permutation_test`.
+
+    Attributes
+    ----------
+    statistic : float
+        Observed pseudo-F.
+    p_value : float
+        ``(k + 1) / (N + 1)``; NaN when ``n_permutations`` is 0.
+    null_distribution : ndarray, shape (n_permutations,)
+        Pseudo-F of every permutation, in permutation order.
+    n_permutations : int
+    method : str
+        ``"raw"`` (rows of Y permuted) or ``"reduced_residual"`` (residuals of Y on the
+        conditioning table permuted, Freedman & Lane 1983).
+    restriction : str
+        ``"free"``, ``"blocks"``, ``"cyclic"`` or ``"toroidal"``.
+    r2, r2_adj : float
+        R² and adjusted R² of X (given the conditioning table: fraction [a], Peres-Neto et al.
+        2006).
+    df_model, df_residual : int
+        Rank of X after W, and ``n - 1 - rank(W) - rank(X)``.
+
+    The test assumes that sites (or the residuals of the reduced model) are exchangeable under
+    the null hypothesis within the chosen restriction; spatially autocorrelated residuals make a
+    free permutation test liberal.
+    """
+
+    statistic: float
+    p_value: float
+    null_distribution: np.ndarray = field(repr=False)
+    n_permutations: int
+    method: str
+    restriction: str
+    r2: float
+    r2_adj: float
+    df_model: int
+    df_residual: int
+
+    def to_frame(self) -> pd.DataFrame:
+        """One-row table of the test.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> rng = np.random.default_rng(5)
+        >>> t = permutation_test(rng.normal(size=(20, 3)), rng.normal(size=(20, 2)),
+        ...                      n_permutations=99, seed=5)
+        >>> list(t.to_frame().columns)[:3]
+        ['r2', 'r2_adj', 'df_model']
+        """
+        return pd.DataFrame([{
+            "r2": self.r2, "r2_adj": self.r2_adj, "df_model": self.df_model,
+            "df_residual": self.df_residual, "pseudo_f": self.statistic, "p_value": self.p_value,
+            "n_permutations": self.n_permutations, "method": self.method,
+            "restriction": self.restriction}])
+
+    def summary(self) -> str:
+        """Plain-text summary with the test's assumption.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> rng = np.random.default_rng(5)
+        >>> "pseudo-F" in permutation_test(rng.normal(size=(20, 3)), rng.normal(size=(20, 2)),
+        ...                                n_permutations=99, seed=5).summary()
+        True
+        """
+        how = ("rows of Y permuted" if self.method == "raw"
+               else "residuals of the conditioning model permuted (Freedman & Lane)")
+        return (f"pseudo-F = {self.statistic:.4g} (df {self.df_model}, {self.df_residual}), "
+                f"p = {self.p_value:.4g} from {self.n_permutations} permutations ({how}, "
+                f"{self.restriction}); R² = {self.r2:.4f}, adjusted R² = {self.r2_adj:.4f}. "
+                "Valid if sites are exchangeable under the null hypothesis within the "
+                "restriction; spatial autocorrelation in the residuals makes free permutations "
+                "liberal.")
+
+
+def _null(kernels: list[_Kernel], n_permutations: int, chunk_size: int, engine: str,
+          scheduler, n_workers, progress) -> list[np.ndarray]:
+    """Null distributions of several kernels, all tasks sent to the engine at once."""
+    ranges = [(a, min(a + chunk_size, n_permutations))
+              for a in range(0, n_permutations, chunk_size)]
+    tasks = [(i, r) for i in range(len(kernels)) for r in ranges]
+    out = run_tasks(_MultiKernel(tuple(kernels)), tasks, engine=engine, scheduler=scheduler,
+                    n_workers=n_workers, progress=progress)
+    per = len(ranges)
+    return [np.concatenate(out[i * per:(i + 1) * per]) if per else np.zeros(0)
+            for i in range(len(kernels))]
+
+
+@dataclass(frozen=True)
+class _MultiKernel:
+    kernels: tuple
+
+    def __call__(self, task):
+        which, rows = task
+        return self.kernels[which](rows)
+
+
+def _test(model: LinearModel, scheme: _Scheme, statistic: str = "f"):
+    """Observed statistic and kernel for the X part of ``model`` given its W part."""
+    qw, qx = model.qw, model.qx
+    n, q, r = model.n, qw.shape[1], qx.shape[1]
+    resid = model.y - qw @ (qw.T @ model.y) if q else model.y
+    response = reduce_response(resid)
+    ss_total = float(np.einsum("ij,ij->", response, response))
+    df_res = n - 1 - q - r
+    prod = qx.T @ response
+    ss_x = float(np.einsum("ij,ij->", prod, prod))
+    denominator = max(ss_total - ss_x, 0.0) / df_res
+    if statistic == "f":
+        observed = ss_x / r / denominator
+    else:
+        observed = float(np.linalg.svd(prod, compute_uv=False)[0] ** 2) / denominator
+    second, complement = qx, False
+    if statistic == "f" and df_res < r and n <= _COMPLEMENT_MAX_SITES:
+        # fewer residual than model dimensions: the orthogonal complement of [1, W, X] is the
+        # narrower basis, and SS_X = SS_total - SS_W - SS_residual
+        spanned = np.column_stack([np.full(n, n ** -0.5), qw, qx])
+        full = scipy.linalg.qr(spanned, mode="full", check_finite=False)[0]
+        second, complement = full[:, spanned.shape[1]:], True
+    kernel = _Kernel(np.ascontiguousarray(np.hstack([qw, second])), response, q, ss_total, r,
+                     df_res, statistic, scheme, complement)
+    return observed, kernel
+
+
+def permutation_test(Y: Table, X: Table, *, conditioning: Table | None = None,
+                     n_permutations: int = 999,
+                     seed: None | int | np.random.Generator = None, chunk_size: int | None = None,
+                     engine: str = "local", scheduler: Any = None, restriction: str = "free",
+                     blocks: Any = None, grid_shape: tuple[int, int] | None = None,
+                     progress: Callable[[int, int], Any] | None = None,
+                     n_workers: int | None = None) -> PermutationTest:
+    """Permutation test of the (partial) RDA of Y on X, with a batched engine.
+
+    Parameters
+    ----------
+    Y : DataFrame or array, shape (n_sites, n_species)
+        Response table (usually transformed).
+    X : DataFrame or array, shape (n_sites, n_variables)
+        Explanatory table to test.
+    conditioning : DataFrame or array, shape (n_sites, n_covariables), optional
+        Covariables W: tests X given W by reduced-model residual permutation.
+    n_permutations : int
+        Number of permutations N (0 gives the statistic only, p = NaN).
+    seed : None, int or numpy Generator
+        One draw from it fixes every permutation (see the module notes on reproducibility).
+    chunk_size : int, optional
+        Permutations per task handed to the engine (default 256); does not change results.
+        Memory stays O(batch * n * min(p, rank)) per thread, with gathers of about 8 MiB
+        (cache-sized batches) inside a task.
+    engine : {"local", "dask"}
+        See :func:`spatial_ev.inference.engines.run_tasks`; ``scheduler`` is its address or Client.
+    restriction : {"free", "blocks", "cyclic", "toroidal"}
+        Permutation scheme (module notes); ``blocks`` gives strata labels for "blocks",
+        ``grid_shape=(n_rows, n_cols)`` the complete regular grid for "toroidal".
+    progress : callable, optional
+        ``progress(done, total)`` after each finished task.
+    n_workers : int, optional
+        Threads (local) or workers (temporary dask LocalCluster); see
+        :func:`~spatial_ev.inference.engines.run_tasks`. Does not change results.
+
+    Returns
+    -------
+    PermutationTest
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(918273645)
+    >>> x = rng.normal(size=(30, 2))
+    >>> y = x @ rng.normal(size=(2, 5)) + rng.normal(size=(30, 5))
+    >>> test = permutation_test(y, x, n_permutations=199, seed=42)
+    >>> test.p_value
+    0.005
+    """
+    n_permutations, chunk_size, engine = check_run_options(n_permutations, chunk_size, engine, progress)
+    model = prepare_model(Y, X, conditioning, require_x=True)
+    scheme = _check_scheme(model.n, seed, restriction, blocks, grid_shape, model.rows)
+    observed, kernel = _test(model, scheme)
+    null = _null([kernel], n_permutations, chunk_size, engine, scheduler, n_workers, progress)[0]
+    fraction = model_fraction(model)
+    return PermutationTest(
+        statistic=float(observed), p_value=permutation_p_value(observed, null), null_distribution=null,
+        n_permutations=n_permutations,
+        method="reduced_residual" if model.qw.shape[1] else "raw",
+        restriction=scheme.restriction, r2=fraction.r2, r2_adj=fraction.r2_adj,
+        df_model=fraction.rank,
+        df_residual=kernel.df_residual)
+
+
+_AXIS_METHODS = ("forward", "marginal")
+
+
+def axis_tests(Y: Table, X: Table, *, conditioning: Table | None = None,
+               method: str = "forward", max_axes: int | None = None,
+               n_permutations: int = 999, seed: None | int | np.random.Generator = None,
+               chunk_size: int | None = None, engine: str = "local", scheduler: Any = None,
+               restriction: str = "free", blocks: Any = None,
+               grid_shape: tuple[int, int] | None = None,
+               progress: Callable[[int, int], Any] | None = None,
+               n_workers: int | None = None) -> pd.DataFrame:
+    """Permutation test of each canonical axis of a (partial) RDA, one axis at a time.
+
+    Axes are tested one by one, never all at once (testing every axis against the permuted
+    first eigenvalues is invalid: Legendre, Oksanen & ter Braak 2011, Methods Ecol. Evol.
+    2:269-277). For axis j the statistic is ``sigma_j² / (RSS / df_residual)`` (sigma_j² the
+    axis' sum of squares, RSS the full model's residual sum of squares) and it is compared to
+    the largest eigenvalue statistic of the permuted data:
+
+    * ``"forward"``: the fitted site scores of axes 1..j-1 (and the conditioning table) are
+      covariables; residuals of Y on them are permuted (Freedman & Lane). Read the results in
+      order and stop at the first axis that is not significant.
+    * ``"marginal"``: the fitted site scores of every *other* canonical axis are covariables.
+
+    Parameters are those of :func:`permutation_test`; ``max_axes`` limits the number of axes
+    tested (default: all canonical axes). Every axis uses the same permutations.
+
+    Returns
+    -------
+    DataFrame
+        Index ``canonical_1, ...``; columns ``variance`` (eigenvalue), ``proportion`` (of the
+        total variance of Y), ``pseudo_f``, ``p_value``, ``n_permutations``, ``method``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(5647382910)
+    >>> x = rng.normal(size=(40, 3))
+    >>> y = x[:, :1] @ rng.normal(size=(1, 6)) * 2 + rng.normal(size=(40, 6))
+    >>> float(axis_tests(y, x, n_permutations=199, seed=3)["p_value"].iloc[0])
+    0.005
+    """
+    n_permutations, chunk_size, engine = check_run_options(n_permutations, chunk_size, engine, progress)
+    method = check_option("method", method, _AXIS_METHODS)
+    model = prepare_model(Y, X, conditioning, require_x=True)
+    scheme = _check_scheme(model.n, seed, restriction, blocks, grid_shape, model.rows)
+    qw, qx = model.qw, model.qx
+    resid = model.y - qw @ (qw.T @ model.y) if qw.shape[1] else model.y
+    u, s, _ = np.linalg.svd(qx.T @ resid, full_matrices=True)
+    s = np.concatenate([s, np.zeros(u.shape[0] - s.size)])
+    n_canonical = int(np.count_nonzero(s > s[0] * max(resid.shape) * np.finfo(float).eps * 10))
+    n_axes = n_canonical
+    if max_axes is not None:
+        n_axes = min(n_axes, check_int("max_axes", max_axes, low=1))
+    directions = qx @ u                                   # (n, r): canonical directions first
+    observed, kernels = [], []
+    for j in range(n_axes):
+        if method == "forward":
+            cond, test = np.arange(j), np.arange(j, qx.shape[1])
+        else:
+            cond = np.delete(np.arange(n_canonical), j)
+            test = np.concatenate([[j], np.arange(n_canonical, qx.shape[1])]).astype(int)
+        sub = replace(model, qw=np.hstack([qw, directions[:, cond]]), qx=directions[:, test])
+        stat, kernel = _test(sub, scheme, "first_axis")
+        observed.append(stat)
+        kernels.append(kernel)
+    nulls = _null(kernels, n_permutations, chunk_size, engine, scheduler, n_workers, progress)
+    total = float(np.einsum("ij,ij->", model.y, model.y))
+    return pd.DataFrame({
+        "variance": s[:n_axes] ** 2 / (model.n - 1),
+        "proportion": s[:n_axes] ** 2 / total,
+        "pseudo_f": observed,
+        "p_value": [permutation_p_value(o, nl) for o, nl in zip(observed, nulls)],
+        "n_permutations": n_permutations,
+        "method": method,
+    }, index=pd.Index([f"canonical_{j + 1}" for j in range(n_axes)], name="axis"))
+
+
+def _check_terms(Y, terms, conditioning):
+    y, rows, _ = check_response(Y)
+    if not isinstance(terms, Mapping) or not terms:
+        raise InputError("parameter `terms` must be a non-empty mapping {name: table}, e.g. "
+                         "{'environment': env, 'space': vectors}; got "
+                         f"{type(terms).__name__}")
+    tables = {str(name): check_explanatory(f"terms[{name!r}]", table, y.shape[0], rows)[0]
+              for name, table in terms.items()}
+    w = None
+    if conditioning is not None:
+        w = check_explanatory("conditioning", conditioning, y.shape[0], rows)[0]
+    models = {}
+    for name, table in tables.items():
+        others = [t for other, t in tables.items() if other != name] + ([w] if w is not None
+                                                                         else [])
+        try:
+            models[name] = prepare_model(Y, table, np.hstack(others) if others else None,
+                                    require_x=True)
+        except InputError as exc:
+            raise InputError(f"term {name!r} cannot be tested given the other terms: {exc}") \
+                from None
+    return models
+
+
+def term_tests(Y: Table, terms: Mapping[str, Table], *, conditioning: Table | None = None,
+               n_permutations: int = 999,
+               seed: None | int | np.random.Generator = None, chunk_size: int | None = None,
+               engine: str = "local", scheduler: Any = None, restriction: str = "free",
+               blocks: Any = None, grid_shape: tuple[int, int] | None = None,
+               progress: Callable[[int, int], Any] | None = None,
+               n_workers: int | None = None) -> pd.DataFrame:
+    """Test each term given all the other terms (and ``conditioning``).
+
+    Each term's unique contribution is tested by reduced-model residual permutation
+    (Freedman & Lane 1983): the residuals of Y on the other terms are permuted. Every term uses
+    the same permutations. The unique fractions do not add up to the joint R² when terms are
+    correlated (the shared part is not testable).
+
+    Parameters
+    ----------
+    Y : DataFrame or array, shape (n_sites, n_species)
+    terms : mapping of str to DataFrame or array, each (n_sites, n_variables_t)
+    conditioning, n_permutations, seed, chunk_size, engine, scheduler, restriction, blocks, \
+grid_shape, progress, n_workers
+        As in :func:`permutation_test`.
+
+    Returns
+    -------
+    DataFrame
+        Index = term names; columns ``df`` (rank added by the term), ``r2`` and ``r2_adj``
+        (unique fraction, Peres-Neto et al. 2006), ``pseudo_f``, ``p_value``,
+        ``n_permutations``, ``method``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(1029384756)
+    >>> a, b = rng.normal(size=(30, 2)), rng.normal(size=(30, 2))
+    >>> y = a @ rng.normal(size=(2, 4)) + rng.normal(size=(30, 4))
+    >>> float(term_tests(y, {"a": a, "b": b}, n_permutations=199, seed=9)["p_value"]["a"])
+    0.005
+    """
+    n_permutations, chunk_size, engine = check_run_options(n_permutations, chunk_size, engine, progress)
+    models = _check_terms(Y, terms, conditioning)
+    first = next(iter(models.values()))
+    scheme = _check_scheme(first.n, seed, restriction, blocks, grid_shape, first.rows)
+    tests = [_test(model, scheme) for model in models.values()]
+    nulls = _null([k for _, k in tests], n_permutations, chunk_size, engine, scheduler,
+                  n_workers, progress)
+    fractions = [model_fraction(model) for model in models.values()]
+    return pd.DataFrame({
+        "df": [f.rank for f in fractions],
+        "r2": [f.r2 for f in fractions],
+        "r2_adj": [f.r2_adj for f in fractions],
+        "pseudo_f": [o for o, _ in tests],
+        "p_value": [permutation_p_value(o, nl) for (o, _), nl in zip(tests, nulls)],
+        "n_permutations": n_permutations,
+        "method": ["reduced_residual" if m.qw.shape[1] else "raw" for m in models.values()],
+    }, index=pd.Index(list(models), name="term"))

@@ -1,0 +1,2 @@
+"""Selection floor: forward selection, weighting-scheme comparison, residual-autocorrelation
+selection, variation partitioning and its tests. Imports the floors below it."""

@@ -1,0 +1,518 @@
+"""Spatial eigenvectors (MEM) from a sparse similarity: distance-based and graph-based.
+
+Both families are eigenvectors of C·W·C (C = I − 11ᵀ/n) for a sparse symmetric W:
+
+* distance-based MEM / PCNM (Borcard & Legendre 2002, Ecol. Model. 153:51–68; Dray, Legendre &
+  Peres-Neto 2006, Ecol. Model. 196:483–493): w_ij = 1 − (d_ij/4t)² for 0 < d_ij ≤ t. The
+  principal coordinates of the distance matrix truncated at t (distances > t set to 4t) have
+  the same eigenvectors, with PCoA eigenvalues λ = 8t²(μ + 1) [derived];
+* graph-based MEM (Dray et al. 2006): W = connectivity ∘ edge weights of a
+  :class:`~spatial_ev.space.graphs.NeighbourGraph`.
+
+Moran's I of eigenvector k is I_k = (n/S₀)·μ_k (S₀ = 1ᵀW1). Below ~3000 sites a dense symmetric
+eigensolver is used; above, Lanczos (ARPACK, :func:`scipy.sparse.linalg.eigsh`) on an operator
+that centres implicitly, asking only for the broadest vectors — the n × n matrix is never
+formed and memory stays O(n·(neighbours + vectors)).
+
+Lanczos details: ncv = 2k + 1 Lanczos vectors, full machine-precision tolerance, a fixed
+starting vector (results repeat), BLAS limited to one thread inside ARPACK (its
+reorthogonalisation is memory-bound level-2 BLAS; one thread is as fast on an idle machine and
+much faster on a shared one). Most of the time is ARPACK's reorthogonalisation, linear in n per
+Lanczos step; the number of steps grows when the broadest eigenvalues crowd together (larger
+areas at the same sampling density). See ``benchmarks/eigen_scaling.py``.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import scipy.linalg
+from scipy import sparse, special
+from scipy.sparse import csgraph
+from scipy.sparse.linalg import LinearOperator, eigsh
+from scipy.spatial import ConvexHull, cKDTree
+from threadpoolctl import threadpool_limits
+
+from spatial_ev._validation import check_int, check_option, check_real
+from spatial_ev.space.geometry import (Layout, band_pairs, check_coordinates, chord_to_distance,
+                                       distance_to_chord, layout_points, mst_threshold,
+                                       plane_coordinates, symmetric_matrix)
+from spatial_ev.space.graphs import (NeighbourGraph, check_weighting, edge_weight_values,
+                                     insertion_neighbours)
+from spatial_ev.errors import DisconnectedGraphWarning, InputError
+
+__all__ = ["SpatialBasis", "distance_eigenvectors", "graph_eigenvectors", "DENSE_LIMIT"]
+
+DENSE_LIMIT = 3000
+_SIGNS = ("positive", "negative", "all")
+_SOLVERS = ("auto", "dense", "sparse")
+
+
+@dataclass(frozen=True)
+class SpatialBasis:
+    """A set of spatial eigenvectors (MEM) with their eigenvalues, Moran's I and scales.
+
+    Attributes
+    ----------
+    vectors : DataFrame, shape (n_sites, k)
+        Columns ``sv001``, ``sv002``, … by decreasing eigenvalue (= decreasing Moran's I);
+        unit norm, mutually orthogonal, orthogonal to the constant. Sign rule: the first
+        entry (site order) among those of largest absolute value (within 1e-8) is positive.
+    eigenvalues : ndarray, shape (k,)
+        μ_k, eigenvalues of C·W·C (both families). Moran's I = (n/S₀)·μ_k.
+    moran_i : Series, shape (k,)
+        Moran's I of each vector under ``weights``.
+    scale : Series, shape (k,)
+        Equivalent wavelength in map units: the wavelength 2π/κ of a plane wave (a sine on a
+        transect) whose neighbour-lag autocorrelation Σw f(κd)/Σw (f = J0 in two dimensions,
+        cos on a line) equals the vector's ρ = uᵀWu/uᵀDu (D = weighted degrees). On a regular
+        transect vector k has scale ≈ 2n/k spacings; half of it is the size of a patch.
+        Vectors finer than the neighbour lag can resolve get the finest resolvable wavelength.
+    method : str
+        ``"distance_based"`` or the neighbour-graph method.
+    threshold : float or None
+        Truncation distance t (distance-based) or distance band threshold.
+    weights : scipy.sparse.csr_matrix, shape (n_sites, n_sites)
+        The similarity W whose Moran's I the vectors maximise.
+    pcoa_eigenvalues : ndarray or None
+        λ_k = 8t²(μ_k + 1), principal-coordinate eigenvalues of the truncated distance matrix
+        (distance-based family only).
+    solver : str
+        ``"dense"`` or ``"sparse"`` (Lanczos), the path that ran.
+    weighting, exponent : str, float or None
+        Edge weighting of a graph-based basis.
+    """
+
+    vectors: pd.DataFrame
+    eigenvalues: np.ndarray
+    moran_i: pd.Series
+    scale: pd.Series
+    method: str
+    threshold: float | None
+    weights: sparse.csr_matrix
+    pcoa_eigenvalues: np.ndarray | None = None
+    solver: str = "dense"
+    weighting: str = "binary"
+    exponent: float | None = None
+    coords: np.ndarray | None = field(default=None, repr=False)
+    metric: str = "euclidean"
+    graph: NeighbourGraph | None = field(default=None, repr=False)
+    self_weight: float = 1.0
+    max_distance: float | None = None
+
+    @property
+    def n_vectors(self) -> int:
+        """Number of vectors k."""
+        return self.vectors.shape[1]
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per vector: eigenvalue, Moran's I, scale (and PCoA eigenvalue)."""
+        out = pd.DataFrame({"eigenvalue": self.eigenvalues, "moran_i": self.moran_i.to_numpy(),
+                            "scale": self.scale.to_numpy()}, index=self.vectors.columns)
+        if self.pcoa_eigenvalues is not None:
+            out["pcoa_eigenvalue"] = self.pcoa_eigenvalues
+        out.index.name = "vector"
+        return out
+
+    def summary(self) -> str:
+        """Short text description (assumptions included)."""
+        i = self.moran_i.to_numpy()
+        s = self.scale.to_numpy()
+        text = (f"{self.n_vectors} spatial eigenvectors ({self.method}"
+                + (f", threshold {self.threshold:.6g}" if self.threshold else "")
+                + f", {self.solver} solver) for {self.vectors.shape[0]} sites")
+        if self.n_vectors:
+            text += (f"; Moran's I from {i.max():.4f} to {i.min():.4f}; scales from "
+                     f"{s.max():.6g} to {s.min():.6g} map units (equivalent wavelength)")
+        return text + ". Scales assume roughly isotropic, stationary patterns."
+
+    def extend(self, new_coords: Any) -> pd.DataFrame:
+        """Values of the vectors at new points (Nyström / add-a-point extension).
+
+        With kernel K = W + cI (c = 1, the self-similarity, for the distance-based family and
+        the binary/linear/concave-down weightings; the largest weight for concave-up), a new
+        point with similarities k_p to the sites gets u_k(p) = (k_p − K1/n)ᵀu_k / (μ_k + c)
+        (Gower 1968 add-a-point; Bengio et al. 2004 Nyström form). At an original site this
+        reproduces the vector exactly. Distance-based: k_p = 1 − (d/4t)² for d ≤ t.
+        Graph-based: the point gets the edges it would have if inserted in the graph (see
+        :func:`spatial_ev.space.graphs.insertion_neighbours`), weighted alike. Vectors with
+        μ_k + c near 0 (strongly negative Moran's I) are unstable and returned as NaN.
+
+        Examples
+        --------
+        >>> b = distance_eigenvectors([[0, 0], [1, 0], [2, 0], [3, 0], [4, 0]])
+        >>> bool(np.allclose(b.extend([[1, 0]]).to_numpy(), b.vectors.iloc[[1]].to_numpy()))
+        True
+        """
+        new_xy, new_ids = _check_new_coords(new_coords)
+        n = self.vectors.shape[0]
+        u = self.vectors.to_numpy()
+        c = self.self_weight
+        if self.method == "distance_based":
+            kp = _distance_kernel_rows(self, new_xy)
+        else:
+            p, s, d, coincident = insertion_neighbours(self.graph, new_xy)
+            w = edge_weight_values(d, self.weighting, self.exponent, self.max_distance or 1.0) \
+                if len(d) else d
+            base = sparse.csr_matrix((w, (p, s)), shape=(len(new_xy), n))
+            hit = np.flatnonzero(coincident >= 0)
+            rows = sparse.csr_matrix(self.weights[coincident[hit]])
+            sel = sparse.csr_matrix((np.ones(len(hit)), (hit, np.arange(len(hit)))),
+                                    shape=(len(new_xy), len(hit)))
+            self_part = sparse.csr_matrix((np.full(len(hit), c), (hit, coincident[hit])),
+                                          shape=(len(new_xy), n))
+            kp = base + sel @ rows + self_part
+        row_mean = (np.asarray(self.weights.sum(axis=1)).ravel() + c) / n
+        denom = self.eigenvalues + c
+        values = (kp @ u - row_mean @ u) / np.where(np.abs(denom) > 1e-8 * max(c, 1e-300),
+                                                    denom, np.nan)
+        return pd.DataFrame(values, index=new_ids, columns=self.vectors.columns)
+
+
+def _check_new_coords(new_coords: Any) -> tuple[np.ndarray, pd.Index]:
+    if hasattr(new_coords, "coords") and not isinstance(new_coords, (np.ndarray, pd.DataFrame)):
+        new_coords = new_coords.coords
+    if isinstance(new_coords, pd.DataFrame):
+        if {"x", "y"} - set(new_coords.columns):
+            raise InputError("`new_coords` DataFrame must have columns 'x' and 'y'; got "
+                             f"{list(new_coords.columns)!r}")
+        return new_coords[["x", "y"]].to_numpy(dtype=np.float64, copy=True), new_coords.index
+    try:
+        xy = np.array(new_coords, dtype=np.float64, copy=True)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"`new_coords` must be numeric coordinates ({exc})") from None
+    if xy.ndim != 2 or xy.shape[1] != 2 or not np.isfinite(xy).all():
+        raise InputError(f"`new_coords` must be a finite (m, 2) array; got shape {xy.shape}")
+    return xy, pd.RangeIndex(len(xy), name="point")
+
+
+def _distance_kernel_rows(basis: SpatialBasis, new_xy: np.ndarray) -> sparse.csr_matrix:
+    layout = check_coordinates(basis.coords, distance=basis.metric)
+    t = basis.threshold
+    new = layout_points(layout, new_xy)
+    chord = distance_to_chord(t, basis.metric) * (1 + 1e-9)
+    hits = cKDTree(new).sparse_distance_matrix(cKDTree(layout.points), chord,
+                                               output_type="ndarray")
+    p, s = hits["i"].astype(np.int64), hits["j"].astype(np.int64)
+    d = chord_to_distance(np.sqrt(((new[p] - layout.points[s]) ** 2).sum(1)), basis.metric)
+    keep = d <= t
+    p, s, d = p[keep], s[keep], d[keep]
+    return sparse.csr_matrix((1.0 - (d / (4 * t)) ** 2, (p, s)), shape=(len(new), layout.n))
+
+
+# ---------------------------------------------------------------- eigen-solvers
+
+def _centred_operator(w: sparse.csr_matrix) -> LinearOperator:
+    """x ↦ C W C x computed as W(x − x̄) − mean(W(x − x̄)), for vectors and blocks."""
+    def matmat(x):
+        x = np.asarray(x, dtype=np.float64)
+        y = w @ (x - x.mean(axis=0))
+        return y - y.mean(axis=0)
+    n = w.shape[0]
+    return LinearOperator((n, n), matvec=matmat, matmat=matmat, rmatvec=matmat,
+                          dtype=np.float64)
+
+
+def solve_dense(w: sparse.csr_matrix, k: int | None, which: str) -> tuple[np.ndarray, np.ndarray]:
+    """All (or the k extreme) eigenpairs of CWC orthogonal to 1, by a dense solver.
+
+    The constant vector (eigenvalue 0 of CWC) is parked beyond the unwanted end of the
+    spectrum by adding ∓s·11ᵀ/n (s > spectral radius), so the index subset excludes it exactly.
+    """
+    n = w.shape[0]
+    m = w.toarray()
+    m -= m.mean(axis=0, keepdims=True)
+    m -= m.mean(axis=1, keepdims=True)
+    shift = float(abs(w).sum(axis=1).max()) + 1.0
+    m += (shift if which == "SA" else -shift) / n
+    count = n - 1 if k is None else min(k, n - 1)
+    subset = [n - count, n - 1] if which == "LA" else [0, count - 1]
+    mu, u = scipy.linalg.eigh(m, subset_by_index=subset, overwrite_a=True, check_finite=False,
+                              driver="evr")
+    return mu, u
+
+
+def _solve_sparse(w: sparse.csr_matrix, k: int, which: str) -> tuple[np.ndarray, np.ndarray]:
+    """k extreme eigenpairs of CWC by implicitly restarted Lanczos (ARPACK)."""
+    n = w.shape[0]
+    k = min(k, n - 2)
+    v0 = np.random.default_rng(20240607).standard_normal(n)
+    v0 -= v0.mean()
+    ncv = min(n - 1, max(2 * k + 1, k + 64))
+    # ARPACK's reorthogonalisation is memory-bound level-2 BLAS: one thread is as fast on an
+    # idle machine, much faster on a loaded one, and makes results repeat bitwise.
+    with threadpool_limits(limits=1, user_api="blas"):
+        mu, u = eigsh(_centred_operator(w), k=k, which=which, v0=v0, ncv=ncv, tol=0.0,
+                      maxiter=max(1000, 20 * n // ncv))
+    order = np.argsort(-mu if which == "LA" else mu, kind="stable")
+    return mu[order], u[:, order]
+
+
+def finish_vectors(mu: np.ndarray, u: np.ndarray, sign: str) -> tuple[np.ndarray, np.ndarray]:
+    """Keep the wanted sign, order by decreasing μ, centre, normalise, fix signs."""
+    tol = 1e-9 * max(float(np.abs(mu).max(initial=0.0)), 1e-300)
+    keep = {"positive": mu > tol, "negative": mu < -tol, "all": np.ones(len(mu), bool)}[sign]
+    mu, u = mu[keep], u[:, keep]
+    order = np.argsort(-mu, kind="stable")
+    mu, u = mu[order], u[:, order]
+    u = u - u.mean(axis=0)
+    u /= np.linalg.norm(u, axis=0)
+    a = np.abs(u)
+    first = np.argmax(a >= a.max(axis=0) * (1 - 1e-8), axis=0)
+    u *= np.where(u[first, np.arange(u.shape[1])] < 0, -1.0, 1.0)
+    return mu, u
+
+
+# ---------------------------------------------------------------- scale
+
+def _scales(u: np.ndarray, mu: np.ndarray, w: sparse.csr_matrix, lengths: np.ndarray,
+            weights: np.ndarray, one_dimensional: bool) -> np.ndarray:
+    """Equivalent wavelength (map units) of each column of u; see SpatialBasis.scale.
+
+    For unit eigenvectors of CWC orthogonal to 1, uᵀWu = μ, so ρ = μ / Σ_i deg_i u_i².
+    """
+    if u.shape[1] == 0:
+        return np.zeros(0)
+    deg = np.asarray(w.sum(axis=1)).ravel()
+    rho = np.clip(mu / (deg @ (u * u)), -1.0, 1.0)
+    pos = weights > 0
+    lengths, weights = lengths[pos], weights[pos]
+    lo, hi = float(lengths.min()), float(lengths.max())
+    if hi - lo <= 1e-12 * hi:                  # all edges equally long (regular lattices)
+        d, wb = np.array([float(np.average(lengths, weights=weights))]), np.ones(1)
+    else:
+        hist_w, edges = np.histogram(lengths, bins=256, weights=weights)
+        hist_d, _ = np.histogram(lengths, bins=edges, weights=weights * lengths)
+        nz = hist_w > 0
+        d, wb = hist_d[nz] / hist_w[nz], hist_w[nz] / hist_w[nz].sum()
+    d_mean = float(wb @ d)
+    kappa = np.geomspace(1e-3, 20.0, 4000) / d_mean
+    x = kappa[:, None] * d[None, :]
+    one_minus_f = 2 * np.sin(x / 2) ** 2 if one_dimensional else _one_minus_j0(x)
+    gap = one_minus_f @ wb                                  # 1 − ρ(κ), increasing at first
+    stop = np.flatnonzero(np.diff(gap) <= 0)
+    last = stop[0] + 1 if len(stop) else len(gap)
+    kappa, gap = kappa[:last], gap[:last]
+    target = np.clip(1.0 - rho, 1e-300, None)
+    k_est = np.exp(np.interp(np.log(target), np.log(gap), np.log(kappa)))
+    c = 0.5 if one_dimensional else 0.25
+    small = target < gap[0]
+    k_est[small] = np.sqrt(target[small] / (c * float(wb @ d ** 2)))
+    return 2 * np.pi / k_est
+
+
+def _one_minus_j0(x: np.ndarray) -> np.ndarray:
+    series = x ** 2 / 4 - x ** 4 / 64 + x ** 6 / 2304
+    return np.where(x < 1e-2, series, 1.0 - special.j0(x))
+
+
+def _count_for_scale(layout: Layout, finest_scale: float) -> int:
+    """Rough number of vectors broader than finest_scale (Weyl's law for the domain)."""
+    if layout.collinear:
+        extent = float(np.sqrt((np.ptp(layout.points, axis=0) ** 2).sum()))
+        return int(math.ceil(2 * extent / finest_scale))
+    pts = layout.points
+    if layout.metric == "great_circle":
+        pts = plane_coordinates(pts) * 2 * 6_371_008.8
+    area = ConvexHull(pts).volume
+    return int(math.ceil(math.pi * area / finest_scale ** 2))
+
+
+# ---------------------------------------------------------------- public functions
+
+def _check_basis_options(n: int, max_vectors, finest_scale, sign, solver):
+    sign = check_option("sign", sign, _SIGNS)
+    solver = check_option("solver", solver, _SOLVERS)
+    if max_vectors is not None:
+        max_vectors = check_int("max_vectors", max_vectors, low=1)
+    if finest_scale is not None:
+        finest_scale = check_real("finest_scale", finest_scale, low=0, low_inclusive=False)
+    if solver == "auto":
+        solver = "dense" if n <= DENSE_LIMIT else "sparse"
+    if solver == "sparse":
+        if max_vectors is None and finest_scale is None:
+            raise InputError(f"{n} sites: the Lanczos solver computes only the broadest vectors;"
+                             " give `max_vectors` (e.g. 200) or `finest_scale` (map units), or "
+                             "solver='dense' (needs O(n²) memory)")
+        if sign == "all":
+            raise InputError("sign='all' needs every eigenvector: use solver='dense', or ask "
+                             "for sign='positive' or 'negative' with the sparse solver")
+        if n < 4:
+            raise InputError(f"solver='sparse' needs at least 4 sites; got {n}")
+    return max_vectors, finest_scale, sign, solver
+
+
+def _basis(w: sparse.csr_matrix, layout: Layout, lengths: np.ndarray, raw_weights: np.ndarray,
+           *, max_vectors, finest_scale, sign, solver, **fields) -> SpatialBasis:
+    n = layout.n
+    if w.nnz == 0:
+        raise InputError("the similarity matrix has no edges: no spatial structure can be "
+                         "described; use a larger threshold or another graph")
+    which = "SA" if sign == "negative" else "LA"
+    k = max_vectors
+    if finest_scale is not None:
+        k_scale = min(n - 1, int(1.25 * _count_for_scale(layout, finest_scale)) + 10)
+        k = k_scale if k is None else min(k, k_scale)
+    while True:
+        if solver == "dense":
+            mu, u = solve_dense(w, None if sign == "all" else k, which)
+        else:
+            mu, u = _solve_sparse(w, k, which)
+        mu, u = finish_vectors(mu, u, sign)
+        scale = _scales(u, mu, w, lengths, raw_weights, layout.collinear)
+        if finest_scale is None:
+            break
+        enough = (scale.size == 0 or scale.min() < finest_scale or len(mu) < (k or n) * 0.8
+                  or (k or n) >= n - 2 or (max_vectors is not None and k >= max_vectors))
+        if enough:
+            keep = scale >= finest_scale
+            mu, u, scale = mu[keep], u[:, keep], scale[keep]
+            if max_vectors is not None:
+                mu, u, scale = mu[:max_vectors], u[:, :max_vectors], scale[:max_vectors]
+            break
+        k = min(n - 1, 2 * k)
+    if max_vectors is not None:
+        mu, u, scale = mu[:max_vectors], u[:, :max_vectors], scale[:max_vectors]
+    names = [f"sv{i + 1:03d}" for i in range(len(mu))]
+    s0 = float(w.sum())
+    vectors = pd.DataFrame(u, index=layout.site_ids, columns=names)
+    return SpatialBasis(vectors=vectors, eigenvalues=mu,
+                        moran_i=pd.Series(n / s0 * mu, index=names, name="moran_i"),
+                        scale=pd.Series(scale, index=names, name="scale"),
+                        weights=w, solver=solver, coords=layout.xy, metric=layout.metric,
+                        **fields)
+
+
+def distance_eigenvectors(coords: Any, *, threshold: float | None = None,
+                          max_vectors: int | None = None, finest_scale: float | None = None,
+                          sign: str = "positive", solver: str = "auto",
+                          distance: str = "auto") -> SpatialBasis:
+    """Distance-based MEM (PCNM): eigenvectors of the truncated distance matrix.
+
+    Parameters
+    ----------
+    coords : (n, 2) array, DataFrame[x, y] or Survey
+        Site positions in map units (a Survey's projected coordinates).
+    threshold : float, optional
+        Truncation distance t (map units); default the longest edge of the minimum spanning
+        tree (exact, from Delaunay edges), the smallest t keeping all sites connected.
+    max_vectors : int, optional
+        Keep at most this many vectors (the broadest). Required with ``finest_scale`` unset
+        on the sparse path.
+    finest_scale : float, optional
+        Keep only vectors whose ``scale`` (equivalent wavelength, map units) is at least this.
+    sign : {"positive", "negative", "all"}
+        Keep vectors with positive Moran's I (default; the MEM view), negative, or all n − 1.
+        Note PCNM's "positive PCoA eigenvalue" set (λ > 0, i.e. μ > −1) also holds some
+        negatively autocorrelated vectors; use ``pcoa_eigenvalues`` to recover it.
+    solver : {"auto", "dense", "sparse"}
+        Dense eigensolver (≤ 3000 sites under "auto") or Lanczos on an implicitly centred
+        sparse operator (memory O(n·(neighbours + vectors))).
+    distance : {"auto", "euclidean", "great_circle"}
+        See :func:`spatial_ev.space.graphs.neighbour_graph`.
+
+    Returns
+    -------
+    SpatialBasis
+        ``eigenvalues`` holds μ (eigenvalues of C·W·C); ``pcoa_eigenvalues`` holds
+        λ = 8t²(μ + 1) [derived from Borcard & Legendre 2002 and Dray et al. 2006].
+
+    Notes
+    -----
+    Assumes an isotropic, stationary process at the scales represented; irregular sampling
+    distorts the broadest and finest vectors, and the vectors describe the sampled layout,
+    not the landscape between sites.
+
+    Examples
+    --------
+    >>> b = distance_eigenvectors(np.column_stack([np.arange(10.0), np.zeros(10)]))
+    >>> b.n_vectors, round(float(b.moran_i.iloc[0]), 5)
+    (4, 0.93473)
+    """
+    layout = check_coordinates(coords, distance=distance)
+    max_vectors, finest_scale, sign, solver = _check_basis_options(
+        layout.n, max_vectors, finest_scale, sign, solver)
+    if threshold is None:
+        threshold = mst_threshold(layout)
+    else:
+        threshold = check_real("threshold", threshold, low=0, low_inclusive=False)
+    i, j, d = band_pairs(layout, threshold)
+    w = symmetric_matrix(layout.n, i, j, 1.0 - (d / (4.0 * threshold)) ** 2)
+    basis = _basis(w, layout, d, 1.0 - (d / (4.0 * threshold)) ** 2,
+                   max_vectors=max_vectors, finest_scale=finest_scale, sign=sign,
+                   solver=solver, method="distance_based", threshold=threshold)
+    lam = 8.0 * threshold ** 2 * (basis.eigenvalues + 1.0)
+    object.__setattr__(basis, "pcoa_eigenvalues", lam)
+    return basis
+
+
+def _check_zero_weights(graph: NeighbourGraph, w: sparse.csr_matrix, weighting: str) -> None:
+    """Edges as long as d_max get weight 0 under linear / concave-down weightings: say so."""
+    dropped = (graph.lengths.nnz - w.nnz) // 2
+    if dropped == 0:
+        return
+    fix = ("pass `max_distance` larger than the longest edge "
+           f"({graph.longest_edge:.6g}) so that every edge keeps a positive weight")
+    if w.nnz == 0:
+        raise InputError(f"weighting={weighting!r} gives every edge weight 0 (all edges are as "
+                         f"long as d_max, e.g. a regular layout); {fix}, or use 'binary'")
+    n_comp = csgraph.connected_components(w, directed=False)[0]
+    if n_comp > graph.n_components:
+        warnings.warn(f"weighting={weighting!r} gives weight 0 to {dropped} edge(s) as long as "
+                      f"d_max, which splits the weighted graph into {n_comp} components; {fix}",
+                      DisconnectedGraphWarning, stacklevel=3)
+
+
+def graph_eigenvectors(graph: NeighbourGraph, *, weighting: str = "binary",
+                       exponent: float | None = None, max_distance: float | None = None,
+                       max_vectors: int | None = None, finest_scale: float | None = None,
+                       sign: str = "positive", solver: str = "auto") -> SpatialBasis:
+    """Graph-based MEM: eigenvectors of C·W·C for W = connectivity ∘ edge weights.
+
+    Parameters
+    ----------
+    graph : NeighbourGraph
+        From :func:`spatial_ev.space.graphs.neighbour_graph`.
+    weighting, exponent, max_distance
+        Edge weighting (see :meth:`NeighbourGraph.weights`).
+    max_vectors, finest_scale, sign, solver
+        As in :func:`distance_eigenvectors`.
+
+    Returns
+    -------
+    SpatialBasis
+        n − 1 orthonormal vectors orthogonal to 1 in all; Moran's I_k = (n/S₀)μ_k (Dray,
+        Legendre & Peres-Neto 2006). ``pcoa_eigenvalues`` is None.
+
+    Examples
+    --------
+    >>> from spatial_ev.space.graphs import neighbour_graph
+    >>> g = neighbour_graph(np.column_stack([np.arange(10.0), np.zeros(10)]), "delaunay")
+    >>> round(float(graph_eigenvectors(g).moran_i.iloc[0]), 6)
+    0.934726
+    """
+    if not isinstance(graph, NeighbourGraph):
+        raise InputError("`graph` must be a NeighbourGraph (from neighbour_graph); got "
+                         f"{type(graph).__name__}")
+    weighting, exponent, _ = check_weighting(graph, weighting, exponent, max_distance)
+    max_vectors, finest_scale, sign, solver = _check_basis_options(
+        graph.n_sites, max_vectors, finest_scale, sign, solver)
+    full = graph.weights(weighting, exponent=exponent, max_distance=max_distance)
+    w = full.copy()
+    w.eliminate_zeros()
+    _check_zero_weights(graph, w, weighting)
+    layout = check_coordinates(graph.coords, distance=graph.metric if graph.metric ==
+                           "great_circle" else "euclidean")
+    layout = layout._replace(site_ids=graph.site_ids)
+    self_weight = 1.0 if weighting != "concave_up" else float(w.data.max())
+    basis = _basis(w, layout, graph.lengths.data, full.data, max_vectors=max_vectors,
+                   finest_scale=finest_scale, sign=sign, solver=solver, method=graph.method,
+                   threshold=graph.threshold, weighting=weighting, exponent=exponent,
+                   graph=graph, self_weight=self_weight,
+                   max_distance=graph.longest_edge if max_distance is None else max_distance)
+    return basis

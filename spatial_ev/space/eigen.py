@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -446,9 +446,8 @@ def distance_eigenvectors(coords: Any, *, threshold: float | None = None,
     basis = _basis(w, layout, d, 1.0 - (d / (4.0 * threshold)) ** 2,
                    max_vectors=max_vectors, finest_scale=finest_scale, sign=sign,
                    solver=solver, method="distance_based", threshold=threshold)
-    lam = 8.0 * threshold ** 2 * (basis.eigenvalues + 1.0)
-    object.__setattr__(basis, "pcoa_eigenvalues", lam)
-    return basis
+    # a frozen result: the PCoA eigenvalues go into a new instance, never set afterwards
+    return replace(basis, pcoa_eigenvalues=8.0 * threshold ** 2 * (basis.eigenvalues + 1.0))
 
 
 def _check_zero_weights(graph: NeighbourGraph, w: sparse.csr_matrix, weighting: str) -> None:

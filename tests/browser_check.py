@@ -1,4 +1,4 @@
-"""Open a report in headless Chromium and check that it really displays (used by tests).
+"""Open a report in headless Chromium and check that it really displays (a test helper).
 
 :func:`inspect_in_browser` runs Debian's Chromium twice on an HTML file (once with
 ``capture="page"``), each time with a fresh, throw-away profile and no network services:
@@ -122,9 +122,8 @@ def find_chromium() -> str:
             return found
     if os.access("/usr/bin/chromium", os.X_OK):
         return "/usr/bin/chromium"
-    raise FileNotFoundError("headless Chromium is needed to check the HTML report but was not "
-                            "found (looked at $SPATIAL_EV_CHROMIUM, chromium, chromium-browser, "
-                            "/usr/bin/chromium); install it with `apt-get install chromium`")
+    raise FileNotFoundError("headless Chromium not found ($SPATIAL_EV_CHROMIUM, chromium, "
+                            "chromium-browser, /usr/bin/chromium; `apt-get install chromium`)")
 
 
 class _RootAttributes(HTMLParser):

@@ -1,4 +1,4 @@
-"""A complete, illustrative report context built from synthetic data (for tests and previews).
+"""A complete, illustrative report context built from synthetic data (a test helper).
 
 Everything here is invented: 120 sites scattered over a 12 km × 8 km area in UTM zone 33N,
 24 species responding to two environmental gradients and to three spatial patterns (broad:
@@ -33,8 +33,8 @@ def _grid_inside_hull(x: np.ndarray, y: np.ndarray, nx: int = 90, ny: int = 60
 def example_context(*, seed: int = 20261202) -> dict[str, Any]:
     """Return a complete report context made from synthetic data (illustrative only).
 
-    The context follows the contract in :mod:`spatial_ev.report.html`; use it to preview the
-    report layout or in tests. ``seed`` fixes the synthetic data.
+    The context follows the contract in :mod:`spatial_ev.report.html`; the report tests use it
+    to check the layout. ``seed`` fixes the synthetic data.
 
     Examples
     --------

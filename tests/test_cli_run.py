@@ -141,7 +141,7 @@ class TestRunReportInBrowser:
     def test_real_report_displays(self, tmp_path):
         # The run's own report (not an example page) opened in headless Chromium: every figure
         # loads, the page records no script or image errors, the screenshot is not blank.
-        from spatial_ev.report.browser import inspect_in_browser
+        from browser_check import inspect_in_browser
 
         out = tmp_path / "run"
         assert main(["demo", "--out", str(out), *FAST]) == 0

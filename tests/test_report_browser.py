@@ -1,8 +1,10 @@
-"""Headless-Chromium check of the HTML report (spatial_ev.report.browser).
+"""Headless-Chromium check of the HTML report (the test helper tests/browser_check.py).
 
-These tests open real pages in Chromium. CI installs it (.ci/run); where it is missing the
-tests fail with the install command rather than skip, because an unchecked report is exactly
-what they exist to prevent.
+The tests marked ``browser`` open real pages in Chromium. Where it is missing they skip with a
+one-line reason (tests/conftest.py); CI installs it and sets SPATIAL_EV_REQUIRE_BROWSER=1, which
+turns that skip into a failure, because an unchecked report is exactly what they exist to
+prevent. The checker's own validation, its problem list and its log filter need no browser and
+run everywhere.
 """
 
 from __future__ import annotations
@@ -11,15 +13,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from browser_check import BrowserCheck, find_chromium, inspect_in_browser
+from report_example import example_context
 
 from spatial_ev.errors import InputError
-from spatial_ev.report.browser import BrowserCheck, find_chromium, inspect_in_browser
-from spatial_ev.report.html import example_context, render_report
-
-pytestmark = pytest.mark.browser
-
-KEYS = ("data", "methods", "partition", "selected_environment", "selected_space", "scalogram",
-        "basis_moran", "weighting", "scale_maps", "lcbd", "triplot", "limits")
+from spatial_ev.report.html import CONTEXT_PARTS, render_report
 
 
 @pytest.fixture(scope="module")
@@ -27,7 +25,7 @@ def chromium() -> str:
     try:
         return find_chromium()
     except FileNotFoundError as exc:
-        pytest.fail(f"{exc}. The browser tests need Chromium; they do not skip.")
+        pytest.fail(f"{exc}")  # only reached when conftest did not skip: a real failure
 
 
 @pytest.fixture(scope="module")
@@ -38,6 +36,7 @@ def example_check(chromium, tmp_path_factory) -> BrowserCheck:
     return inspect_in_browser(page)
 
 
+@pytest.mark.browser
 class TestInspectInBrowser:
     def test_example_report_displays_without_errors(self, example_check):
         check = example_check
@@ -67,7 +66,7 @@ class TestInspectInBrowser:
             assert part.std() > 5.0
 
     def test_broken_page_is_reported(self, chromium, tmp_path):
-        page = render_report({"title": "Broken on purpose", **{k: None for k in KEYS}})
+        page = render_report({"title": "Broken on purpose", **dict.fromkeys(CONTEXT_PARTS)})
         injected = ('<img src="data:image/png;base64,AAAA" alt="deliberately broken">'
                     '<script>console.error("deliberate console error");'
                     'undefinedFunctionCall();</script></body>')
@@ -85,7 +84,9 @@ class TestInspectInBrowser:
         assert "image did not load: deliberately broken" in problems
         assert check.screenshot is None and not (tmp_path / "broken.screenshot.png").exists()
 
-    def test_validation(self, tmp_path):
+class TestValidation:
+    # checked before Chromium is looked for: runs without a browser
+    def test_arguments_checked(self, tmp_path):
         with pytest.raises(InputError, match="is not an existing file"):
             inspect_in_browser(tmp_path / "missing.html")
         (tmp_path / "x.html").write_text("<html></html>")
@@ -121,13 +122,14 @@ class TestFindChromium:
         with pytest.raises(FileNotFoundError, match="not an executable file"):
             find_chromium()
 
+    @pytest.mark.browser
     def test_finds_installed_browser(self, chromium):
         assert Path(chromium).exists()
 
 
 class TestStderrFilter:
     def test_page_lines_kept_startup_noise_ignored(self):
-        from spatial_ev.report.browser import _page_lines
+        from browser_check import _page_lines
 
         url = "file:///tmp/report.html"
         stderr = "\n".join([

@@ -7,10 +7,16 @@ import html
 import re
 
 import pytest
+from report_example import example_context
 
 from spatial_ev.errors import InputError
-from spatial_ev.report.html import (REFERENCES, SECTIONS, build_figures, example_context,
-                                    render_report, write_report)
+from spatial_ev.report.html import (
+    REFERENCES,
+    SECTIONS,
+    build_figures,
+    render_report,
+    write_report,
+)
 
 MALICIOUS = "<script>alert(1)</script>"
 FIGURE_PARTS = ("partition", "scalogram", "basis_moran", "weighting", "scale_maps", "lcbd",

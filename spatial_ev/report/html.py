@@ -108,11 +108,16 @@ from matplotlib.figure import Figure
 from spatial_ev.errors import InputError
 from spatial_ev.report import figures as figs
 from spatial_ev.report import maps
-from spatial_ev.report._text import (REFERENCES, Citations, data_rows, distance, glance_items, limits_items,
-                    methods_paragraphs, num, pvalue)
+from spatial_ev.report._text import (REFERENCES, Citations, data_rows, distance, glance_items,
+                                     limits_items, methods_paragraphs, num, pvalue)
 
-__all__ = ["render_report", "build_figures", "write_report", "example_context", "SECTIONS",
+__all__ = ["render_report", "build_figures", "write_report", "CONTEXT_PARTS", "SECTIONS",
            "REFERENCES"]
+
+# the context keys every report needs (each may be None: the section then says it is absent)
+CONTEXT_PARTS: tuple[str, ...] = ("data", "methods", "partition", "selected_environment",
+                                  "selected_space", "scalogram", "basis_moran", "weighting",
+                                  "scale_maps", "lcbd", "triplot", "limits")
 
 # section key -> heading, in page order
 SECTIONS: dict[str, str] = {
@@ -163,10 +168,7 @@ def _check_context(context: Any) -> Mapping:
     if not isinstance(context.get("title"), str) or not context["title"].strip():
         raise InputError(f"`context['title']` must be a non-empty string; got "
                          f"{context.get('title')!r}")
-    required = ("data", "methods", "partition", "selected_environment", "selected_space",
-                "scalogram", "basis_moran", "weighting", "scale_maps", "lcbd", "triplot",
-                "limits")
-    missing = [k for k in required if k not in context]
+    missing = [k for k in CONTEXT_PARTS if k not in context]
     if missing:
         raise InputError(f"`context` lacks key(s) {missing}; pass None for a part the analysis "
                          "did not produce, so the report can say so")
@@ -184,8 +186,15 @@ def build_figures(context: Mapping[str, Any]) -> dict[str, Figure]:
 
     Examples
     --------
-    >>> sorted(build_figures(example_context()))[:3]
-    ['basis_moran', 'lcbd_map', 'partition']
+    >>> import pandas as pd
+    >>> context = {"title": "Partition only", **dict.fromkeys(CONTEXT_PARTS)}
+    >>> context["partition"] = {"fractions": pd.DataFrame({
+    ...     "name": ["[a] environment only", "[b] shared", "[c] space only", "[d] unexplained"],
+    ...     "members": [("environment",), ("environment", "space"), ("space",), ()],
+    ...     "r2_adj": [0.14, 0.09, 0.12, 0.65], "testable": [True, False, True, False],
+    ...     "p": [0.001, None, 0.001, None]})}
+    >>> sorted(build_figures(context))
+    ['partition']
     """
     context = _check_context(context)
     unit = figs.unit_symbol(_get(context["data"], "distance_unit"))
@@ -348,7 +357,7 @@ def render_report(context: Mapping[str, Any], *,
 
     Examples
     --------
-    >>> page = render_report(example_context())
+    >>> page = render_report({"title": "No analysis yet", **dict.fromkeys(CONTEXT_PARTS)})
     >>> page.startswith("<!DOCTYPE html>") and "Variation partition" in page
     True
     """
@@ -389,7 +398,8 @@ def write_report(context: Mapping[str, Any], folder: str | os.PathLike, *,
     Examples
     --------
     >>> import tempfile
-    >>> path = write_report(example_context(), tempfile.mkdtemp())
+    >>> context = {"title": "No analysis yet", **dict.fromkeys(CONTEXT_PARTS)}
+    >>> path = write_report(context, tempfile.mkdtemp())
     >>> path.name
     'report.html'
     """
@@ -406,6 +416,3 @@ def write_report(context: Mapping[str, Any], folder: str | os.PathLike, *,
     path.write_text(render_report(context, figures=figures, figure_pngs=pngs),
                     encoding="utf-8")
     return path
-
-
-from spatial_ev.report._example import example_context  # noqa: E402  (kept apart: synthetic data, ~150 lines)

@@ -1,8 +1,23 @@
-"""Shared test settings: a non-interactive plotting backend and the demo files' location."""
+"""Shared test settings: a non-interactive plotting backend, the demo files' location, and
+which marked tests run.
+
+Two markers (declared in pyproject.toml) depend on the machine. The README's test command must
+pass on a machine with nothing but Python, and CI must run everything:
+
+* ``browser`` tests need headless Chromium. Where it is missing they skip with a one-line
+  reason; with ``SPATIAL_EV_REQUIRE_BROWSER=1`` (set by ``.ci/run``, which installs Chromium)
+  a missing browser fails them instead.
+* ``slow`` tests are seeded statistical studies (minutes). They skip with a one-line reason
+  unless ``SPATIAL_EV_RUN_SLOW=1`` (set by ``.ci/run``).
+
+Both variables accept ``1`` (on) or ``0`` / empty / unset (off); any other value stops the
+session with a usage error rather than being guessed at.
+"""
 
 from __future__ import annotations
 
 import os
+from collections.abc import Callable, Mapping
 from pathlib import Path
 
 import matplotlib
@@ -12,6 +27,75 @@ matplotlib.use("Agg")
 os.environ.setdefault("MPLBACKEND", "Agg")
 
 ROOT = Path(__file__).resolve().parents[1]
+
+pytest_plugins = ["pytester"]  # tests/test_readme.py runs the hooks below in a small session
+
+RUN_SLOW = "SPATIAL_EV_RUN_SLOW"
+REQUIRE_BROWSER = "SPATIAL_EV_REQUIRE_BROWSER"
+
+
+def switch_is_on(environ: Mapping[str, str], name: str) -> bool:
+    """Read an on/off environment variable: "1" is on; "0", "" or unset is off."""
+    value = environ.get(name, "").strip()
+    if value not in ("", "0", "1"):
+        raise pytest.UsageError(f"environment variable {name}={value!r}: use 1 (on) or 0 (off)")
+    return value == "1"
+
+
+def chromium_problem() -> str | None:
+    """None when headless Chromium is available, else one line saying why it is not."""
+    from browser_check import find_chromium
+
+    try:
+        find_chromium()
+    except FileNotFoundError as exc:
+        return " ".join(str(exc).split())
+    return None
+
+
+def marker_decision(markers: set[str], environ: Mapping[str, str],
+                    chromium: Callable[[], str | None]) -> tuple[str, str] | None:
+    """What to do with a test carrying ``markers``: None (run it), ("skip", reason) or
+    ("fail", reason). ``chromium`` is asked (lazily) why the browser is unavailable."""
+    if "slow" in markers and not switch_is_on(environ, RUN_SLOW):
+        return "skip", f"slow statistical study; set {RUN_SLOW}=1 to run it (CI does)"
+    if "browser" in markers:
+        problem = chromium()
+        if problem is not None:
+            if switch_is_on(environ, REQUIRE_BROWSER):
+                return "fail", f"{REQUIRE_BROWSER}=1 but {problem}"
+            return "skip", f"{problem}; CI installs it and sets {REQUIRE_BROWSER}=1"
+    return None
+
+
+_REQUIRED_BUT_MISSING = pytest.StashKey[str]()
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    """Skip (or mark as failing) the slow and browser tests as :func:`marker_decision` says."""
+    cache: list[str | None] = []
+
+    def chromium() -> str | None:
+        if not cache:
+            cache.append(chromium_problem())
+        return cache[0]
+
+    for item in items:
+        decision = marker_decision({m.name for m in item.iter_markers()}, os.environ, chromium)
+        if decision is None:
+            continue
+        action, reason = decision
+        if action == "skip":
+            item.add_marker(pytest.mark.skip(reason=reason))
+        else:
+            item.stash[_REQUIRED_BUT_MISSING] = reason
+
+
+def pytest_runtest_setup(item: pytest.Item) -> None:
+    """Fail a required test whose requirement is missing (see pytest_collection_modifyitems)."""
+    reason = item.stash.get(_REQUIRED_BUT_MISSING, None)
+    if reason is not None:
+        pytest.fail(reason, pytrace=False)
 
 
 def load_validation_studies():

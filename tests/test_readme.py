@@ -1,8 +1,15 @@
-"""The README's Quick start is the project's promise: exactly two commands, and CI runs the second."""
+"""The README's Quick start is the project's promise: exactly two commands, the second passes on a
+machine with nothing but Python, and CI runs the same command with the slow and browser tests
+switched on (tests/conftest.py decides what runs)."""
 
 from __future__ import annotations
 
 import re
+import shutil
+
+import conftest
+import pytest
+from conftest import REQUIRE_BROWSER, RUN_SLOW, marker_decision, switch_is_on
 
 from spatial_ev.cli.main import build_parser
 
@@ -20,10 +27,30 @@ def test_quick_start_has_exactly_two_commands(repo_root):
     assert "pytest" in commands[1]
 
 
+def ci_exports(script: str) -> dict[str, str]:
+    """Variables the CI script exports (``export A=1 B=2`` lines, before the test command)."""
+    out = {}
+    for line in script.splitlines():
+        if line.strip().startswith("export "):
+            out.update(item.split("=", 1) for item in line.split()[1:])
+    return out
+
+
 def test_ci_runs_the_readme_test_command_verbatim(repo_root):
     test_command = quick_start_commands((repo_root / "README.md").read_text())[1]
     ci_lines = [line.strip() for line in (repo_root / ".ci" / "run").read_text().splitlines()]
     assert test_command in ci_lines
+    # and switches on, before it, exactly the variables tests/conftest.py reads
+    before = "\n".join(ci_lines[:ci_lines.index(test_command)])
+    assert ci_exports(before) == {RUN_SLOW: "1", REQUIRE_BROWSER: "1"}
+
+
+def test_readme_says_what_skips_and_how_ci_runs_it(repo_root):
+    section = (repo_root / "README.md").read_text().split("## Quick start", 1)[1]
+    section = section.split("\n## ", 1)[0]
+    assert RUN_SLOW in section and REQUIRE_BROWSER in section and ".ci/run" in section
+
+
 
 
 def test_readme_opens_with_the_job(repo_root):
@@ -35,3 +62,116 @@ def test_readme_opens_with_the_job(repo_root):
 def test_demo_command_exists_in_parser():
     sub = next(a for a in build_parser()._actions if a.dest == "command")
     assert "demo" in sub.choices
+
+
+# --------------------------------------------------------------- what the README command runs
+
+def _no_browser() -> str:
+    return "headless Chromium not found"
+
+
+def _browser() -> None:
+    return None
+
+
+class TestMarkerDecision:
+    # the rule table of tests/conftest.py: (markers, environment, browser) -> run / skip / fail
+    def test_plain_tests_always_run(self):
+        for env in ({}, {RUN_SLOW: "1", REQUIRE_BROWSER: "1"}):
+            assert marker_decision(set(), env, _no_browser) is None
+            assert marker_decision({"parametrize"}, env, _no_browser) is None
+
+    def test_slow_skips_unless_switched_on(self):
+        action, reason = marker_decision({"slow"}, {}, _browser)
+        assert action == "skip" and f"{RUN_SLOW}=1" in reason and "\n" not in reason
+        assert marker_decision({"slow"}, {RUN_SLOW: "0"}, _browser)[0] == "skip"
+        assert marker_decision({"slow"}, {RUN_SLOW: "1"}, _browser) is None
+
+    def test_browser_runs_where_chromium_is(self):
+        assert marker_decision({"browser"}, {}, _browser) is None
+        assert marker_decision({"browser"}, {REQUIRE_BROWSER: "1"}, _browser) is None
+
+    def test_browser_skips_without_chromium_unless_required(self):
+        action, reason = marker_decision({"browser"}, {}, _no_browser)
+        assert action == "skip" and "Chromium not found" in reason
+        assert f"{REQUIRE_BROWSER}=1" in reason and "\n" not in reason
+        action, reason = marker_decision({"browser"}, {REQUIRE_BROWSER: "1"}, _no_browser)
+        assert action == "fail" and "Chromium not found" in reason
+
+    def test_browser_is_not_looked_for_when_not_needed(self):
+        def forbidden():
+            raise AssertionError("Chromium looked up for a test that does not need it")
+        assert marker_decision({"slow"}, {}, forbidden)[0] == "skip"
+        assert marker_decision(set(), {}, forbidden) is None
+
+    def test_unclear_switch_values_are_refused(self):
+        assert switch_is_on({}, RUN_SLOW) is False
+        assert switch_is_on({RUN_SLOW: " 1 "}, RUN_SLOW) is True
+        for value in ("yes", "true", "2"):
+            with pytest.raises(pytest.UsageError, match=f"{RUN_SLOW}='{value}': use 1"):
+                switch_is_on({RUN_SLOW: value}, RUN_SLOW)
+
+
+SAMPLE_TESTS = """
+import pytest
+
+def test_plain():
+    pass
+
+@pytest.mark.slow
+def test_study():
+    pass
+
+@pytest.mark.browser
+def test_page():
+    pass
+"""
+
+
+class TestHooksInASession:
+    """The hooks of tests/conftest.py applied to a small session of three tests (one plain, one
+    slow, one browser); Chromium is made present or absent with $SPATIAL_EV_CHROMIUM."""
+
+    @pytest.fixture()
+    def session(self, pytester, monkeypatch):
+        pytester.makeconftest(
+            "import importlib.util\n"
+            f"spec = importlib.util.spec_from_file_location('project_hooks', {conftest.__file__!r})\n"
+            "hooks = importlib.util.module_from_spec(spec)\n"
+            "spec.loader.exec_module(hooks)\n"
+            "pytest_collection_modifyitems = hooks.pytest_collection_modifyitems\n"
+            "pytest_runtest_setup = hooks.pytest_runtest_setup\n"
+            "def pytest_configure(config):\n"
+            "    config.addinivalue_line('markers', 'slow: study')\n"
+            "    config.addinivalue_line('markers', 'browser: page')\n")
+        pytester.makepyfile(test_sample=SAMPLE_TESTS)
+        for name in (RUN_SLOW, REQUIRE_BROWSER):
+            monkeypatch.delenv(name, raising=False)
+
+        def run(chromium_present: bool, **env: str):
+            fake = shutil.which("true") if chromium_present else "/nonexistent/chromium"
+            monkeypatch.setenv("SPATIAL_EV_CHROMIUM", fake)
+            for name, value in env.items():
+                monkeypatch.setenv(name, value)
+            return pytester.runpytest("-p", "no:cacheprovider", "-rs")
+        return run
+
+    def test_readme_command_on_a_bare_machine(self, session):
+        result = session(chromium_present=False)
+        result.assert_outcomes(passed=1, skipped=2)
+        result.stdout.fnmatch_lines([f"SKIPPED*slow statistical study; set {RUN_SLOW}=1*",
+                                     f"SKIPPED*sets {REQUIRE_BROWSER}=1"])
+
+    def test_ci_with_chromium_runs_everything(self, session):
+        result = session(chromium_present=True, **{RUN_SLOW: "1", REQUIRE_BROWSER: "1"})
+        result.assert_outcomes(passed=3)
+
+    def test_ci_without_chromium_fails(self, session):
+        result = session(chromium_present=False, **{RUN_SLOW: "1", REQUIRE_BROWSER: "1"})
+        result.assert_outcomes(passed=2, errors=1)
+        result.stdout.fnmatch_lines([f"{REQUIRE_BROWSER}=1 but *not an executable file"])
+        assert result.ret != 0
+
+    def test_unclear_value_stops_the_session(self, session):
+        result = session(chromium_present=True, **{RUN_SLOW: "yes"})
+        assert result.ret == pytest.ExitCode.USAGE_ERROR

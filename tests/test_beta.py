@@ -1,4 +1,5 @@
-"""Tests of spatial_ev.stats.beta (LCBD / SCBD and the LCBD permutation test)."""
+"""Tests of LCBD / SCBD (spatial_ev.stats.beta) and the LCBD permutation test
+(spatial_ev.inference.lcbd)."""
 
 from __future__ import annotations
 
@@ -9,7 +10,7 @@ import pandas as pd
 import pytest
 from statsmodels.stats.multitest import multipletests
 
-from spatial_ev.stats.beta import beta_diversity
+from spatial_ev.inference.lcbd import beta_diversity
 from spatial_ev.errors import InputError
 
 TABLE = np.array([[10, 10, 20], [10, 15, 10], [15, 5, 5]], dtype=float)

@@ -133,7 +133,7 @@ class TestChunkSizes:
                                    b.select_dtypes("number").to_numpy(), rtol=1e-12)
 
     def test_lcbd_test(self, model):
-        from spatial_ev.stats.beta import beta_diversity
+        from spatial_ev.inference.lcbd import beta_diversity
 
         Y, _, _ = model
         base = beta_diversity(Y, n_permutations=99, seed=SEED)

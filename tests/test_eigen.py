@@ -11,7 +11,7 @@ from spatial_ev.space.geometry import mst_threshold
 from spatial_ev.space.graphs import neighbour_graph
 from spatial_ev.space.eigen import SpatialBasis, distance_eigenvectors, graph_eigenvectors
 from spatial_ev.errors import InputError
-from spatial_ev.space.moran import morans_i
+from spatial_ev.inference.autocorrelation import morans_i
 
 SEEDS = [2_147_483_647, 305_175_781, 9_999_991]
 

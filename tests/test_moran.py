@@ -1,4 +1,5 @@
-"""Tests of spatial_ev.space.moran: Moran's I, its moments and tests, and correlograms."""
+"""Tests of Moran's I (spatial_ev.space.moran), its moments and tests, and correlograms
+(spatial_ev.inference.autocorrelation)."""
 
 from __future__ import annotations
 
@@ -11,7 +12,7 @@ from scipy import sparse
 from scipy.spatial.distance import cdist
 
 from spatial_ev.errors import InputError
-from spatial_ev.space.moran import moran_correlogram, morans_i
+from spatial_ev.inference.autocorrelation import moran_correlogram, morans_i
 
 SEEDS = [31_415_926_535, 27_182_818_284, 16_180_339_887]
 

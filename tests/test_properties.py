@@ -31,7 +31,7 @@ from hypothesis import strategies as st
 from spatial_ev.stats.canonical import redundancy_analysis
 from spatial_ev.space.graphs import neighbour_graph
 from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
-from spatial_ev.space.moran import morans_i
+from spatial_ev.inference.autocorrelation import morans_i
 from spatial_ev.selection.partition import partition_variation
 from spatial_ev.inference.permutation import permutation_test
 from spatial_ev.input.survey import Survey

@@ -8,7 +8,7 @@ import pytest
 from scipy import sparse, stats
 
 from spatial_ev.errors import InputError
-from spatial_ev.space.moran import morans_i
+from spatial_ev.inference.autocorrelation import morans_i
 from spatial_ev.selection.residual_moran import (ResidualMoranSelection,
                                                  select_by_residual_moran)
 
@@ -44,7 +44,8 @@ class TestSelectByResidualMoran:
     def test_each_step_adds_the_vector_that_lowers_residual_moran_most(self):
         # Griffith & Peres-Neto 2006 (Ecology 87:2603–2613): the vector minimising residual
         # Moran's I enters first. Oracle: refit every candidate by least squares and compute
-        # the residual Moran's I with spatial_ev.space.moran.morans_i (a separate implementation).
+        # the residual Moran's I with spatial_ev.inference.autocorrelation.morans_i (a separate
+        # implementation).
         W, U = _path_basis(40, 10)
         rng = np.random.default_rng(192837465)
         y = 3 * U[["sv002"]].to_numpy() + 2 * U[["sv005"]].to_numpy() \

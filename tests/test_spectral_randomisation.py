@@ -14,7 +14,7 @@ from spatial_ev.stats.linear import explained_fraction
 from spatial_ev.space.graphs import neighbour_graph
 from spatial_ev.space.eigen import distance_eigenvectors
 from spatial_ev.errors import InputError
-from spatial_ev.space.moran import morans_i
+from spatial_ev.inference.autocorrelation import morans_i
 from spatial_ev.inference.permutation import permutation_test
 from spatial_ev.inference.spectral import (_signs, complete_spatial_basis,
                                                distance_decay_weights,

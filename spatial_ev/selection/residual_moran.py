@@ -12,7 +12,8 @@ I = (n/S₀)·tr(EᵀWE)/tr(EᵀE), the variance-weighted mean of the Moran's I 
 (for a single response it is the ordinary Moran's I of the residuals; Moran 1950, Biometrika
 37:17–23). Its significance is judged by permuting the rows of the residual matrix (one-sided,
 positive autocorrelation), an approximation: residuals of a regression are not exactly
-exchangeable.
+exchangeable. Permutations, p-value and tie rule are those of the null service
+(:mod:`spatial_ev.inference.null`), through :func:`spatial_ev.inference.autocorrelation.morans_i`.
 """
 
 from __future__ import annotations
@@ -28,7 +29,9 @@ from scipy import sparse
 from spatial_ev._validation import check_int, check_real, check_rng
 from spatial_ev.stats.linear import adjusted_r2
 from spatial_ev.errors import InputError
-from spatial_ev.space.moran import check_weights, morans_i
+from spatial_ev.inference.autocorrelation import morans_i
+from spatial_ev.inference.null import permutation_p_value
+from spatial_ev.space.moran import check_weights
 from spatial_ev.selection.forward import check_selection_data, remove_conditioning, SequentialRanking
 
 __all__ = ["select_by_residual_moran", "ResidualMoranSelection"]
@@ -108,7 +111,8 @@ def select_by_residual_moran(
     candidates : DataFrame or SpatialBasis, shape (n_sites, n_candidates)
         Candidate eigenvectors (columns = names).
     weights : scipy.sparse matrix, ndarray (n_sites, n_sites), NeighbourGraph or SpatialBasis
-        Spatial weights W for Moran's I, as accepted by :func:`spatial_ev.space.moran.morans_i`
+        Spatial weights W for Moran's I, as accepted by
+        :func:`spatial_ev.inference.autocorrelation.morans_i`
         (a graph gives binary weights, a basis its own weights).
     conditioning : array-like or DataFrame, optional
         Variables always in the model (e.g. environment).
@@ -208,8 +212,9 @@ def _pooled_moran_test(E: np.ndarray, W: sparse.csr_matrix, n_permutations: int,
                        rng: np.random.Generator) -> tuple[float, float]:
     """Pooled Moran's I of the residual matrix E and its one-sided permutation p-value.
 
-    :func:`spatial_ev.space.moran.morans_i` permutes the rows of all columns together, so the pooled
-    statistic of each permutation is the variance-weighted mean of the columns' statistics.
+    :func:`spatial_ev.inference.autocorrelation.morans_i` permutes the rows of all columns
+    together, so the pooled statistic of each permutation is the variance-weighted mean of the
+    columns' statistics; the p-value follows the null service's rule.
     """
     den = np.einsum("ij,ij->j", E, E)
     keep = den > 1e-20 * max(float(den.sum()), 1e-300)
@@ -218,7 +223,4 @@ def _pooled_moran_test(E: np.ndarray, W: sparse.csr_matrix, n_permutations: int,
     weight = den[keep] / den[keep].sum()
     result = morans_i(E[:, keep], W, n_permutations=n_permutations, seed=rng)
     observed = float(result.statistic.to_numpy() @ weight)
-    null = result.null_distribution @ weight
-    tolerance = 1e-12 * max(abs(observed), 1.0)
-    p_value = (np.count_nonzero(null >= observed - tolerance) + 1) / (n_permutations + 1)
-    return observed, float(p_value)
+    return observed, permutation_p_value(observed, result.null_distribution @ weight)

@@ -32,7 +32,8 @@ from spatial_ev.errors import InputError
 from spatial_ev.inference.autocorrelation import morans_i
 from spatial_ev.inference.null import permutation_p_value
 from spatial_ev.space.moran import check_weights
-from spatial_ev.selection.forward import check_selection_data, remove_conditioning, SequentialRanking
+from spatial_ev.selection.forward import (check_selection_data, remove_conditioning,
+                                         SequentialRanking)
 
 __all__ = ["select_by_residual_moran", "ResidualMoranSelection"]
 

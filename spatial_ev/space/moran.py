@@ -20,10 +20,11 @@ from scipy.spatial import ConvexHull
 
 from spatial_ev._validation import as_matrix, check_int, check_real
 from spatial_ev.errors import InputError
-from spatial_ev.space.geometry import band_pairs, check_coordinates, chord_to_distance, symmetric_matrix
+from spatial_ev.space.geometry import (band_pairs, check_coordinates, chord_to_distance,
+                                       symmetric_matrix)
 
-__all__ = ["check_weights", "check_moran_values", "MoranInputs", "moran_inputs", "MoranMoments", "moran_statistic",
-           "DistanceClasses", "distance_classes"]
+__all__ = ["check_weights", "check_moran_values", "MoranInputs", "moran_inputs", "MoranMoments",
+           "moran_statistic", "DistanceClasses", "distance_classes"]
 
 
 def check_weights(weights: Any, n: int) -> sparse.csr_matrix:

@@ -389,7 +389,7 @@ def space_time_tests(Y: pd.DataFrame, *, coords: pd.DataFrame, times: Any,
     space_f = helmert_contrasts(s)[site_of]
     time_f = helmert_contrasts(t)[survey_of]
     notes: list[str] = []
-    basis = distance_eigenvectors(coords[["x", "y"]])
+    basis = distance_eigenvectors(coords[["x", "y"]], distance="euclidean")
     space_vec = basis.vectors.to_numpy()
     space_names = list(basis.vectors.columns)
     time_vec = temporal_eigenvectors(tvals).to_numpy()
@@ -413,22 +413,19 @@ def space_time_tests(Y: pd.DataFrame, *, coords: pd.DataFrame, times: Any,
         notes.append(f"Interaction coded by {x_int.shape[1]} products of {len(space_names)} "
                      f"spatial and {time_vec.shape[1]} temporal eigenvector(s) instead of "
                      f"{(s - 1) * (t - 1)} interaction contrasts.")
-    rows = y.index
-    frame = partial(pd.DataFrame, index=rows)
-    yf = frame(values)
-    space_df, time_df = frame(space_f), frame(time_f)
-    with_int = (lambda a: frame(np.column_stack([a, x_int]))) if interaction else frame
+    def with_int(a: np.ndarray) -> np.ndarray:
+        return np.column_stack([a, x_int]) if interaction else a
+
     records = {}
-    tests = [("space", space_df, with_int(time_f), "survey", survey_of),
-             ("time", time_df, with_int(space_f), "site", site_of)]
+    tests = [("space", space_f, with_int(time_f), "survey", survey_of),
+             ("time", time_f, with_int(space_f), "site", site_of)]
     if interaction:
-        tests.append(("interaction", frame(x_int), frame(np.column_stack([space_f, time_f])),
-                      "", None))
+        tests.append(("interaction", x_int, np.column_stack([space_f, time_f]), "", None))
     for name, x, w, within, strata in tests:     # three tests, not a hot path
         kw = dict(options)
         if strata is not None:
             kw.update(restriction="blocks", blocks=strata)
-        res = permutation_test(yf, x, conditioning=w, seed=rng, **kw)
+        res = permutation_test(values, x, conditioning=w, seed=rng, **kw)
         records[name] = {"r2": res.r2, "r2_adj": res.r2_adj, "df_model": res.df_model,
                          "df_residual": res.df_residual, "pseudo_f": res.statistic,
                          "p_value": res.p_value, "n_permutations": n_permutations,

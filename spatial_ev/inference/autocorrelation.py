@@ -29,7 +29,8 @@ from spatial_ev.space.moran import (MoranInputs, check_moran_values, distance_cl
 
 __all__ = ["MoranTest", "morans_i", "MoranCorrelogram", "moran_correlogram"]
 
-_PIECE_BYTES = 8 * 2 ** 20   # a permuted piece n × (orders × variables) in memory
+_PIECE_BYTES = 4 * 2 ** 20   # a permuted piece n × (orders × variables); measured: 1–8 MiB
+                             # within ±30 %, 4 MiB never far from the best
 
 
 @dataclass(frozen=True)
@@ -161,7 +162,7 @@ def morans_i(values: Any, weights: Any, *, n_permutations: int = 0,
         as far from E[I] as the observed one.
     chunk_size : int, optional
         Permutations per task handed to the engine (default 256); does not change results.
-        Inside a task memory is bounded (pieces of about 8 MiB of permuted values).
+        Inside a task memory is bounded (pieces of about 4 MiB of permuted values).
     engine, scheduler, n_workers, progress
         Where the tasks run (see :func:`spatial_ev.inference.engines.run_tasks`); they do not
         change results.

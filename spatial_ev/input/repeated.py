@@ -348,6 +348,8 @@ def _read_per_survey(paths: Sequence, times: Sequence, site_id, opts: dict) -> _
                     f"{T.listed(only_first) or 'none'}; every survey table needs the same "
                     f"species columns (add absent species as columns of zeros)")
             data = data[columns]
+        ids, data = ids.copy(), data.copy()
+        ids.attrs, data.attrs = {}, {}      # per-file line numbers do not survive stacking
         frames.append((ids, data, label, lines))
     ids = pd.concat([f[0] for f in frames], ignore_index=True)
     data = pd.concat([f[1] for f in frames], ignore_index=True)

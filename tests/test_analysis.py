@@ -7,11 +7,12 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
-
 from conftest import make_small_survey_tables
-from spatial_ev.pipeline.analysis import analyse
+
 from spatial_ev.errors import InputError
 from spatial_ev.input.survey import Survey, read_survey
+from spatial_ev.pipeline.analysis import Analysis, AnalysisSettings, analyse
+from spatial_ev.report.summary import summary_record
 
 CONTRACT_KEYS = {"n_sites", "n_species", "transformation", "crs", "distance_unit",
                  "spatial_basis", "global_tests", "selected", "fractions", "fraction_tests",
@@ -74,7 +75,7 @@ class TestAnalyseDemo:
 
     @pytest.mark.slow
     def test_summary_contract(self, demo_result):
-        summary = demo_result.summary_dict()
+        summary = summary_record(demo_result)
         assert CONTRACT_KEYS <= set(summary)
         text = json.dumps(summary, allow_nan=False)  # plain JSON, no NaN
         assert json.loads(text) == summary
@@ -105,12 +106,12 @@ class TestAnalyseSmall:
                     n_permutations=99, seed=123456789)
         b = analyse(survey, spatial_weighting="single", schemes="distance",
                     n_permutations=99, seed=123456789)
-        assert a.summary_dict() == b.summary_dict()
+        assert summary_record(a) == summary_record(b)
 
     def test_spatial_only(self):
         res = analyse(small_survey(environment=False), spatial_weighting="single",
                       schemes="gabriel/binary", n_permutations=99, seed=20261202)
-        summary = res.summary_dict()
+        summary = summary_record(res)
         assert summary["fractions"] is None and summary["fraction_tests"] is None
         assert summary["global_tests"]["environment"] is None
         assert any("spatial only" in note for note in res.notes)
@@ -118,15 +119,16 @@ class TestAnalyseSmall:
     def test_grid_prediction_reproduces_sites(self):
         # The basis extension (Gower 1968 add-a-point, Nyström form) is exact at the sampled
         # sites [derived], so a "grid" made of the site coordinates must give the site scores.
-        from spatial_ev.pipeline.analysis import _fit_classes
+        from spatial_ev.pipeline.options import StepOptions
+        from spatial_ev.pipeline.scale_classes import fit_scale_classes
 
         res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
                       n_permutations=99, seed=4242)
         grid = res.survey.coords.reset_index(drop=True)
-        fits = _fit_classes(res.response - res.response.mean(), res.basis,
-                            [f.scale_class for f in res.scale_fits], None, grid,
-                            np.random.default_rng(1), {"n_permutations": 19, "engine": "local",
-                                                       "scheduler": None})
+        fits = fit_scale_classes(res.response - res.response.mean(), res.basis,
+                                 [f.scale_class for f in res.scale_fits], trend=None, grid=grid,
+                                 seed=np.random.default_rng(1),
+                                 options=StepOptions(n_permutations=19))
         for fit in fits:
             if fit.site_scores is not None:
                 np.testing.assert_allclose(fit.grid_scores[["axis_1"]].to_numpy(),
@@ -176,15 +178,15 @@ class TestAnalyseOptions:
         res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
                       n_permutations=99, seed=777, max_vectors=5)
         assert res.basis.n_vectors == 5
-        assert res.settings["max_vectors"] == 5
+        assert res.settings.max_vectors == 5
 
     def test_large_survey_default_is_recorded(self, monkeypatch):
-        import spatial_ev.pipeline.analysis as module
+        import spatial_ev.pipeline.steps as module
 
         monkeypatch.setattr(module, "DENSE_LIMIT", 50)  # treat the 64-site survey as large
         res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
                       n_permutations=99, seed=778)
-        assert res.settings["max_vectors"] == 200
+        assert res.settings.max_vectors == 200
         assert any("broadest spatial eigenvectors" in note for note in res.notes)
 
     def test_environment_group_fallback(self):
@@ -192,18 +194,76 @@ class TestAnalyseOptions:
         # significant (Blanchet et al. 2008 ceiling); the partition then uses the whole table.
         from types import SimpleNamespace
 
-        from spatial_ev.pipeline.analysis import _environment_group
+        from spatial_ev.pipeline.steps import partition_step
 
         env = pd.DataFrame({"a": [1.0, 2, 3], "b": [0.0, 1, 0]})
-        notes = []
-        stopped = SimpleNamespace(selected=(), global_test=SimpleNamespace(p_value=0.01))
-        assert _environment_group(env, stopped, 0.05, notes) is env
-        assert "ceiling" in notes[0]
-        rejected = SimpleNamespace(selected=(), global_test=SimpleNamespace(p_value=0.2))
-        assert _environment_group(env, rejected, 0.05, []) is None
-        chosen = SimpleNamespace(selected=("b",), global_test=None)
-        assert list(_environment_group(env, chosen, 0.05, []).columns) == ["b"]
+        Y = np.array([[1.0], [2.0], [0.5]])
+        stopped = SimpleNamespace(selected=(), global_test=SimpleNamespace(p_value=0.01),
+                                  r2_adj=0.0)
+        step = partition_step(Y, env, stopped, None)
+        assert step.environment_group is env
+        assert "ceiling" in step.notes[0]
+        assert step.fraction_tests["environment_only"] == 0.01
+        rejected = SimpleNamespace(selected=(), global_test=SimpleNamespace(p_value=0.2),
+                                   r2_adj=0.0)
+        step = partition_step(Y, env, rejected, None)
+        assert step.environment_group is None and not any("ceiling" in n for n in step.notes)
+        chosen = SimpleNamespace(selected=("b",), global_test=None, r2_adj=0.3)
+        step = partition_step(Y, env, chosen, None)
+        assert list(step.environment_group.columns) == ["b"]
+        # a group with nothing selected contributes zero: the fractions still sum to one
+        assert step.fractions["space_only"] == 0.0 and step.fractions["environment_only"] == 0.3
+        assert sum(step.fractions.values()) == pytest.approx(1.0, abs=1e-12)
 
     def test_bad_max_vectors(self):
         with pytest.raises(InputError, match="max_vectors"):
             analyse(small_survey(), max_vectors=0)
+
+
+@pytest.fixture(scope="module")
+def result():
+    return analyse(small_survey(), spatial_weighting="single", schemes="distance",
+                   n_permutations=99, seed=4343)
+
+
+class TestTypedResults:
+    def test_settings_are_a_frozen_value(self, result):
+        import dataclasses
+
+        settings = result.settings
+        assert isinstance(settings, AnalysisSettings)
+        assert settings.n_permutations == 99 and settings.schemes == ("distance",)
+        assert settings["seed"] == settings.seed == 4343
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            settings.alpha = 0.1
+        with pytest.raises(KeyError):
+            settings["no_such_setting"]
+        record = settings.to_dict()
+        assert json.loads(json.dumps(record)) == record
+        assert record["schemes"] == ["distance"] and isinstance(record["scale_breaks"], list)
+
+    def test_result_is_frozen(self, result):
+        import dataclasses
+
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            result.notes = ()
+        assert isinstance(result.scale_fits, tuple) and isinstance(result.notes, tuple)
+
+    def test_analyse_runs_the_named_steps(self, result):
+        # analyse() orchestrates the named steps: the trend step run alone on the analysis's
+        # trend stream (the first of seven spawned from the seed) gives the same test
+        from spatial_ev.pipeline.options import StepOptions
+        from spatial_ev.pipeline.steps import trend_step
+
+        stream = np.random.default_rng(4343).spawn(7)[0]
+        alone = trend_step(result.response, result.survey.coords, alpha=0.05, seed=stream,
+                           options=StepOptions(n_permutations=99))
+        assert alone.test.p_value == result.trend.p_value
+        assert alone.test.statistic == result.trend.statistic
+        assert alone.kept == result.trend_kept
+        assert all(note in result.notes for note in alone.notes)
+
+    def test_summary_record_needs_an_analysis(self):
+        with pytest.raises(InputError, match="`analysis` must be an Analysis"):
+            summary_record({"n_sites": 3})
+        assert Analysis.__dataclass_params__.frozen

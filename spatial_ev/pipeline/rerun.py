@@ -15,10 +15,13 @@ import inspect
 import json
 import os
 from collections.abc import Callable
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
 from spatial_ev.errors import DesignError, InputError
+from spatial_ev.input.survey import read_survey
+from spatial_ev.pipeline.analysis import Analysis, analyse
 
 __all__ = ["load_pilot"]
 
@@ -81,7 +84,7 @@ def _read_options(folder: Path, parameters: dict) -> dict:
 
 
 def load_pilot(folder: str | os.PathLike, *,
-               progress: Callable[[str], None] | None = None):
+               progress: Callable[[str], None] | None = None) -> Analysis:
     """Re-run the analysis recorded in a run folder, after checking its inputs.
 
     Parameters
@@ -106,9 +109,6 @@ def load_pilot(folder: str | os.PathLike, *,
     --------
     >>> pilot = load_pilot("spatial-ev-demo")  # doctest: +SKIP
     """
-    from spatial_ev.pipeline.analysis import analyse
-    from spatial_ev.input.survey import read_survey
-
     folder, record = _check_folder(folder)
     inputs = record["inputs"]
     if "sites" not in inputs or "species" not in inputs:
@@ -132,7 +132,8 @@ def load_pilot(folder: str | os.PathLike, *,
     if summary.is_file() and result.fractions is not None:
         recorded = json.loads(summary.read_text(encoding="utf-8")).get("fractions") or {}
         if any(abs(recorded.get(k, v) - v) > 1e-6 for k, v in result.fractions.items()):
-            object.__setattr__(result, "notes", result.notes + (
+            # a frozen result: the note goes into a new instance, never set afterwards
+            result = replace(result, notes=result.notes + (
                 "The rebuilt pilot's fractions differ from the run folder's summary.json "
                 "(the analysis code changed since the run?); the design uses the rebuilt "
                 "pilot: " + ", ".join(f"{k} {recorded.get(k, float('nan')):.4f} → {v:.4f}"

@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from spatial_ev import __version__
+from spatial_ev.pipeline.analysis import Analysis
 
 __all__ = ["analysis_context", "map_layers"]
 
@@ -42,7 +43,7 @@ def _surface(grid_scores: pd.DataFrame | None, column: str) -> dict | None:
     return {"x": gx, "y": gy, "values": values}
 
 
-def _environment_test(analysis) -> dict | None:
+def _environment_test(analysis: Analysis) -> dict | None:
     """The Moran spectral randomisation test of the environment, when the analysis ran it."""
     test = getattr(analysis, "environment_spectral", None)
     if test is None:
@@ -53,19 +54,19 @@ def _environment_test(analysis) -> dict | None:
             "p": test.p_value, "environment_only_p": None if only is None else only.p_value}
 
 
-def _site_frame(analysis, values: pd.DataFrame) -> gpd.GeoDataFrame:
+def _site_frame(analysis: Analysis, values: pd.DataFrame) -> gpd.GeoDataFrame:
     sites = analysis.survey.sites
     return gpd.GeoDataFrame(values.copy(), geometry=sites.geometry.reindex(values.index),
                             crs=sites.crs)
 
 
-def analysis_context(analysis, *, title: str | None = None,
+def analysis_context(analysis: Analysis, *, title: str | None = None,
                      subtitle: str | None = None) -> dict[str, Any]:
     """Build the report context (see :mod:`spatial_ev.report.html`) from an analysis.
 
     Parameters
     ----------
-    analysis : spatial_ev.pipeline.analysis.Analysis
+    analysis : Analysis
     title, subtitle : str, optional
         Page title and subtitle.
 
@@ -101,19 +102,19 @@ def analysis_context(analysis, *, title: str | None = None,
         "variable_names": info["environment_columns"],
         "dropped": {k: [str(v) for v in vals] for k, vals in info["dropped"].items()},
     }
-    chosen = settings["chosen_scheme"]
+    chosen = settings.chosen_scheme
     env_sel = a.environment_selection
     methods = {
-        "transformation": settings["transformation"],
+        "transformation": settings.transformation,
         "trend": _TREND[a.trend_kept],
         "basis": {**_scheme_parts(chosen), "threshold": basis.threshold,
                   "n_vectors": basis.n_vectors, "sign": "positive"},
         "schemes_compared": list(a.weighting.table.index),
         "corrected_alpha": a.weighting.alpha_corrected if a.weighting.n_schemes > 1 else None,
-        "chosen_scheme": chosen, "alpha": settings["alpha"],
+        "chosen_scheme": chosen, "alpha": settings.alpha,
         "selection": "forward_double_stop",
-        "n_permutations": settings["n_permutations"],
-        "permutation_method": "reduced_residual", "seed": settings["seed"],
+        "n_permutations": settings.n_permutations,
+        "permutation_method": "reduced_residual", "seed": settings.seed,
         "environment_test": _environment_test(a),
     }
 
@@ -126,7 +127,7 @@ def analysis_context(analysis, *, title: str | None = None,
             "r2_adj": [f["environment_only"], f["shared"], f["space_only"], f["unexplained"]],
             "testable": [True, False, True, False],
             "p": [t.get("environment_only"), None, t.get("space_only"), None]}),
-            "alpha": settings["alpha"]}
+            "alpha": settings.alpha}
     else:
         reasons["partition"] = ("no environmental table was given, so the analysis is spatial "
                                 "only and there is nothing to partition")
@@ -153,7 +154,7 @@ def analysis_context(analysis, *, title: str | None = None,
         weighting = {"table": pd.DataFrame({"scheme": list(wt.index),
                                             "r2_adj": wt["r2_adj"].to_numpy(dtype=float),
                                             "p": wt["global_p"].to_numpy(dtype=float)}),
-                     "alpha": settings["alpha"], "corrected_alpha": a.weighting.alpha_corrected,
+                     "alpha": settings.alpha, "corrected_alpha": a.weighting.alpha_corrected,
                      "chosen": a.weighting.best}
     else:
         reasons["weighting"] = f"one scheme was named ({chosen}); nothing was compared"
@@ -178,7 +179,7 @@ def analysis_context(analysis, *, title: str | None = None,
 
     lcbd_frame = a.beta.to_frame()
     lcbd = {"sites": _site_frame(a, lcbd_frame), "column": "lcbd",
-            "p_column": "p" if "p" in lcbd_frame else None, "alpha": settings["alpha"]}
+            "p_column": "p" if "p" in lcbd_frame else None, "alpha": settings.alpha}
 
     rda = a.ordination
     triplot = {"eigenvalues": None, "total_variance": rda.total_variance, "n_labels": 10}
@@ -225,7 +226,7 @@ def analysis_context(analysis, *, title: str | None = None,
     }
 
 
-def map_layers(analysis) -> dict[str, gpd.GeoDataFrame]:
+def map_layers(analysis: Analysis) -> dict[str, gpd.GeoDataFrame]:
     """GeoPackage layers: one per scale class (site scores, original geometry), the LCBD layer,
     and one grid layer per scale class with the structure predicted at unsampled points.
 

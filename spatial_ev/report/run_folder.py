@@ -28,10 +28,12 @@ from typing import Any
 import pandas as pd
 
 from spatial_ev import __version__
+from spatial_ev.pipeline.analysis import Analysis
 from spatial_ev.report.context import analysis_context, map_layers
 from spatial_ev.report.folder import atomic_folder
 from spatial_ev.report.html import write_report
 from spatial_ev.report.layers import write_layers, write_table
+from spatial_ev.report.summary import summary_record
 
 __all__ = ["write_run_folder", "manifest"]
 
@@ -55,7 +57,7 @@ def _blas() -> list[dict[str, Any]]:
             for i in threadpool_info()]
 
 
-def manifest(analysis, *, inputs: Mapping[str, str | os.PathLike] | None = None,
+def manifest(analysis: Analysis, *, inputs: Mapping[str, str | os.PathLike] | None = None,
              parameters: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """Provenance of a run: versions, inputs' SHA-256, parameters and seed.
 
@@ -82,12 +84,13 @@ def manifest(analysis, *, inputs: Mapping[str, str | os.PathLike] | None = None,
         "libraries": versions, "blas": _blas(),
         "openblas_coretype": os.environ.get("OPENBLAS_CORETYPE"),
         "inputs": files,
-        "parameters": {**analysis.settings, **(dict(parameters) if parameters else {})},
-        "seed": analysis.settings["seed"],
+        "parameters": {**analysis.settings.to_dict(),
+                       **(dict(parameters) if parameters else {})},
+        "seed": analysis.settings.seed,
     }
 
 
-def _tables(analysis) -> dict[str, pd.DataFrame]:
+def _tables(analysis: Analysis) -> dict[str, pd.DataFrame]:
     a = analysis
     out: dict[str, pd.DataFrame] = {}
     if a.fractions is not None:
@@ -119,7 +122,7 @@ def _tables(analysis) -> dict[str, pd.DataFrame]:
     return out
 
 
-def write_run_folder(analysis, out: str | os.PathLike, *, overwrite: bool = False,
+def write_run_folder(analysis: Analysis, out: str | os.PathLike, *, overwrite: bool = False,
                      inputs: Mapping[str, str | os.PathLike] | None = None,
                      parameters: Mapping[str, Any] | None = None,
                      title: str | None = None,
@@ -128,7 +131,8 @@ def write_run_folder(analysis, out: str | os.PathLike, *, overwrite: bool = Fals
 
     Parameters
     ----------
-    analysis : spatial_ev.pipeline.analysis.Analysis
+    analysis : Analysis
+        From :func:`spatial_ev.analyse`.
     out : path
         The folder to create; an existing one is replaced only with ``overwrite=True``.
     inputs : mapping, optional
@@ -152,7 +156,7 @@ def write_run_folder(analysis, out: str | os.PathLike, *, overwrite: bool = Fals
     PosixPath('run-1')
     """
     out = Path(out)
-    summary = analysis.summary_dict()
+    summary = summary_record(analysis)
     context = analysis_context(analysis, title=title)
     with atomic_folder(out, overwrite=overwrite) as tmp:
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2, allow_nan=False) + "\n",

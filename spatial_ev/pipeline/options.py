@@ -1,0 +1,63 @@
+"""How the pipeline's steps run their permutation tests, as one value instead of loose
+arguments threaded through every step."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+from spatial_ev._validation import check_int, check_option
+from spatial_ev.errors import InputError
+
+__all__ = ["DEFAULT_OPTIONS", "StepOptions"]
+
+
+@dataclass(frozen=True)
+class StepOptions:
+    """Permutations and execution of every test a pipeline step runs.
+
+    Attributes
+    ----------
+    n_permutations : int
+        Permutations per test (≥ 19).
+    engine : {"local", "dask"}
+        Where permutation batches run.
+    scheduler : object, optional
+        A ``dask.distributed`` scheduler address or client (``engine="dask"``).
+    progress : callable, optional
+        Called with a short message at each stage and test; the steps never print.
+
+    Examples
+    --------
+    >>> options = StepOptions(n_permutations=199)
+    >>> options.tests()
+    {'n_permutations': 199, 'engine': 'local', 'scheduler': None}
+    """
+
+    n_permutations: int = 999
+    engine: str = "local"
+    scheduler: Any = field(default=None, repr=False, compare=False)
+    progress: Callable[[str], None] | None = field(default=None, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        check_int("n_permutations", self.n_permutations, low=1)
+        check_option("engine", self.engine, ["local", "dask"])
+        if self.progress is not None and not callable(self.progress):
+            raise InputError(f"`progress` must be a callable taking one message (str); got "
+                             f"{type(self.progress).__name__}")
+
+    def tests(self) -> dict[str, Any]:
+        """Keyword arguments of a permutation test (``n_permutations``, ``engine``,
+        ``scheduler``)."""
+        return {"n_permutations": self.n_permutations, "engine": self.engine,
+                "scheduler": self.scheduler}
+
+    def say(self, message: str) -> None:
+        """Pass a stage message to ``progress`` (nothing when it is None)."""
+        if self.progress is not None:
+            self.progress(message)
+
+
+DEFAULT_OPTIONS = StepOptions()
+"""The steps' default: 999 permutations per test, local engine, no progress messages."""

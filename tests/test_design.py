@@ -9,12 +9,16 @@ import pandas as pd
 import pytest
 import shapely
 
-from spatial_ev.pipeline.analysis import analyse
-from spatial_ev.design.evaluate import (DesignEvaluation, evaluate_design, layout_basis,
-                               spectral_coverage)
-from spatial_ev.errors import DesignError, InputError
+from spatial_ev.design.evaluate import (
+    DesignEvaluation,
+    evaluate_design,
+    layout_basis,
+    spectral_coverage,
+)
 from spatial_ev.design.layouts import grid_layout, transect_layout
+from spatial_ev.errors import DesignError, InputError
 from spatial_ev.input.survey import Survey
+from spatial_ev.pipeline.analysis import analyse
 
 
 def _grid_survey(n_side: int = 12, spacing: float = 10.0, seed: int = 20261202) -> Survey:
@@ -153,7 +157,7 @@ class TestEvaluateDesign:
                                                         "space_only", "unexplained")]]
         assert np.allclose(est.sum(axis=1), 1.0)
         assert len(ev.recommendations) >= 1 and "power ≥ 0.8" in ev.recommendations[0]
-        assert "independent" in ev.settings["residual_model"]
+        assert "independent" in ev.settings.residual_model
         assert ev.to_dict()["settings"]["seed"] == 20261202
         text = ev.summary()
         assert "3 simulations each" in text and "spatially independent residuals" in text

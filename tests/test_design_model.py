@@ -2,20 +2,27 @@
 
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import geopandas as gpd
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import make_small_survey_tables
 from scipy.spatial.distance import cdist
 
-from spatial_ev.pipeline.analysis import analyse
-from spatial_ev.design.simulate import (_LayoutModel, layout_model, _owners, pilot_model,
-                                     environment_at)
 from spatial_ev.design.evaluate import layout_basis
-from spatial_ev.errors import InputError
 from spatial_ev.design.layouts import CandidateLayout
+from spatial_ev.design.simulate import (
+    _LayoutModel,
+    _owners,
+    environment_at,
+    layout_model,
+    pilot_model,
+)
+from spatial_ev.errors import InputError
 from spatial_ev.input.survey import Survey
-from conftest import make_small_survey_tables
+from spatial_ev.pipeline.analysis import analyse
 
 
 @pytest.fixture(scope="module")
@@ -110,7 +117,7 @@ class TestPilotModel:
         assert all(abs(v - 1.0) < 1e-9 for v in info["class_variance_ratio"].values())
         # residual rows: the fit's residuals inflated by sqrt((n - 1)/(n - 1 - m))
         n, m = X.shape[0], X.shape[1] - 1
-        assert np.allclose(model["residuals"],
+        assert np.allclose(model.residuals,
                            (Y - X @ coef) * np.sqrt((n - 1) / (n - 1 - m)), atol=1e-10)
 
 
@@ -125,7 +132,7 @@ class TestOwners:
         load = rng.normal(size=(1, 5))
         parts = {"broad": np.outer(q[:, 0], load[0]), "fine": np.outer(q[:, 2], load[0])}
         vec = pd.DataFrame(q, columns=["sv001", "sv002", "sv003"])
-        lay = _LayoutModel("x", np.zeros((40, 5)), None, None, vec, pd.Series([3.0, 2, 1]),
-                           None, None, parts)
+        lay = _LayoutModel("x", np.zeros((40, 5)), pd.DataFrame({"x": q[:, 0], "y": q[:, 1]}),
+                           None, SimpleNamespace(vectors=vec), None, None, parts)
         assert _owners(lay, vec, ("sv003", "sv001")) == ["fine", "broad"]
         assert _owners(lay, vec, ()) == []

@@ -8,11 +8,12 @@ import sys
 from unittest import mock
 
 import pytest
-
 from conftest import make_small_survey_tables
+
 from spatial_ev.cli.main import main
 from spatial_ev.errors import DesignError, InputError
 from spatial_ev.pipeline.rerun import load_pilot
+from spatial_ev.report.summary import summary_record
 
 
 @pytest.fixture(scope="module")
@@ -39,11 +40,11 @@ class TestLoadPilot:
         out, _ = run_folder
         pilot = load_pilot(out)
         summary = json.loads((out / "summary.json").read_text())
-        rebuilt = pilot.summary_dict()
+        rebuilt = summary_record(pilot)
         for key, value in summary["fractions"].items():
             assert rebuilt["fractions"][key] == pytest.approx(value, abs=1e-9)
         assert rebuilt["selected"] == summary["selected"]
-        assert rebuilt["seed"] == 20261202 and pilot.settings["n_permutations"] == 99
+        assert rebuilt["seed"] == 20261202 and pilot.settings.n_permutations == 99
         assert not any("differ" in n for n in pilot.notes)
 
     def test_changed_input(self, run_folder, tmp_path):
@@ -82,13 +83,38 @@ class TestLoadPilot:
             load_pilot(42)
 
 
+    def test_changed_fractions_are_noted_on_a_new_result(self, run_folder, tmp_path):
+        # the rebuilt pilot is frozen: a note about a differing summary.json goes into a new
+        # result (dataclasses.replace), the analysis is never modified after construction
+        out, _ = run_folder
+        copy = tmp_path / "run"
+        shutil.copytree(out, copy)
+        summary = json.loads((copy / "summary.json").read_text())
+        summary["fractions"]["shared"] += 0.1
+        (copy / "summary.json").write_text(json.dumps(summary))
+        pilot = load_pilot(copy)
+        assert sum("differ from the run folder's summary.json" in n for n in pilot.notes) == 1
+
+
 class TestDesignFromFolder:
-    def test_evaluate_design_takes_the_folder(self, run_folder):
+    def test_evaluate_design_takes_the_loaded_pilot(self, run_folder):
         from spatial_ev.design.evaluate import evaluate_design, spectral_coverage
 
         out, _ = run_folder
-        cov = spectral_coverage(out, ["thin:every=2"])
+        pilot = load_pilot(out)  # loading the folder is the caller's explicit step
+        cov = spectral_coverage(pilot, ["thin:every=2"])
         assert cov.layouts.loc["thin:every=2", "n_sites"] == 32
-        ev = evaluate_design(out, ["thin:every=2"], n_simulations=2, n_permutations=99,
+        ev = evaluate_design(pilot, ["thin:every=2"], n_simulations=2, n_permutations=99,
                              seed=20261202, reference="none")
-        assert ev.settings["pilot_seed"] == 20261202 and len(ev.power) >= 2
+        assert ev.settings.pilot_seed == 20261202 and len(ev.power) >= 2
+
+    def test_a_folder_path_is_refused(self, run_folder):
+        # the design floor never reads a run folder or re-runs an analysis by itself
+        from spatial_ev.design.evaluate import evaluate_design, spectral_coverage
+
+        out, _ = run_folder
+        for call in (lambda: spectral_coverage(out, ["thin:every=2"]),
+                     lambda: evaluate_design(str(out), ["thin:every=2"], n_simulations=2)):
+            with pytest.raises(InputError, match=r"`pilot` must be an Analysis; got the path "
+                                                 r".*load_pilot\(folder\)"):
+                call()

@@ -7,11 +7,21 @@ import pandas as pd
 import pytest
 import shapely
 
-from spatial_ev.design.evaluate import DesignEvaluation, SpectralCoverage, layout_basis
-from spatial_ev.errors import InputError
+from spatial_ev.design.evaluate import (
+    DesignEvaluation,
+    DesignSettings,
+    SpectralCoverage,
+    layout_basis,
+)
 from spatial_ev.design.layouts import grid_layout
-from spatial_ev.report.design_report import (coverage_figure, layer_name, layout_map_figure,
-                                             power_figure, render_design_report)
+from spatial_ev.errors import InputError
+from spatial_ev.report.design_report import (
+    coverage_figure,
+    layer_name,
+    layout_map_figure,
+    power_figure,
+    render_design_report,
+)
 
 
 def _evaluation(name: str = "grid:spacing=20") -> DesignEvaluation:
@@ -35,10 +45,13 @@ def _evaluation(name: str = "grid:spacing=20") -> DesignEvaluation:
     fractions = pd.DataFrame({"layout": [name], "fraction": ["environment_only"],
                               "pilot": [0.2], "truth": [0.19], "mean_estimate": [0.18],
                               "bias": [-0.01], "sd": [0.02]})
-    settings = {"seed": 1, "n_simulations": 100, "n_permutations": 199, "alpha": 0.05,
-                "space_level": "corrected", "space_test_level": 0.05, "target_power": 0.8,
-                "scheme": "distance", "environment_source": "interpolated",
-                "residual_model": "resampled rows; spatially independent"}
+    settings = DesignSettings(seed=1, n_simulations=100, n_permutations=199,
+                              global_space_permutations=199, alpha=0.05,
+                              space_level="corrected", space_test_level=0.05, target_power=0.8,
+                              scheme="distance", scale_breaks=(60.0, 30.0),
+                              environment_source="interpolated",
+                              residual_model="resampled rows; spatially independent",
+                              pilot_seed=1, engine="local", layout_diagnostics={})
     return DesignEvaluation((lay,), SpectralCoverage(layouts, classes, {name: basis}), power,
                             fractions, pd.DataFrame(), ("To detect <x> you need y.",),
                             settings, ("a note",))

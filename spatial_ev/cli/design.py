@@ -23,9 +23,12 @@ import argparse
 import sys
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from spatial_ev.errors import InputError
+
+if TYPE_CHECKING:  # the command's imports stay lazy; the type is for readers and checkers
+    from spatial_ev.design.evaluate import DesignEvaluation
 
 __all__ = ["configure", "execute"]
 
@@ -160,10 +163,10 @@ def _environment_layer(args: argparse.Namespace, crs: Any):
     return gdf
 
 
-def _summary_lines(ev, out: str, elapsed: float) -> list[str]:
-    lines = [f"design folder written: {out} ({elapsed:.1f} s; {ev.settings['n_simulations']} "
-             f"simulations per layout, {ev.settings['n_permutations']} permutations per test, "
-             f"seed {ev.settings['seed']})"]
+def _summary_lines(ev: DesignEvaluation, out: str, elapsed: float) -> list[str]:
+    lines = [f"design folder written: {out} ({elapsed:.1f} s; {ev.settings.n_simulations} "
+             f"simulations per layout, {ev.settings.n_permutations} permutations per test, "
+             f"seed {ev.settings.seed})"]
     cov = ev.coverage
     for name, row in cov.layouts.iterrows():
         status = cov.classes[cov.classes["layout"] == name]
@@ -205,6 +208,8 @@ def execute(args: argparse.Namespace) -> int:
                          "pass --overwrite")
     progress = _Progress(args.quiet)
     try:
+        # loading the run folder is this command's explicit step: the library's design
+        # evaluation takes the rebuilt Analysis, never a path
         pilot = load_pilot(args.pilot, progress=progress.stage)
         crs = pilot.survey.crs
         evaluation = evaluate_design(

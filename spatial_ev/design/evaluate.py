@@ -1,6 +1,9 @@
 """Sampling redesign: which scales a candidate layout resolves, and its simulated power.
 
-Two questions for next season's layout and budget, answered from a pilot :class:`Analysis`:
+Two questions for next season's layout and budget, answered from a pilot :class:`Analysis`
+(from :func:`spatial_ev.analyse`; a run folder is first rebuilt by the caller with
+:func:`spatial_ev.pipeline.rerun.load_pilot` — nothing here reads files or re-runs an
+analysis behind the caller's back):
 
 1. **Spectral coverage** (:func:`spectral_coverage`). Each layout gets its own spatial basis
    under the *pilot's chosen weighting scheme* (distance-based MEM when the pilot chose none,
@@ -23,13 +26,15 @@ Two questions for next season's layout and budget, answered from a pilot :class:
    interpolated from the pilot sites (inverse-distance weighting of the 8 nearest sites,
    power 2, nearest site for category indicators). Residual variation: whole rows of the
    pilot residuals resampled with replacement (keeps the species' covariance) and inflated
-   by √((n − 1)/(n − 1 − m)) for the m fitted terms. Each simulated table is analysed in a
-   lighter form keeping the same statistics: trend test, forward selection of environmental
-   variables (global test, double stopping), forward selection of the layout's spatial vectors under one
-   scheme (global test at the pilot's Šidák-corrected level by default, because next season's
-   analysis will again compare schemes; then double stopping), variation partition with tests
-   of the unique fractions, and detection of each scale class by a partial test of its
-   selected vectors. Simulations are on the transformed scale (no counts are drawn).
+   by √((n − 1)/(n − 1 − m)) for the m fitted terms. Each simulated table is analysed by the
+   pipeline's own named steps (:mod:`spatial_ev.pipeline.steps`): trend test, forward
+   selection of environmental variables (global test, double stopping), selection of the
+   layout's spatial vectors under one scheme (global test at the pilot's Šidák-corrected
+   level by default, because next season's analysis will again compare schemes; then double
+   stopping), variation partition with tests of the unique fractions, and detection of each
+   scale class by the partial test of its selected vectors. Without candidate environmental
+   variables at a layout the environment's fractions are zero by construction. Simulations
+   are on the transformed scale (no counts are drawn).
 
 Permutations. Every test uses ``n_permutations`` (default 199). A rejection rate at α = 0.05
 needs p-values accurate near 0.05: with N = 199 the Monte Carlo standard error of a p-value of
@@ -75,17 +80,32 @@ import numpy as np
 import pandas as pd
 
 from spatial_ev._validation import check_int, check_option, check_real
-from spatial_ev.errors import DesignError, InputError, SpatialEVWarning
-from spatial_ev.design.simulate import (layout_model, pilot_model, SimulationSettings, Simulator,
-                           environment_at)
 from spatial_ev.design.layouts import CandidateLayout, build_layout
+from spatial_ev.design.simulate import (
+    FRACTIONS,
+    SimulationSettings,
+    Simulator,
+    environment_at,
+    layout_model,
+    pilot_model,
+)
+from spatial_ev.errors import DesignError, InputError, SpatialEVWarning
+from spatial_ev.pipeline.analysis import Analysis
 
-__all__ = ["spectral_coverage", "evaluate_design", "DesignEvaluation", "SpectralCoverage",
-           "layout_basis", "environment_at", "SPACE_LEVELS"]
+__all__ = [
+    "SPACE_LEVELS",
+    "DesignEvaluation",
+    "DesignSettings",
+    "SpectralCoverage",
+    "environment_at",
+    "evaluate_design",
+    "layout_basis",
+    "spectral_coverage",
+]
 
 SPACE_LEVELS = ("corrected", "nominal")
 _MIN_SITES = 10  # the simulated analysis, like analyse(), needs at least 10 sites
-_FRACTIONS = ("environment_only", "shared", "space_only", "unexplained")
+_FRACTIONS = FRACTIONS
 
 
 # ------------------------------------------------------------------------------ coverage
@@ -131,9 +151,9 @@ def layout_basis(coords: Any, scheme: str) -> tuple[Any, str, str]:
     >>> used, basis.n_vectors
     ('distance', 9)
     """
-    from spatial_ev.space.graphs import neighbour_graph
-    from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
     from spatial_ev.selection.weighting import check_schemes
+    from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
+    from spatial_ev.space.graphs import neighbour_graph
 
     xy = np.asarray(coords, dtype=float)
     if len(xy) < 4:
@@ -162,8 +182,8 @@ def layout_basis(coords: Any, scheme: str) -> tuple[Any, str, str]:
     return basis, used, note
 
 
-def _pilot_classes(pilot) -> pd.DataFrame:
-    alpha = pilot.settings["alpha"]
+def _pilot_classes(pilot: Analysis) -> pd.DataFrame:
+    alpha = pilot.settings.alpha
     rows = []
     for fit in pilot.scale_fits:
         c = fit.scale_class
@@ -180,15 +200,15 @@ def _status(count: int, need: int) -> str:
     return "resolved" if count >= max(1, need) else "partly"
 
 
-def spectral_coverage(pilot, layouts: Sequence[CandidateLayout | str], *,
+def spectral_coverage(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *,
                       area: Any = None, seed: int | None = None) -> SpectralCoverage:
     """Scales each candidate layout represents, against the pilot's scale classes.
 
     Parameters
     ----------
-    pilot : Analysis or path of a run folder
-        From :func:`spatial_ev.analyse`; a run folder is rebuilt by
-        :func:`spatial_ev.pipeline.rerun.load_pilot`.
+    pilot : Analysis
+        From :func:`spatial_ev.analyse`, or rebuilt from a run folder by
+        :func:`spatial_ev.pipeline.rerun.load_pilot` (the caller's explicit step).
     layouts : sequence of CandidateLayout or layout spec strings
         See :mod:`spatial_ev.design.layouts` for the spec syntax.
     area : shapely Polygon, optional
@@ -209,9 +229,9 @@ def spectral_coverage(pilot, layouts: Sequence[CandidateLayout | str], *,
     return _coverage(pilot, built)
 
 
-def _coverage(pilot, built: list[CandidateLayout]) -> SpectralCoverage:
+def _coverage(pilot: Analysis, built: list[CandidateLayout]) -> SpectralCoverage:
     classes = _pilot_classes(pilot)
-    scheme = pilot.settings.get("chosen_scheme", "none")
+    scheme = pilot.settings.chosen_scheme
     rows, crow, bases = [], [], {}
     for lay in built:
         basis, used, note = layout_basis(lay.coords.to_numpy(), scheme)
@@ -231,12 +251,11 @@ def _coverage(pilot, built: list[CandidateLayout]) -> SpectralCoverage:
     return SpectralCoverage(pd.DataFrame(rows).set_index("layout"), pd.DataFrame(crow), bases)
 
 
-def _check_pilot_layouts(pilot, layouts, area, seed) -> tuple[Any, list[CandidateLayout]]:
-    from spatial_ev.pipeline.analysis import Analysis
-
+def _check_pilot_layouts(pilot, layouts, area, seed) -> tuple[Analysis, list[CandidateLayout]]:
     if isinstance(pilot, str) or hasattr(pilot, "__fspath__"):
-        from spatial_ev.pipeline.rerun import load_pilot
-        pilot = load_pilot(pilot)
+        raise InputError(f"`pilot` must be an Analysis; got the path {str(pilot)!r}. Rebuild a "
+                         "run folder's analysis first with "
+                         "spatial_ev.pipeline.rerun.load_pilot(folder) and pass the result")
     if not isinstance(pilot, Analysis):
         raise InputError(f"`pilot` must be an Analysis (from analyse() or load_pilot()); got "
                          f"{type(pilot).__name__}")
@@ -264,6 +283,69 @@ def _check_pilot_layouts(pilot, layouts, area, seed) -> tuple[Any, list[Candidat
 # ------------------------------------------------------------------------------ result
 
 @dataclass(frozen=True)
+class DesignSettings:
+    """Every parameter and choice of a design evaluation, as typed values.
+
+    Attributes
+    ----------
+    seed : int
+    n_simulations : int
+    n_permutations : int
+        Permutations per test of each simulated analysis.
+    global_space_permutations : int
+        Permutations of the spatial global test (enough to reach its level).
+    alpha : float
+    space_level : {"corrected", "nominal"}
+    space_test_level : float
+        The level that rule gives.
+    target_power : float
+    scheme : str
+        The pilot's chosen weighting scheme.
+    scale_breaks : tuple of float
+    environment_source : str
+        How the environment at new sites was obtained.
+    residual_model : str
+    pilot_seed : int
+    engine : str
+    layout_diagnostics : dict
+        Layout name → diagnostics (variables constant there, variance ratios).
+
+    Examples
+    --------
+    >>> ev.settings.n_simulations, ev.settings["seed"]  # doctest: +SKIP
+    (100, 1)
+    """
+
+    seed: int
+    n_simulations: int
+    n_permutations: int
+    global_space_permutations: int
+    alpha: float
+    space_level: str
+    space_test_level: float
+    target_power: float
+    scheme: str
+    scale_breaks: tuple[float, ...]
+    environment_source: str
+    residual_model: str
+    pilot_seed: int
+    engine: str
+    layout_diagnostics: dict = field(repr=False)
+
+    def __getitem__(self, name: str) -> Any:
+        """Read-only lookup by name (``settings["seed"]``), as in ``design.json``."""
+        if not isinstance(name, str) or name not in self.__dataclass_fields__:
+            raise KeyError(name)
+        return getattr(self, name)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready record (the ``settings`` of ``design.json``)."""
+        out = {f: getattr(self, f) for f in self.__dataclass_fields__}
+        out["scale_breaks"] = list(self.scale_breaks)
+        return out
+
+
+@dataclass(frozen=True)
 class DesignEvaluation:
     """Coverage and simulated power of candidate layouts, with recommendations.
 
@@ -284,7 +366,7 @@ class DesignEvaluation:
         One row per simulation: layout, replicate, detections, estimates, truths.
     recommendations : tuple of str
         One sentence per objective.
-    settings : dict
+    settings : DesignSettings
         Every parameter and choice (seed, permutations, simulations, levels, environment
         source, residual model, scheme).
     notes : tuple of str
@@ -297,7 +379,7 @@ class DesignEvaluation:
     fractions: pd.DataFrame
     simulations: pd.DataFrame = field(repr=False)
     recommendations: tuple
-    settings: dict
+    settings: DesignSettings
     notes: tuple
 
     def to_frame(self) -> pd.DataFrame:
@@ -306,9 +388,9 @@ class DesignEvaluation:
 
     def summary(self) -> str:
         """Plain-text account: coverage, power, recommendations and assumptions."""
-        lines = [f"{len(self.layouts)} candidate layout(s), {self.settings['n_simulations']} "
-                 f"simulations each, {self.settings['n_permutations']} permutations per test, "
-                 f"seed {self.settings['seed']}"]
+        lines = [f"{len(self.layouts)} candidate layout(s), {self.settings.n_simulations} "
+                 f"simulations each, {self.settings.n_permutations} permutations per test, "
+                 f"seed {self.settings.seed}"]
         cov = self.coverage.layouts
         for name, row in cov.iterrows():
             lines.append(f"  {name}: {row['n_sites']} sites, {row['n_vectors']} vectors "
@@ -330,7 +412,7 @@ class DesignEvaluation:
                                            (v.item() if hasattr(v, "item") else v)))
                             for k, v in rec.items()})
             return out
-        return {"settings": self.settings,
+        return {"settings": self.settings.to_dict(),
                 "layouts": clean(self.coverage.layouts),
                 "coverage": clean(self.coverage.classes),
                 "power": clean(self.power), "fractions": clean(self.fractions),
@@ -351,7 +433,7 @@ def _check_evaluate(n_simulations, n_permutations, alpha_target, space_level, se
     return n_simulations, n_permutations, target, space_level, int(seed)
 
 
-def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
+def evaluate_design(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *,
                     n_simulations: int = 100, n_permutations: int = 199,
                     target_power: float = 0.8, space_level: str = "corrected",
                     environment_layer: Any = None, area: Any = None,
@@ -362,9 +444,9 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
 
     Parameters
     ----------
-    pilot : Analysis or path of a run folder
-        The pilot analysis (a run folder is re-analysed from its recorded, checksum-verified
-        inputs and parameters; see :func:`spatial_ev.pipeline.rerun.load_pilot`).
+    pilot : Analysis
+        The pilot analysis, from :func:`spatial_ev.analyse` or rebuilt from a run folder by
+        :func:`spatial_ev.pipeline.rerun.load_pilot` (the caller's explicit step).
     layouts : sequence of CandidateLayout or spec strings
         See :mod:`spatial_ev.design.layouts` (e.g. ``"grid:spacing=30"``, ``"thin:every=2"``).
     n_simulations : int, keyword-only
@@ -415,7 +497,7 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
         raise DesignError(f"layout(s) {', '.join(small)} have fewer than {_MIN_SITES} sites: "
                           "too few for spatial eigenvectors, selection and permutation tests; "
                           "use denser or larger layouts")
-    alpha = float(pilot.settings["alpha"])
+    alpha = float(pilot.settings.alpha)
     level = float(pilot.weighting.alpha_corrected) if space_level == "corrected" else alpha
     coverage = _coverage(pilot, built)
     model = pilot_model(pilot)
@@ -427,9 +509,8 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
     classes = _pilot_classes(pilot)
     global_permutations = max(n_permutations, math.ceil(4 / level) - 1)
     settings = SimulationSettings(alpha, level, n_permutations, global_permutations,
-                         pilot.settings["trend"],
-                         tuple(pilot.settings["scale_breaks"]), tuple(classes["scale_class"]),
-                         model["residuals"])
+                                  pilot.settings.trend, tuple(pilot.settings.scale_breaks),
+                                  tuple(classes["scale_class"]), model.residuals)
     layout_seqs = np.random.SeedSequence(seed).spawn(len(built))
     tasks = [(i, child) for i, s in enumerate(layout_seqs) for child in s.spawn(n_simulations)]
     with warnings.catch_warnings():
@@ -440,19 +521,16 @@ def evaluate_design(pilot, layouts: Sequence[CandidateLayout | str], *,
     power, fractions = _power_tables(pilot, built, sims, classes)
     env_source = next((i["environment_source"] for i in infos.values()
                        if "environment_source" in i), "no environmental table")
-    settings_out = {
-        "seed": seed, "n_simulations": n_simulations, "n_permutations": n_permutations,
-        "global_space_permutations": global_permutations,
-        "alpha": alpha, "space_level": space_level, "space_test_level": level,
-        "target_power": target, "scheme": pilot.settings.get("chosen_scheme"),
-        "scale_breaks": list(pilot.settings["scale_breaks"]),
-        "environment_source": env_source,
-        "residual_model": f"pilot residual rows resampled with replacement, inflated by "
-                          f"{model['inflate']:.4f}; spatially independent",
-        "pilot_seed": pilot.settings["seed"], "engine": engine,
-        "layout_diagnostics": {k: {kk: vv for kk, vv in v.items() if kk != "environment_source"}
-                               for k, v in infos.items()},
-    }
+    settings_out = DesignSettings(
+        seed=seed, n_simulations=n_simulations, n_permutations=n_permutations,
+        global_space_permutations=global_permutations, alpha=alpha, space_level=space_level,
+        space_test_level=level, target_power=target, scheme=pilot.settings.chosen_scheme,
+        scale_breaks=tuple(pilot.settings.scale_breaks), environment_source=env_source,
+        residual_model=f"pilot residual rows resampled with replacement, inflated by "
+                       f"{model.inflate:.4f}; spatially independent",
+        pilot_seed=pilot.settings.seed, engine=engine,
+        layout_diagnostics={k: {kk: vv for kk, vv in v.items() if kk != "environment_source"}
+                            for k, v in infos.items()})
     return DesignEvaluation(tuple(built), coverage, power, fractions, sims,
                             tuple(_recommend(power, coverage, target, classes, built)),
                             settings_out,
@@ -472,12 +550,12 @@ def _simulation_frame(built, results, n_sim) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def _power_tables(pilot, built, sims, classes) -> tuple[pd.DataFrame, pd.DataFrame]:
+def _power_tables(pilot: Analysis, built, sims, classes) -> tuple[pd.DataFrame, pd.DataFrame]:
     objectives = ["environment"] + [f"scale:{c}" for c in classes["scale_class"]]
     sig = {f"scale:{r.scale_class}": r.pilot_significant for r in classes.itertuples()}
     env_p = (pilot.fraction_tests or {}).get("environment_only")
     sig["environment"] = bool(pilot.selected_environment) and env_p is not None \
-        and env_p <= pilot.settings["alpha"]
+        and env_p <= pilot.settings.alpha
     prow, frow = [], []
     pilot_fr = pilot.fractions or {}
     for lay in built:

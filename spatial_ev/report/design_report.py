@@ -34,7 +34,9 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import MaxNLocator
 
+from spatial_ev.design.evaluate import DesignEvaluation
 from spatial_ev.errors import InputError
+from spatial_ev.pipeline.analysis import Analysis
 from spatial_ev.report import _style as st
 from spatial_ev.report.figures import log_axis, save_figure, unit_symbol
 from spatial_ev.report.folder import atomic_folder
@@ -45,9 +47,7 @@ __all__ = ["coverage_figure", "power_figure", "layout_map_figure", "render_desig
            "write_design_folder", "layer_name"]
 
 
-def _check_evaluation(evaluation: Any) -> Any:
-    from spatial_ev.design.evaluate import DesignEvaluation
-
+def _check_evaluation(evaluation: Any) -> DesignEvaluation:
     if not isinstance(evaluation, DesignEvaluation):
         raise InputError(f"`evaluation` must be a DesignEvaluation (from evaluate_design); got "
                          f"{type(evaluation).__name__}")
@@ -239,13 +239,13 @@ def layout_map_figure(pilot_xy: np.ndarray, layouts: dict[str, pd.DataFrame], *,
     return fig
 
 
-def _figures(evaluation, unit: str, pilot_xy: np.ndarray) -> dict[str, Figure]:
+def _figures(evaluation: DesignEvaluation, unit: str, pilot_xy: np.ndarray) -> dict[str, Figure]:
     cov = evaluation.coverage
     scales = {name: b.scale for name, b in cov.bases.items()}
     return {
         "design_coverage": coverage_figure(cov.layouts, cov.classes, scales, unit=unit),
         "design_power": power_figure(evaluation.power,
-                                     target=evaluation.settings["target_power"]),
+                                     target=evaluation.settings.target_power),
         "design_layouts": layout_map_figure(pilot_xy, {lay.name: lay.coords
                                                        for lay in evaluation.layouts},
                                             unit=unit),
@@ -335,7 +335,7 @@ def _html_table(frame: pd.DataFrame) -> str:
     return out.to_html(index=False, border=0, na_rep="–", escape=True)
 
 
-def render_design_report(evaluation, *, figures: dict[str, Figure] | None = None,
+def render_design_report(evaluation: DesignEvaluation, *, figures: dict[str, Figure] | None = None,
                          unit: str = "map units", pilot_xy: np.ndarray | None = None,
                          title: str = "Sampling redesign") -> str:
     """The self-contained HTML page of a design evaluation.
@@ -359,19 +359,19 @@ def render_design_report(evaluation, *, figures: dict[str, Figure] | None = None
     env = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined)
     return env.from_string(_PAGE).render(
         title=title, subtitle=f"{len(ev.layouts)} candidate layouts evaluated against the "
-                              f"pilot analysis (seed {s['seed']}); distances in {unit}",
-        recommendations=ev.recommendations, figures=uris, scheme=s["scheme"],
+                              f"pilot analysis (seed {s.seed}); distances in {unit}",
+        recommendations=ev.recommendations, figures=uris, scheme=s.scheme,
         tables={"layouts": _markup(_html_table(layouts)),
                 "coverage": _markup(_html_table(ev.coverage.classes)),
                 "power": _markup(_html_table(ev.power)),
                 "fractions": _markup(_html_table(ev.fractions))},
-        n_simulations=s["n_simulations"], n_permutations=s["n_permutations"], seed=s["seed"],
-        alpha=s["alpha"],
-        space_level=f"{s['space_test_level']:.4g} ({s['space_level']}"
-                    + (f", {s['global_space_permutations']} permutations)"
-                       if s.get("global_space_permutations") else ")"),
+        n_simulations=s.n_simulations, n_permutations=s.n_permutations, seed=s.seed,
+        alpha=s.alpha,
+        space_level=f"{s.space_test_level:.4g} ({s.space_level}"
+                    + (f", {s.global_space_permutations} permutations)"
+                       if s.global_space_permutations else ")"),
         extension="Nyström add-a-point extension of the pilot basis",
-        residual_model=s["residual_model"], environment_source=s["environment_source"],
+        residual_model=s.residual_model, environment_source=s.environment_source,
         notes=ev.notes, version=__version__)
 
 
@@ -395,7 +395,8 @@ def layer_name(position: int, name: str) -> str:
     return f"layout_{position:02d}_{slug}"
 
 
-def write_design_folder(evaluation, out: str | os.PathLike, *, pilot, overwrite: bool = False,
+def write_design_folder(evaluation: DesignEvaluation, out: str | os.PathLike, *,
+                        pilot: Analysis, overwrite: bool = False,
                         parameters: dict | None = None,
                         title: str = "Sampling redesign") -> Path:
     """Write the design folder (see the module docstring) atomically.
@@ -418,14 +419,17 @@ def write_design_folder(evaluation, out: str | os.PathLike, *, pilot, overwrite:
     import geopandas as gpd
 
     ev = _check_evaluation(evaluation)
+    if not isinstance(pilot, Analysis):
+        raise InputError(f"`pilot` must be the Analysis the evaluation was made from; got "
+                         f"{type(pilot).__name__}")
     out = Path(out)
     unit = unit_symbol(pilot.survey.distance_unit)
     pilot_xy = pilot.survey.coords.to_numpy()
     record = ev.to_dict()
     record["parameters"] = dict(parameters or {})
-    record["pilot"] = {"n_sites": int(pilot.survey.n_sites), "crs": pilot.settings["crs"],
+    record["pilot"] = {"n_sites": int(pilot.survey.n_sites), "crs": pilot.settings.crs,
                        "distance_unit": pilot.survey.distance_unit,
-                       "fractions": pilot.fractions, "seed": pilot.settings["seed"]}
+                       "fractions": pilot.fractions, "seed": pilot.settings.seed}
     with atomic_folder(out, overwrite=overwrite) as tmp:
         (tmp / "design.json").write_text(
             json.dumps(record, indent=2, allow_nan=False, default=_json_default) + "\n",

@@ -33,8 +33,9 @@ import numpy as np
 import scipy.linalg
 from threadpoolctl import threadpool_info
 
-import spatial_ev.stats.canonical as canonical
 import spatial_ev.inference.permutation as permutation
+import spatial_ev.selection.forward as forward
+import spatial_ev.stats.linear as linear
 from spatial_ev.pipeline.analysis import analyse
 from spatial_ev.datasets.mudflat import generate_demo_survey
 from spatial_ev.design.evaluate import evaluate_design
@@ -72,7 +73,9 @@ def instrument(clock: KernelClock) -> list:
         patched.append((owner, name, original))
 
     patch(permutation._Kernel, "__call__")
-    patch(canonical, "column_basis")
+    # the rank-revealing basis, where the model core and forward selection look it up
+    patch(linear, "column_basis")
+    patch(forward, "column_basis")
     for name in ("qr", "lstsq", "svd", "eigh"):
         patch(np.linalg, name)
     for name in ("qr", "svd", "eigh"):

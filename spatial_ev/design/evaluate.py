@@ -373,14 +373,14 @@ class DesignEvaluation:
         Assumptions and per-layout remarks.
     """
 
-    layouts: tuple
+    layouts: tuple[CandidateLayout, ...]
     coverage: SpectralCoverage
     power: pd.DataFrame
     fractions: pd.DataFrame
     simulations: pd.DataFrame = field(repr=False)
-    recommendations: tuple
+    recommendations: tuple[str, ...]
     settings: DesignSettings
-    notes: tuple
+    notes: tuple[str, ...]
 
     def to_frame(self) -> pd.DataFrame:
         """The power table."""

@@ -136,3 +136,24 @@ class TestOwners:
                            None, SimpleNamespace(vectors=vec), None, None, parts)
         assert _owners(lay, vec, ("sv003", "sv001")) == ["fine", "broad"]
         assert _owners(lay, vec, ()) == []
+
+
+class TestSimulatorRunsThePipeline:
+    def test_every_named_step_runs_once_per_simulation(self, spatial_pilot, monkeypatch):
+        # the simulated analysis is the pipeline's own steps, not a copy of them: each named
+        # step (and the scale-class test) is called exactly once per simulated survey
+        import spatial_ev.design.simulate as simulate
+        from spatial_ev.design.evaluate import evaluate_design
+
+        calls = {}
+        for name in ("trend_step", "environment_step", "space_step", "partition_step",
+                     "scale_class_p_values"):
+            original = getattr(simulate, name)
+
+            def counted(*args, _name=name, _original=original, **kwargs):
+                calls[_name] = calls.get(_name, 0) + 1
+                return _original(*args, **kwargs)
+            monkeypatch.setattr(simulate, name, counted)
+        evaluate_design(spatial_pilot, ["thin:every=2"], n_simulations=2, n_permutations=99,
+                        seed=20261202, n_workers=1)
+        assert calls == {name: 4 for name in calls} and len(calls) == 5  # 2 layouts × 2

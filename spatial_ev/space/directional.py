@@ -367,9 +367,10 @@ class SiteEdgeMatrix:
         Weighted entries; columns are the diagram's edges that reach at least one site, then
         the virtual edges of sites with nothing upstream.
     edges : pandas.DataFrame
-        One row per column: ``tail``, ``head`` (nodes; ``tail`` −1 for a virtual edge),
-        ``length``, ``base_weight`` and ``graph_edge`` (index into the directional graph's
-        edges, −1 for a virtual edge).
+        One row per column: ``tail``, ``head`` (the edge's ends in the process direction, so
+        with ``orientation="against_flow"`` ``tail`` is the downstream node; ``tail`` −1 for a
+        virtual edge), ``length``, ``base_weight`` and ``graph_edge`` (index into the
+        directional graph's edges, −1 for a virtual edge).
     site_ids : pandas.Index
     orientation, weighting, weight_by : str
     exponent, max_distance : float or None
@@ -610,7 +611,7 @@ class NetworkBasis(SpatialBasis):
         g = self.directional
         t = self.threshold
         d = _point_site_distances(g, edge, offset, limit=t)          # dense (m, n)
-        kp = np.where(d <= t, 1.0 - (d / (4 * t)) ** 2, 0.0)
+        kp = np.where(d <= t * (1 + 1e-9), 1.0 - (d / (4 * t)) ** 2, 0.0)
         n = self.vectors.shape[0]
         u = self.vectors.to_numpy()
         row_mean = (np.asarray(self.weights.sum(axis=1)).ravel() + 1.0) / n
@@ -908,9 +909,10 @@ def _pairs_within(graph: DirectionalGraph, limit: float):
     ii, jj, dd = [], [], []
     for start in range(0, n, block):               # blocks of sites, bounded memory
         rows = np.arange(start, min(n, start + block))
-        dist = csgraph.dijkstra(und, directed=False, indices=nodes[rows], limit=limit * (1 + 1e-12))
+        reach = limit * (1 + 1e-9)                  # the threshold pair itself, whatever rounding
+        dist = csgraph.dijkstra(und, directed=False, indices=nodes[rows], limit=reach)
         dist = dist[:, nodes]
-        r, c = np.nonzero(np.isfinite(dist) & (dist <= limit))
+        r, c = np.nonzero(np.isfinite(dist) & (dist <= reach))
         keep = rows[r] < c
         ii.append(rows[r][keep])
         jj.append(c[keep])

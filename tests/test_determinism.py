@@ -14,6 +14,8 @@ chosen, in :func:`spatial_ev.inference.permutation.permutation_test`, :func:`axi
 
 from __future__ import annotations
 
+from spatial_ev.report.summary import summary_record
+
 import json
 import warnings
 
@@ -46,7 +48,7 @@ def survey() -> Survey:
 
 @pytest.fixture(scope="module")
 def reference(survey) -> dict:
-    return analyse(survey, seed=SEED, **FAST).summary_dict()
+    return summary_record(analyse(survey, seed=SEED, **FAST))
 
 
 @pytest.fixture(scope="module")
@@ -60,7 +62,7 @@ def model(survey):
 
 class TestRepeatedRuns:
     def test_same_seed_same_summary(self, survey, reference):
-        again = analyse(survey, seed=SEED, **FAST).summary_dict()
+        again = summary_record(analyse(survey, seed=SEED, **FAST))
         assert again == reference
         # the summary is not trivially constant: p-values carry the permutation draws
         assert reference["selected"]["space"] and reference["fractions"] is not None
@@ -164,7 +166,7 @@ class TestBlasThreads:
         summaries = []
         for threads in (1, 2):
             with threadpool_limits(limits=threads, user_api="blas"):
-                summaries.append(analyse(survey, seed=SEED, **FAST).summary_dict())
+                summaries.append(summary_record(analyse(survey, seed=SEED, **FAST)))
         assert summaries[0] == summaries[1] == reference
 
     def test_limit_restored(self, survey):
@@ -190,7 +192,7 @@ class TestEngines:
     def test_dask_scheduler_address(self, survey, reference, cluster):
         result = analyse(survey, seed=SEED, engine="dask", scheduler=cluster.scheduler_address,
                          **FAST)
-        assert result.summary_dict() == reference
+        assert summary_record(result) == reference
         assert result.settings["engine"] == "dask"
 
     def test_dask_client(self, model, cluster):

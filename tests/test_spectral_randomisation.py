@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from spatial_ev.report.summary import summary_record
+
 
 import numpy as np
 import pandas as pd
@@ -306,7 +308,7 @@ class TestAnalyseOption:
             distance_decay_weights(survey), n_randomisations=99, seed=rng)
         assert test.p_value == direct.p_value
         assert test.statistic == pytest.approx(direct.statistic)
-        summary = result.summary_dict()["environment_spectral_test"]
+        summary = summary_record(result)["environment_spectral_test"]
         assert summary["p"] == pytest.approx(test.p_value)
         assert summary["n_randomisations"] == 99
         assert any("Moran spectral randomisation" in note for note in result.notes)
@@ -332,7 +334,7 @@ class TestAnalyseOption:
                         n_permutations=99, seed=5, environment_test="permutation")
         assert plain.environment_spectral is None
         assert plain.environment_only_spectral is None
-        assert plain.summary_dict()["environment_spectral_test"] is None
+        assert summary_record(plain)["environment_spectral_test"] is None
         assert analysis_context(plain)["methods"]["environment_test"] is None
         spatial_only = analyse(self.survey(environment=False), schemes="distance",
                                spatial_weighting="single", n_permutations=99, seed=5)

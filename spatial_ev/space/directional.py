@@ -640,7 +640,7 @@ def aem_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
     max_vectors : int, optional
         Keep at most this many (largest eigenvalues first, after ``sign``).
     solver : {"auto", "dense", "sparse"}
-        Dense singular value decomposition (≤ 3000 sites under "auto") or Lanczos on the
+        Dense eigensolver on C·Ẽ·Ẽᵀ·C (≤ 3000 sites under "auto") or Lanczos on the
         implicitly centred Ẽ·Ẽᵀ (needs ``max_vectors``; ``sign="all"`` is refused).
 
     Returns
@@ -680,9 +680,9 @@ def aem_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
     solver = _pick_solver(solver, n, max_vectors, sign)
     means = np.asarray(e.matrix.mean(axis=0)).ravel()
     if solver == "dense":
-        ec = e.matrix.toarray() - means
-        u, s, _ = np.linalg.svd(ec, full_matrices=False)
-        mu = s ** 2
+        # eigenvalues of C·Ẽ·Ẽᵀ·C by the dense solver of the MEM families (Ẽ·Ẽᵀ: shared
+        # weighted edges between two sites); equal to the squared singular values of Ẽc
+        mu, u = solve_dense(sparse.csr_matrix(e.matrix @ e.matrix.T), None, "LA")
     else:
         mu, u = _lanczos(_centred_gram(e.matrix, means), max_vectors, "LA")
     mu, u = finish_vectors(mu, u, "positive")       # drops the null space (μ = 0)

@@ -300,3 +300,13 @@ class TestShippedRiver:
         summary = net.summary()
         assert summary["n_sites"] == 120 and summary["direction"] == "digitised"
         assert "120" in net.describe()
+
+
+def test_site_at_a_confluence_made_from_a_line_interior_takes_that_node():
+    main = shapely.LineString([(0, 20), (0, 0)])
+    sites = pd.DataFrame({"x": [0.0, 0.0, 5.0], "y": [10.0, 4.0, 15.0]}, index=list("abc"))
+    net = build_river_network([main, TRIB], sites, snap_tolerance=1.0, node_tolerance=1e-6)
+    node = net.sites.loc["a", "node"]
+    assert net.nodes.loc[node, ["x", "y"]].tolist() == [0.0, 10.0]
+    assert net.nodes.loc[node, "kind"] == "confluence"
+    assert (net.edges["length"] > 0).all() and len(net.edges) == 5

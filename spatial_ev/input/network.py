@@ -422,6 +422,14 @@ def build_river_network(lines: Any, sites: pd.DataFrame, *, snap_tolerance: floa
     site_node = np.full(len(ids), -1, dtype=np.int64)
     site_node[at_tail] = tail[snap_line[at_tail]]
     site_node[at_head] = head[snap_line[at_head]]
+    # a site at a confluence made in step 2 (within the node tolerance) takes that node
+    if split_line:
+        t_line, t_pos, t_node = split_line[0], split_pos[0], split_node[0]
+        cand = np.flatnonzero((site_node < 0) & np.isin(snap_line, t_line))
+        same = (snap_line[cand, None] == t_line[None, :]) & \
+            (np.abs(site_pos[cand, None] - t_pos[None, :]) <= node_tolerance)
+        hit = same.any(axis=1)
+        site_node[cand[hit]] = t_node[np.argmax(same[hit], axis=1)]
     inner = np.flatnonzero(site_node < 0)
     inner = inner[np.lexsort((site_pos[inner], snap_line[inner]))]
     # sites at the same position of a line (within the node tolerance) share one node

@@ -293,14 +293,14 @@ class TestBearing:
         n = 8
         g = neighbour_graph(np.column_stack([np.arange(n, dtype=float), np.zeros(n)]),
                             "delaunay")
-        east = D.aem_eigenvectors(D.bearing_graph(g, 90.0), sign="all")
+        east = D.aem_eigenvectors(D.bearing_graph(g, bearing=90.0), sign="all")
         k = np.arange(1, n)
         # the origin edge of the first site plus n − 1 edges: E lower-triangular [derived]
         assert east.eigenvalues == pytest.approx(1 / (4 * np.sin(np.pi * k / (2 * n)) ** 2))
-        west = D.aem_eigenvectors(D.bearing_graph(g, 270.0), sign="all")
+        west = D.aem_eigenvectors(D.bearing_graph(g, bearing=270.0), sign="all")
         np.testing.assert_allclose(np.abs(west.vectors.to_numpy()[::-1]),
                                    np.abs(east.vectors.to_numpy()), atol=1e-10)
-        e = D.site_edge_matrix(D.bearing_graph(g, 90.0))
+        e = D.site_edge_matrix(D.bearing_graph(g, bearing=90.0))
         # columns: edges i -> i+1 (they reach every site east of i), then site 0's origin
         hand = np.zeros((n, n))
         for j in range(n - 1):
@@ -312,7 +312,7 @@ class TestBearing:
     def test_edges_weighted_by_the_cosine_of_their_angle(self):
         xy = np.array([[0.0, 0.0], [2.0, 0.0], [1.0, np.sqrt(3.0)]])   # equilateral
         g = neighbour_graph(xy, "delaunay", distance="euclidean")
-        d = D.bearing_graph(g, 90.0)                                   # towards +x
+        d = D.bearing_graph(g, bearing=90.0)                                   # towards +x
         got = {(int(t), int(h)): w for t, h, w in zip(d.tail, d.head, d.base_weight)}
         # 0->1 along the bearing (cos 0); 0->2 and 2->1 at 60 degrees (cos 60 = 0.5)
         assert got == pytest.approx({(0, 1): 1.0, (0, 2): 0.5, (2, 1): 0.5})
@@ -329,10 +329,10 @@ class TestBearing:
     def test_bearing_errors(self):
         g = neighbour_graph([[0, 0], [1, 0], [0, 1], [1, 1.5]], "delaunay", distance="euclidean")
         with pytest.raises(InputError, match="`bearing`"):
-            D.bearing_graph(g, float("nan"))
+            D.bearing_graph(g, bearing=float("nan"))
         with pytest.raises(InputError, match="network_distance"):
-            D.site_edge_matrix(D.bearing_graph(g, 10.0), weight_by="network_distance")
-        b = D.aem_eigenvectors(D.bearing_graph(g, 10.0), sign="all")
+            D.site_edge_matrix(D.bearing_graph(g, bearing=10.0), weight_by="network_distance")
+        b = D.aem_eigenvectors(D.bearing_graph(g, bearing=10.0), sign="all")
         assert b.method == "aem_bearing"
         with pytest.raises(InputError, match="river-network bases only"):
             b.extend([[0.5, 0.5]])
@@ -415,7 +415,7 @@ class TestValuesAlongTheNetwork:
 
     def test_points_along_the_network(self, river):
         net, _, _ = river
-        pts = D.points_along_network(net, 250.0)
+        pts = D.points_along_network(net, spacing=250.0)
         # every point lies on its edge (shapely distance), spacing ≤ the request
         geoms = net.edges.geometry.to_numpy()[pts["edge"]]
         assert (shapely.distance(shapely.points(pts[["x", "y"]].to_numpy()), geoms)
@@ -443,4 +443,4 @@ class TestArguments:
         with pytest.raises(InputError, match="`max_vectors`"):
             D.aem_eigenvectors(g, solver="sparse")
         with pytest.raises(InputError, match="`spacing`"):
-            D.points_along_network(y_net, 0.0)
+            D.points_along_network(y_net, spacing=0.0)

@@ -137,7 +137,15 @@ class DirectionalGraph:
         return len(self.tail)
 
     def undirected(self) -> sparse.csr_matrix:
-        """Symmetric node × node matrix of edge lengths."""
+        """Symmetric node × node matrix of edge lengths.
+
+        Examples
+        --------
+        >>> from spatial_ev.space.graphs import neighbour_graph
+        >>> g = bearing_graph(neighbour_graph([[0, 0], [2, 0]], "delaunay"), bearing=90)
+        >>> g.undirected().toarray().tolist()
+        [[0.0, 2.0], [2.0, 0.0]]
+        """
         k = self.n_nodes
         return sparse.coo_matrix(
             (np.concatenate([self.length, self.length]),
@@ -145,7 +153,15 @@ class DirectionalGraph:
             shape=(k, k)).tocsr()
 
     def neighbour_weights(self) -> sparse.csr_matrix:
-        """Binary symmetric weights between neighbouring sites (for Moran's I)."""
+        """Binary symmetric weights between neighbouring sites (for Moran's I).
+
+        Examples
+        --------
+        >>> from spatial_ev.space.graphs import neighbour_graph
+        >>> g = bearing_graph(neighbour_graph([[0, 0], [2, 0]], "delaunay"), bearing=90)
+        >>> g.neighbour_weights().toarray().tolist()
+        [[0.0, 1.0], [1.0, 0.0]]
+        """
         w = self.neighbours.copy()
         w.data = np.ones_like(w.data)
         return w
@@ -208,7 +224,7 @@ def river_graph(network: RiverNetwork) -> DirectionalGraph:
                             distance_unit=network.distance_unit)
 
 
-def bearing_graph(graph: NeighbourGraph, bearing: float) -> DirectionalGraph:
+def bearing_graph(graph: NeighbourGraph, *, bearing: float) -> DirectionalGraph:
     """Orient a neighbour graph along a prevailing current or wind.
 
     Each edge i–j is directed so that it points with the bearing (from i to j when the
@@ -234,7 +250,7 @@ def bearing_graph(graph: NeighbourGraph, bearing: float) -> DirectionalGraph:
     --------
     >>> from spatial_ev.space.graphs import neighbour_graph
     >>> g = neighbour_graph([[0, 0], [1, 0], [2, 0]], "delaunay")
-    >>> d = bearing_graph(g, 90.0)
+    >>> d = bearing_graph(g, bearing=90.0)
     >>> d.tail.tolist(), d.head.tolist(), d.base_weight.round(6).tolist()
     ([0, 1], [1, 2], [1.0, 1.0])
     """
@@ -387,7 +403,15 @@ class SiteEdgeMatrix:
     max_distance: float | None
 
     def to_frame(self) -> pd.DataFrame:
-        """Dense sites × columns table (columns named ``e0001``, … and ``origin_<site>``)."""
+        """Dense sites × columns table (columns ``e0001``, … and ``origin_<node>``).
+
+        Examples
+        --------
+        >>> from spatial_ev.space.graphs import neighbour_graph
+        >>> g = bearing_graph(neighbour_graph([[0, 0], [2, 0]], "delaunay"), bearing=90)
+        >>> site_edge_matrix(g).to_frame().to_numpy().tolist()
+        [[0.0, 1.0], [1.0, 1.0]]
+        """
         return pd.DataFrame(self.matrix.toarray(), index=self.site_ids,
                             columns=self.edges.index)
 
@@ -1000,7 +1024,7 @@ def equivalent_wavelength(vectors: np.ndarray, weights: sparse.csr_matrix,
 
 # ------------------------------------------------------------------------ points on the network
 
-def points_along_network(network: RiverNetwork | DirectionalGraph, spacing: float
+def points_along_network(network: RiverNetwork | DirectionalGraph, *, spacing: float
                          ) -> pd.DataFrame:
     """Points spaced along every edge of a river network (for maps and predictions).
 
@@ -1026,7 +1050,7 @@ def points_along_network(network: RiverNetwork | DirectionalGraph, spacing: floa
     >>> line = shapely.LineString([(0, 0), (10, 0)])
     >>> net = build_river_network([line], pd.DataFrame({"x": [4.0], "y": 0.0}),
     ...                           snap_tolerance=1)
-    >>> points_along_network(net, 2.0)["x"].tolist()
+    >>> points_along_network(net, spacing=2.0)["x"].tolist()
     [1.0, 3.0, 5.0, 7.0, 9.0]
     """
     import shapely

@@ -11,13 +11,19 @@ Every case is checked three ways:
 * ``spatial-ev run --out DIR`` exits 2 with one line, and neither ``DIR`` nor a
   ``.partial-`` folder exists afterwards.
 
-Cases marked ``subprocess = true`` are also run through the installed ``spatial-ev`` command.
+Cases marked ``subprocess = true`` are also run through the installed ``spatial-ev`` command;
+cases marked ``options_only = true`` are option values that one command (``run`` or ``eigen``)
+refuses before any work. Every error line of every command is also checked for the library's
+Python names (``n_permutations``, ```k```, ``method='k_nearest'``, ``None`` …): the command
+line speaks of the options the user typed.
 """
 
 from __future__ import annotations
 
 import argparse
 import importlib.util
+import inspect
+import re
 import shutil
 import subprocess
 import sys
@@ -31,10 +37,12 @@ try:
 except ModuleNotFoundError:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
+import spatial_ev
 from spatial_ev import errors
 from spatial_ev.cli.main import main
 from spatial_ev.cli.check import configure as configure_check
 from spatial_ev.cli.common import survey_from_args
+from spatial_ev.cli.run import ANALYSIS_MIN_SITES
 
 BAD = Path(__file__).resolve().parent / "data" / "bad"
 CASES = tomllib.loads((BAD / "cases.toml").read_text(encoding="utf-8"))["case"]
@@ -42,7 +50,11 @@ DEFAULTS = {"sites": "good/sites.csv", "species": "good/species.csv",
             "environment": "good/environment.csv"}
 ERRORS = [c for c in CASES if "error" in c]
 WORKING = [c for c in CASES if "error" not in c]
-READ_ERRORS = [c for c in ERRORS if c.get("command", "check") == "check"]
+FILE_ERRORS = [c for c in ERRORS if not c.get("options_only")]
+READ_ERRORS = [c for c in FILE_ERRORS if c.get("command", "check") == "check"]
+ANALYSIS_ERRORS = [c for c in FILE_ERRORS if c.get("command") == "run"]
+RUN_OPTION_ERRORS = [c for c in ERRORS if c.get("options_only") and c["command"] == "run"]
+EIGEN_OPTION_ERRORS = [c for c in ERRORS if c.get("options_only") and c["command"] == "eigen"]
 RUN_FAST = ["--weighting", "distance", "--permutations", "19", "--seed", "20261202", "--quiet"]
 
 
@@ -50,13 +62,48 @@ def _ids(cases):
     return [c["id"] for c in cases]
 
 
-def file_args(case) -> list[str]:
+def files(case) -> list[str]:
     args = []
     for role, default in DEFAULTS.items():
         path = case.get(role, default)
         if path != "none":
             args += [f"--{role}", path]
-    return args + list(case.get("args", []))
+    return args
+
+
+def file_args(case) -> list[str]:
+    return files(case) + list(case.get("args", []))
+
+
+def _library_parameters() -> frozenset[str]:
+    """Parameter names of every public function and class of the library."""
+    names = set()
+    for public in spatial_ev.__all__:
+        obj = getattr(spatial_ev, public)
+        for target in (obj, getattr(obj, "from_frames", None)):
+            if callable(target):
+                try:
+                    names |= set(inspect.signature(target).parameters)
+                except (TypeError, ValueError):
+                    pass
+    return frozenset(names - {"self", "cls", "args", "kwargs"})
+
+
+PARAMETERS = _library_parameters()
+_PYTHON_FORMS = (
+    (re.compile(r"`(\w+)=?`"), "a parameter in backticks"),
+    (re.compile(r"(?<![\w\-'`.])(\w+) ?=(?!=)"), "a keyword argument"),
+    (re.compile(r"(?<![\w\-'`])(\w+_\w+)(?![\w'`])"), "a parameter name"),
+)
+_PYTHON_WORDS = re.compile(r"\b(None|True|False|GeoSeries|GeoDataFrame|DataFrame|ndarray)\b"
+                           r"|\bparameter `")
+
+
+def python_names_in(message: str) -> list[str]:
+    """The library's Python names in a command-line message (empty when it has none)."""
+    found = [f"{what} {m.group(1)!r}" for pattern, what in _PYTHON_FORMS
+             for m in pattern.finditer(message) if m.group(1) in PARAMETERS]
+    return found + [f"Python word {m.group(0)!r}" for m in _PYTHON_WORDS.finditer(message)]
 
 
 def _load_make_corpus():
@@ -91,11 +138,47 @@ def check_fragments(text: str, case) -> None:
 
 
 def one_error_line(err: str, command: str) -> str:
+    """The error line of a failed command (the last line; any line before it is a warning,
+    one line each); fails on a Python name in any of them."""
     lines = err.strip().splitlines()
-    assert len(lines) == 1, f"expected one line on stderr, got {len(lines)}: {err}"
+    assert lines, "nothing on stderr"
     assert "Traceback" not in err
-    assert lines[0].startswith(f"spatial-ev {command}: error: ")
-    return lines[0]
+    assert all(line.startswith("warning (") for line in lines[:-1]), err
+    assert lines[-1].startswith(f"spatial-ev {command}: error: "), err
+    for line in lines:
+        leaks = python_names_in(line.split(": error: ", 1)[-1])
+        assert not leaks, f"Python names in a command-line message: {leaks}: {line}"
+    return lines[-1]
+
+
+class TestPythonNamesDetector:
+    """The check above must catch what the command line used to print."""
+
+    @pytest.mark.parametrize("message", [
+        "`schemes` entry 'gabriel' is not 'distance' or '<graph>/<weighting>'",
+        "method='k_nearest' needs `k` (number of neighbours, e.g. 4); got None",
+        "increase `threshold` or leave it None (smallest connecting distance)",
+        "needs site polygons: pass `polygons=` (a GeoSeries) or a Survey of polygon sites",
+        "n_permutations = 99 cannot reach the corrected level 0.001000 for 1 schemes",
+        "pass crs= (EPSG code or WKT, --crs) or local_unit= for local planar coordinates",
+        "parameter `max_vectors` must be >= 1; got 0",
+        "coordinate columns need x and y: pass x= and y=",
+    ])
+    def test_old_messages_are_caught(self, message):
+        assert python_names_in(message)
+
+    @pytest.mark.parametrize("message", [
+        "--weighting 'gabriel' is not 'distance' or '<graph>/<weighting>' (e.g. 'gabriel/linear')",
+        "--graph k_nearest needs --neighbours (number of neighbours, e.g. 4)",
+        "column 'site_id' line 3 (site 'S02') is empty; write 0",
+        "sites file 'my_sites.csv': pass --crs EPSG:4326 for WGS 84 degrees",
+    ])
+    def test_command_line_words_pass(self, message):
+        assert python_names_in(message) == []
+
+    def test_knows_the_parameters(self):
+        assert {"n_permutations", "schemes", "k", "threshold", "crs", "local_unit",
+                "max_vectors", "sign"} <= PARAMETERS
 
 
 class TestManifest:
@@ -103,10 +186,12 @@ class TestManifest:
         assert len(CASES) >= 40 and len(ERRORS) >= 40
         assert len(set(_ids(CASES))) == len(CASES), "case ids must be unique"
         allowed = {"id", "what", "sites", "species", "environment", "args", "error",
-                   "warnings", "match", "command", "subprocess", "full_run"}
+                   "warnings", "match", "command", "subprocess", "full_run", "options_only"}
         for case in CASES:
             assert set(case) <= allowed, f"{case['id']}: unknown keys {set(case) - allowed}"
             assert case["match"] and case["what"], case["id"]
+            assert case.get("command", "check") in (
+                ("run", "eigen") if case.get("options_only") else ("check", "run")), case["id"]
             if "error" in case:
                 assert issubclass(getattr(errors, case["error"]), errors.SpatialEVError)
             for name in case.get("warnings", []):
@@ -156,7 +241,7 @@ class TestLibrary:
     def test_run_stage_errors(self, in_corpus):
         from spatial_ev.pipeline.analysis import analyse
 
-        for case in [c for c in ERRORS if c.get("command") == "run"]:
+        for case in ANALYSIS_ERRORS:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", errors.SpatialEVWarning)
                 survey = _library(case)
@@ -167,7 +252,8 @@ class TestLibrary:
 
 
 class TestCommandLine:
-    @pytest.mark.parametrize("case", READ_ERRORS, ids=_ids(READ_ERRORS))
+    # `check` applies every rule `run` applies to the files (ANALYSIS_ERRORS: e.g. too few sites)
+    @pytest.mark.parametrize("case", FILE_ERRORS, ids=_ids(FILE_ERRORS))
     def test_check_exits_2_with_one_line(self, case, in_corpus, capsys):
         before = listing(in_corpus)
         assert main(["check", *file_args(case)]) == 2
@@ -177,11 +263,14 @@ class TestCommandLine:
         check_fragments(line, case)
         assert listing(in_corpus) == before
 
-    @pytest.mark.parametrize("case", ERRORS, ids=_ids(ERRORS))
+    @pytest.mark.parametrize("case", FILE_ERRORS + RUN_OPTION_ERRORS,
+                             ids=_ids(FILE_ERRORS + RUN_OPTION_ERRORS))
     def test_run_exits_2_and_writes_nothing(self, case, in_corpus, tmp_path, capsys):
         out_dir = tmp_path / "run"
         before = listing(in_corpus)
-        assert main(["run", *file_args(case), "--out", str(out_dir), *RUN_FAST]) == 2
+        # the case's options come last, so that they win over the fast settings
+        assert main(["run", *files(case), "--out", str(out_dir), *RUN_FAST,
+                     *case.get("args", [])]) == 2
         out, err = capsys.readouterr()
         line = one_error_line(err, "run")
         check_fragments(line, case)
@@ -191,9 +280,20 @@ class TestCommandLine:
 
     @pytest.mark.parametrize("case", WORKING, ids=_ids(WORKING))
     def test_check_passes(self, case, in_corpus, capsys):
-        assert main(["check", *file_args(case)]) == 0
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", errors.SpatialEVWarning)
+            n_sites = _library(case).n_sites
+        status = main(["check", *file_args(case)])
         out, err = capsys.readouterr()
-        assert "check passed; nothing was written" in out
+        if n_sites < ANALYSIS_MIN_SITES:
+            # readable, but fewer sites than `run` takes (e.g. after dropping incomplete ones):
+            # `check` refuses it as `run` would, after showing the warnings one line each
+            assert status == 2 and out == ""
+            assert f"`run` needs at least {ANALYSIS_MIN_SITES}" in one_error_line(err, "check")
+            err = "\n".join(err.strip().splitlines()[:-1])
+        else:
+            assert status == 0
+            assert "check passed; nothing was written" in out
         warned = {line.split(")")[0].removeprefix("warning (")
                   for line in err.strip().splitlines() if line}
         assert warned == set(case.get("warnings", [])), err
@@ -207,7 +307,8 @@ FULL_RUNS = [pytest.param(c, id=c["id"]) for c in WORKING if c.get("full_run")]
 
 
 class TestOtherCommands:
-    @pytest.mark.parametrize("case", SITE_ERRORS, ids=_ids(SITE_ERRORS))
+    @pytest.mark.parametrize("case", SITE_ERRORS + EIGEN_OPTION_ERRORS,
+                             ids=_ids(SITE_ERRORS + EIGEN_OPTION_ERRORS))
     def test_eigen_exits_2_and_writes_nothing(self, case, in_corpus, tmp_path, capsys):
         args = file_args(case)
         for role in ("--species", "--environment"):  # `eigen` reads the site table only

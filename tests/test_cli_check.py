@@ -31,15 +31,15 @@ def _demo_args(repo_root):
             "--environment", str(d / "environment.csv")]
 
 
-def _small_survey(folder: Path, n: int = 8, seed: int = 640_118_352):
+def _small_survey(folder: Path, n: int = 12, seed: int = 640_118_352):
     rng = np.random.default_rng(seed)
     ids = [f"P{i}" for i in range(n)]
-    pd.DataFrame({"plot": ids, "x": rng.uniform(0, 100, n).round(1),
-                  "y": rng.uniform(0, 100, n).round(1)}).to_csv(folder / "sites.csv",
-                                                                 index=False)
+    pd.DataFrame({"plot": ids, "x": rng.uniform(0, 1000, n).round(1),
+                  "y": rng.uniform(0, 1000, n).round(1)}).to_csv(folder / "sites.csv",
+                                                                  index=False)
     pd.DataFrame(rng.poisson(3, (n, 3)) + 1, index=pd.Index(ids, name="plot"),
                  columns=["BTX01", "BTX02", "BTX03"]).to_csv(folder / "species.csv")
-    pd.DataFrame({"depth": rng.uniform(0, 2, n).round(2), "substrate": ["mud", "sand"] * (n // 2)},
+    pd.DataFrame({"depth": rng.uniform(0, 2, n).round(2), "substrate": (["mud", "sand"] * n)[:n]},
                  index=pd.Index(ids, name="plot")).to_csv(folder / "env.csv")
     return folder / "sites.csv", folder / "species.csv", folder / "env.csv"
 
@@ -89,7 +89,7 @@ class TestCheckCommand:
         (lambda f: pd.read_csv(f[1]).assign(BTX02="x").to_csv(f[1], index=False),
          ["--local-unit", "m"], "column 'BTX02' line 2 (site 'P0') holds 'x'"),
         (lambda f: pd.read_csv(f[1]).iloc[:-1].to_csv(f[1], index=False),
-         ["--local-unit", "m"], "are missing from it: 'P7'"),
+         ["--local-unit", "m"], "are missing from it: 'P11'"),
         (lambda f: None, ["--crs", "EPSG:0"], "is not a coordinate reference system"),
     ])
     def test_bad_input_exit_2_one_line_nothing_written(self, workdir, capsys, mutate, args,
@@ -107,6 +107,30 @@ class TestCheckCommand:
         assert match in err[0]
         assert "Traceback" not in err[0]
         assert _listing(workdir) == before
+
+    def test_refuses_what_run_refuses(self, workdir, capsys):
+        # 8 sites read well but are too few for the analysis: `check` must not pass them
+        from spatial_ev.cli.run import ANALYSIS_MIN_SITES
+        from spatial_ev.errors import InputError
+        from spatial_ev.input.survey import read_survey
+        from spatial_ev.pipeline.analysis import analyse
+
+        sites, species, env = _small_survey(workdir, n=ANALYSIS_MIN_SITES - 2)
+        assert main(["check", "--sites", str(sites), "--species", str(species),
+                     "--local-unit", "m"]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert err == ["spatial-ev check: error: the survey has 8 sites; `run` needs at least "
+                       "10 (spatial eigenvectors, selection and permutation tests)"]
+        # the rule is the analysis's own: it refuses one site fewer, not the minimum itself
+        for n, refused in ((ANALYSIS_MIN_SITES - 1, True), (ANALYSIS_MIN_SITES, False)):
+            sites, species, env = _small_survey(workdir, n=n)
+            survey = read_survey(sites, species, local_unit="m")
+            if refused:
+                with pytest.raises(InputError, match=f"{n} sites.*at least {ANALYSIS_MIN_SITES}"):
+                    analyse(survey, n_permutations=19, seed=1, spatial_weighting="single")
+            else:
+                assert main(["check", "--sites", str(sites), "--species", str(species),
+                             "--local-unit", "m"]) == 0
 
     def test_installed_entry_point(self, workdir, repo_root):
         exe = shutil.which("spatial-ev", path=str(Path(sys.executable).parent)) \

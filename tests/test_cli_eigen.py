@@ -73,7 +73,7 @@ class TestEigenCommand:
         assert main(base + ["--exponent", "2", "--out", str(tmp_path / "a")]) == 2
         assert "--exponent applies to neighbour graphs" in capsys.readouterr().err
         assert main(base + ["--graph", "k_nearest", "--out", str(tmp_path / "b")]) == 2
-        assert "needs `k`" in capsys.readouterr().err
+        assert "--graph k_nearest needs --neighbours" in capsys.readouterr().err
         assert main(base + ["--graph", "gabriel", "--weighting", "linear", "--out",
                             str(tmp_path / "c")]) == 2
         assert "gives every edge weight 0" in capsys.readouterr().err

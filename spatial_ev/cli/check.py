@@ -1,6 +1,7 @@
 """``spatial-ev check``: validate survey files and describe what ``run`` would analyse.
 
-Reads the files with the same options as ``run``, prints a description (sites, species,
+Reads the files with the same options as ``run`` and applies the rules ``run`` applies to
+them (e.g. the minimum number of sites), prints a description (sites, species,
 variables with their indicator columns, CRS and projection, extent, nearest-neighbour
 spacing, what was dropped and why) and writes nothing. Warnings (dropped species, projected
 degrees, ...) go to standard error; bad input ends with one line and exit status 2.
@@ -12,6 +13,7 @@ import argparse
 import sys
 
 from spatial_ev.cli.common import add_survey_options, survey_from_args
+from spatial_ev.cli.run import check_survey_for_run
 
 __all__ = ["configure", "execute"]
 
@@ -38,6 +40,7 @@ def execute(args: argparse.Namespace) -> int:
     0
     """
     survey = survey_from_args(args)
+    check_survey_for_run(survey)  # every rule `run` applies to the files
     print(survey.describe(), file=sys.stdout)
     if survey.species is None:
         print("note: without --species only the spatial layout can be checked; "

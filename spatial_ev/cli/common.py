@@ -1,13 +1,22 @@
-"""Survey options shared by the commands that read survey files (``check``, ``run``, ``eigen``).
+"""What the commands share: the survey options, and the command line's own words in messages.
 
 :func:`add_survey_options` adds the same option names everywhere; :func:`survey_from_args`
 turns the parsed options into a :class:`spatial_ev.input.survey.Survey` through
 :func:`spatial_ev.input.survey.read_survey`, so every command validates input the same way.
+
+The library's messages name its Python parameters (``n_permutations``, ``k``,
+``method='k_nearest'``); a user of the command line typed options (``--permutations``,
+``--neighbours``, ``--graph k_nearest``). :func:`option_names` maps one to the other for a
+command (:data:`PARAMETER_OPTIONS` holds the names that differ, the parser gives the rest) and
+:func:`in_option_words` rewrites a message with it; advice about a parameter the command line
+does not offer is dropped.
 """
 
 from __future__ import annotations
 
 import argparse
+import re
+from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
 from spatial_ev._validation import check_option
@@ -15,7 +24,52 @@ from spatial_ev._validation import check_option
 if TYPE_CHECKING:  # pragma: no cover
     from spatial_ev.input.survey import Survey
 
-__all__ = ["add_survey_options", "read_options", "survey_from_args"]
+__all__ = ["add_survey_options", "read_options", "survey_from_args", "PARAMETER_OPTIONS",
+           "option_names", "in_option_words"]
+
+_ANALYSIS_PARAMETERS = {"schemes": "--weighting", "spatial_weighting": "--weighting",
+                        "n_permutations": "--permutations"}
+
+# command -> {library parameter: option}, for the parameters whose option has another name
+# (a parameter called like its option, e.g. `alpha` / --alpha, is taken from the parser)
+PARAMETER_OPTIONS: dict[str, dict[str, str]] = {
+    "check": {},
+    "run": dict(_ANALYSIS_PARAMETERS),
+    "demo": dict(_ANALYSIS_PARAMETERS),
+    "eigen": {"method": "--graph", "k": "--neighbours", "sign": "--autocorrelation"},
+    "design": {"n_simulations": "--simulations", "n_permutations": "--permutations",
+               "n_workers": "--workers"},
+}
+
+# library advice with no command-line counterpart, said in the command line's terms
+_PHRASES: tuple[tuple[re.Pattern, str], ...] = (
+    (re.compile(r"pass `polygons=` \(a GeoSeries\) or a Survey of polygon sites"),
+     "give --sites a GeoPackage, GeoJSON or Shapefile of site polygons"),
+    (re.compile(r"\(e\.g\. GeoDataFrame\.to_crs\)"), "(e.g. in a GIS)"),
+    (re.compile(r"\bleave it None\b"), "leave it out"),
+    (re.compile(r"; got None\b"), ""),
+)
+_VALUE = r"(?:'[^']*'|[^\s,;()'`]+)"
+_DROP_ADVICE = re.compile(r"[,;]? or (?:pass |use |set )?`?(\w+)=" + _VALUE + r"`?"
+                          r"(?: \((?:[^()]|\([^()]*\))*\))?")
+_WITH_VALUE = re.compile(r"(?<![\w\-`'])`?(\w+) ?= ?(" + _VALUE + r")`?")
+_BARE = re.compile(r"(?:parameter )?`(\w+)=?`|(?<![\w\-`'])(\w+)=(?=[\s,;)]|$)"
+                   r"|(?<![\w\-`'])(\w+_\w+)(?![\w`'])")
+_SAID_TWICE = (
+    # "--x and --y (command line: --x COL --y COL)" -> "--x COL --y COL"
+    (re.compile(r"(--[\w-]+) and (--[\w-]+) \((?:command line: )?(\1 \S+ \2 \S+)\)"),
+     r"\3"),
+    # "--decimal ',' (command line: --decimal ,)" / "--site-id (--site-id)" -> once
+    (re.compile(r"(--[\w-]+)( '?([^\s(']+)'?)? \((?:command line: )?\1(?: \3)?\)"), r"\1\2"),
+    # "--encoding utf-16-le, --encoding utf-16-le" -> once
+    (re.compile(r"(--[\w-]+ [^\s,;()]+), \1"), r"\1"),
+    # "--crs (EPSG code or WKT, --crs)" -> "--crs (EPSG code or WKT)"
+    (re.compile(r"(--[\w-]+) \(([^()]*?),? \1\)"), r"\1 (\2)"),
+    # "--weighting entry 'gabriel'" -> "--weighting 'gabriel'"
+    (re.compile(r"(--[\w-]+) entry '"), r"\1 '"),
+    # "(got --x 'a', --y None)" -> "(got --x 'a', --y not given)"
+    (re.compile(r"(--[\w-]+) None\b"), r"\1 not given"),
+)
 
 _SPECIES_MODES = ("optional", "required", "absent")
 
@@ -102,7 +156,7 @@ def read_options(args: argparse.Namespace) -> dict:
     --------
     >>> args = add_survey_options(argparse.ArgumentParser()).parse_args(
     ...     ["--sites", "s.csv", "--delimiter", "tab"])
-    >>> read_options(args)["delimiter"] == "\t"
+    >>> read_options(args)["delimiter"] == chr(9)
     True
     """
     tab = {"tab": "\t", "\\t": "\t"}
@@ -131,3 +185,71 @@ def survey_from_args(args: argparse.Namespace) -> Survey:
 
     return read_survey(args.sites, getattr(args, "species", None),
                        getattr(args, "environment", None), **read_options(args))
+
+
+def option_names(parser: argparse.ArgumentParser, command: str) -> dict[str, str]:
+    """Library parameter name -> option of ``command`` (whose parser is ``parser``).
+
+    Every option of the parser answers to its own name with ``_`` for ``-`` (``local_unit`` ->
+    ``--local-unit``); :data:`PARAMETER_OPTIONS` adds the parameters named otherwise.
+
+    Examples
+    --------
+    >>> p = argparse.ArgumentParser(); _ = p.add_argument("--neighbours", type=int)
+    >>> option_names(p, "eigen")["k"], option_names(p, "eigen")["neighbours"]
+    ('--neighbours', '--neighbours')
+    """
+    names = {}
+    for action in parser._actions:
+        longs = [o for o in action.option_strings if o.startswith("--")]
+        if longs and not action.dest.startswith("_"):
+            names[action.dest] = longs[0]
+            names[longs[0][2:].replace("-", "_")] = longs[0]
+    names.pop("help", None)
+    names.update(PARAMETER_OPTIONS.get(command, {}))
+    return names
+
+
+def in_option_words(message: str, options: Mapping[str, str]) -> str:
+    """``message`` with the library's parameter names replaced by the options a user typed.
+
+    ``options`` comes from :func:`option_names`. Forms rewritten: ``parameter `name```,
+    ```name```, ``name=``, a bare ``name_with_underscore``, and ``name='value'`` /
+    ``name = value`` (to ``--option value``);
+    advice about a parameter without an option (``or pass name='value'``) is dropped, and an
+    option the library already spelled out beside its parameter is said once.
+
+    Examples
+    --------
+    >>> in_option_words("method='k_nearest' needs `k` (e.g. 4); got None",
+    ...                 {"method": "--graph", "k": "--neighbours"})
+    '--graph k_nearest needs --neighbours (e.g. 4)'
+    >>> in_option_words("n_permutations = 99 is too few", {"n_permutations": "--permutations"})
+    '--permutations 99 is too few'
+    >>> in_option_words("increase `threshold`, or pass disconnected='allow'",
+    ...                 {"threshold": "--threshold"})
+    'increase --threshold'
+    """
+    text = message
+    for pattern, replacement in _PHRASES:
+        text = pattern.sub(replacement, text)
+    text = _DROP_ADVICE.sub(lambda m: m.group(0) if m.group(1) in options else "", text)
+
+    def with_value(m: re.Match) -> str:
+        name, value = m.group(1), m.group(2)
+        if name not in options:
+            return m.group(0)
+        bare_value = value.strip(chr(39))
+        if not any(c.isalnum() for c in bare_value):  # punctuation stays quoted: --decimal ','
+            bare_value = value
+        return f"{options[name]} {bare_value}"
+
+    def bare(m: re.Match) -> str:
+        name = m.group(1) or m.group(2) or m.group(3)
+        return options.get(name, m.group(0))
+
+    text = _WITH_VALUE.sub(with_value, text)
+    text = _BARE.sub(bare, text)
+    for pattern, replacement in _SAID_TWICE:
+        text = pattern.sub(replacement, text)
+    return text

@@ -5,14 +5,17 @@ its options and one that executes it (``execute(args) -> int``). This module hol
 the parser, the dispatch table and the error boundary: any :class:`SpatialEVError` becomes one
 line on standard error and exit status 2, as does an operating-system error (a path that
 cannot be read or written); any other exception is a defect and ends with one line asking for
-a report and exit status 1. ``--debug`` shows the traceback instead. Warnings are held back
-while a command runs: a command that succeeds shows them when it ends, one line each; a failing
-one counts them in its single error line.
+a report and exit status 1. ``--debug`` shows the traceback instead. Messages and warnings name
+the options the user typed, not the library's parameters
+(:func:`spatial_ev.cli.common.in_option_words`). Warnings are held back while a command runs
+(a live progress display stays intact) and shown when it ends, one line each and each once,
+before the error line of a failing command.
 """
 
 from __future__ import annotations
 
 import argparse
+import re
 import sys
 import warnings
 from collections.abc import Callable, Sequence
@@ -20,6 +23,7 @@ from typing import NamedTuple
 
 from spatial_ev import __version__
 from spatial_ev.cli import check, design, eigen, run
+from spatial_ev.cli.common import in_option_words, option_names
 from spatial_ev.errors import SpatialEVError, SpatialEVWarning
 
 
@@ -65,8 +69,16 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--debug", action="store_true",
                        help="show the full traceback on errors")
         configure(p)
-        p.set_defaults(_execute=execute)
+        p.set_defaults(_execute=execute, _option_names=option_names(p, name))
     return parser
+
+
+# warnings of the libraries below spatial_ev, said once in the command line's terms
+_LIBRARY_WARNINGS: tuple[tuple[re.Pattern, str], ...] = (
+    (re.compile(r"^'crs' was not provided"),
+     "map layers are written without a coordinate reference system (local planar "
+     "coordinates, --local-unit); a GIS will treat their coordinates as unreferenced"),
+)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -79,10 +91,17 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     debug = getattr(args, "debug", False)
+    words = args._option_names
     caught: list[tuple[type, str]] = []  # warnings are shown after the command, see below
 
     def keep(message, category, filename, lineno, file=None, line=None) -> None:
-        caught.append((category, _one_line(str(message))))
+        text = _one_line(str(message))
+        for pattern, said in _LIBRARY_WARNINGS:
+            if pattern.search(text):
+                text = said
+        entry = (category, in_option_words(text, words))
+        if entry not in caught:
+            caught.append(entry)
 
     try:
         with warnings.catch_warnings():
@@ -92,18 +111,18 @@ def main(argv: Sequence[str] | None = None) -> int:
         _show_warnings(caught)
         return status
     except SpatialEVError as exc:
+        _show_warnings(caught)
         if debug:
-            _show_warnings(caught)
             raise
-        print(f"spatial-ev {args.command}: error: {_one_line(str(exc))}{_after(caught)}",
-              file=sys.stderr)
+        message = in_option_words(_one_line(str(exc)), words)
+        print(f"spatial-ev {args.command}: error: {message}{_after(caught)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:  # pragma: no cover - interactive
         print("spatial-ev: interrupted; nothing was written", file=sys.stderr)
         return 130
     except OSError as exc:  # e.g. an output folder inside a file, a full disk, no permission
+        _show_warnings(caught)
         if debug:
-            _show_warnings(caught)
             raise
         where = f" {exc.filename!r}" if exc.filename else ""
         print(f"spatial-ev {args.command}: error: cannot access{where}: "
@@ -111,8 +130,8 @@ def main(argv: Sequence[str] | None = None) -> int:
               file=sys.stderr)
         return 2
     except Exception as exc:  # a defect of spatial-ev, not of the user's input
+        _show_warnings(caught)
         if debug:
-            _show_warnings(caught)
             raise
         print(f"spatial-ev {args.command}: internal error ({type(exc).__name__}: "
               f"{_one_line(str(exc))}); this is a defect in spatial-ev, not in your data: "
@@ -126,8 +145,8 @@ def _one_line(text: str) -> str:
 
 
 def _show_warnings(caught: list[tuple[type, str]]) -> None:
-    """Warnings of a finished command, one line each. They are held back while it runs so that
-    a failing command prints one line only and a live progress display is not broken."""
+    """Warnings of a finished command, one line each (each once). They are held back while it
+    runs so that a live progress display is not broken."""
     for category, message in caught:
         print(f"warning ({category.__name__}): {message}", file=sys.stderr)
 
@@ -136,7 +155,7 @@ def _after(caught: list[tuple[type, str]]) -> str:
     if not caught:
         return ""
     names = ", ".join(sorted({c.__name__ for c, _ in caught}))
-    return f" (after {len(caught)} warning(s): {names}; --debug shows them)"
+    return f" (after {len(caught)} warning(s) above: {names})"
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -20,7 +20,12 @@ from typing import Any
 from spatial_ev.cli.common import add_survey_options, read_options, survey_from_args
 from spatial_ev.errors import InputError
 
-__all__ = ["configure_run", "execute_run", "configure_demo", "execute_demo", "load_config"]
+__all__ = ["configure_run", "execute_run", "configure_demo", "execute_demo", "load_config",
+           "check_analysis_options", "check_survey_for_run", "ANALYSIS_MIN_SITES"]
+
+# the fewest sites the analysis takes (spatial_ev.pipeline.analysis.analyse refuses fewer;
+# tests/test_cli_check.py keeps the two equal), so that `check` can say so before `run`
+ANALYSIS_MIN_SITES = 10
 
 _SCHEMES_HELP = ("spatial weighting: 'compare' (default: every standard scheme, judged at a "
                  "Šidák-corrected level) or one scheme, 'distance' or '<graph>/<weighting>' "
@@ -173,19 +178,84 @@ class _Progress:
         return time.perf_counter() - self.start
 
 
+def check_analysis_options(args: argparse.Namespace) -> None:
+    """Refuse option values the analysis would refuse, before any file is read or any test
+    run (the analysis finds some of them only after its first steps).
+
+    Raises :class:`spatial_ev.errors.InputError` naming the option.
+
+    Examples
+    --------
+    >>> p = argparse.ArgumentParser(); configure_demo(p)
+    >>> check_analysis_options(p.parse_args(["--permutations", "999"]))
+    >>> check_analysis_options(p.parse_args(["--permutations", "5"]))
+    Traceback (most recent call last):
+    ...
+    spatial_ev.errors.InputError: --permutations must be at least 19; got 5
+    """
+    import math
+
+    from spatial_ev._validation import check_int, check_real
+    from spatial_ev.selection.weighting import DEFAULT_SCHEMES, check_schemes, sidak_level
+
+    if args.permutations < 19:
+        raise InputError(f"--permutations must be at least 19; got {args.permutations}")
+    alpha = check_real("alpha", args.alpha, low=0, high=0.5, low_inclusive=False)
+    if args.seed is not None:
+        check_int("seed", args.seed, low=0)
+    if args.max_vectors is not None:
+        check_int("max_vectors", args.max_vectors, low=1)
+    if args.scale_breaks is not None:
+        breaks = [check_real("scale_breaks", b, low=0, low_inclusive=False)
+                  for b in args.scale_breaks]
+        if len(set(breaks)) != len(breaks):
+            raise InputError(f"--scale-breaks lists a boundary twice; give each once; got "
+                             f"{' '.join(f'{b:g}' for b in breaks)}")
+    if args.weighting == "compare":
+        n_schemes = len(DEFAULT_SCHEMES)
+    else:
+        check_schemes([args.weighting])
+        n_schemes = 1
+    level = sidak_level(alpha, n_schemes)
+    if 1.0 / (args.permutations + 1) > level:
+        need = math.ceil(1.0 / level) - 1
+        raise InputError(f"--permutations {args.permutations} cannot reach the corrected level "
+                         f"{level:.6f} for {n_schemes} scheme(s) compared at --alpha {alpha:g} "
+                         f"(the smallest p is 1/(N + 1)); use at least --permutations {need}"
+                         + (", or one scheme with --weighting" if n_schemes > 1 else ""))
+    if args.scheduler is not None and args.engine != "dask":
+        raise InputError("--scheduler applies to --engine dask; add --engine dask or drop "
+                         "--scheduler")
+
+
+def _check_out_folder(args: argparse.Namespace) -> None:
+    if Path(args.out).exists() and not args.overwrite:  # before reading and analysing
+        raise InputError(f"output folder {args.out!r} already exists; choose another folder or "
+                         f"pass --overwrite")
+
+
+def check_survey_for_run(survey) -> None:
+    """Refuse a survey the analysis cannot take (fewer than :data:`ANALYSIS_MIN_SITES` sites);
+    ``check`` applies it too, so that it never passes what ``run`` refuses.
+
+    Examples
+    --------
+    >>> check_survey_for_run(survey)  # doctest: +SKIP
+    """
+    if survey.n_sites < ANALYSIS_MIN_SITES:
+        raise InputError(f"the survey has {survey.n_sites} sites; `run` needs at least "
+                         f"{ANALYSIS_MIN_SITES} (spatial eigenvectors, selection and "
+                         f"permutation tests)")
+
+
 def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=None,
                        before_commit=None, title=None, reading=None) -> Any:
     from spatial_ev.pipeline.analysis import analyse
     from spatial_ev.report.run_folder import write_run_folder
 
-    if args.permutations < 19:
-        raise InputError(f"--permutations must be at least 19; got {args.permutations}")
+    check_survey_for_run(survey)
     weighting = "compare" if args.weighting == "compare" else "single"
     schemes = None if weighting == "compare" else [args.weighting]
-    out_path = Path(out)
-    if out_path.exists() and not args.overwrite:  # fail before a long analysis, not after
-        raise InputError(f"output folder {out!r} already exists; choose another folder or pass "
-                         f"--overwrite")
     progress = _Progress(args.quiet)
     try:
         result = analyse(survey, transformation=args.transformation,
@@ -233,6 +303,8 @@ def execute_run(args: argparse.Namespace) -> int:
         raise InputError("`run` needs a species table: give --species FILE")
     if args.out is None:
         raise InputError("no output folder: give --out DIR (or `out` in the config file)")
+    check_analysis_options(args)
+    _check_out_folder(args)
     survey = survey_from_args(args)
     result, elapsed = _analyse_and_write(survey, args, args.out, reading=read_options(args))
     for line in _final_lines(result, args.out, elapsed):
@@ -254,6 +326,8 @@ def execute_demo(args: argparse.Namespace) -> int:
     from spatial_ev.datasets.mudflat import write_demo_survey
     from spatial_ev.input.survey import read_survey
 
+    check_analysis_options(args)
+    _check_out_folder(args)
     with tempfile.TemporaryDirectory(prefix="spatial-ev-demo-") as tmp:
         paths = write_demo_survey(tmp)
         survey = read_survey(paths["sites"], paths["species"], paths["environment"])

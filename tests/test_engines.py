@@ -92,7 +92,7 @@ class TestRunTasks:
 
     # input validation -------------------------------------------------------------------------
     def test_bad_engine(self):
-        with pytest.raises(InputError, match=r"`engine` must be one of 'local', 'dask'; got 'ray'"):
+        with pytest.raises(InputError, match=r"`engine` must be one of 'local', 'processes', 'dask'; got 'ray'"):
             run_tasks(abs, [1], engine="ray")
 
     def test_scheduler_with_local_engine(self):

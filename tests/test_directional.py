@@ -444,3 +444,38 @@ class TestArguments:
             D.aem_eigenvectors(g, solver="sparse")
         with pytest.raises(InputError, match="`spacing`"):
             D.points_along_network(y_net, spacing=0.0)
+
+
+class TestSchemes:
+    def test_river_schemes_compare_with_straight_line_schemes(self, river):
+        from spatial_ev.selection.weighting import compare_weighting_schemes
+        from spatial_ev.stats.transform import transform
+
+        net, survey, _ = river
+        schemes = D.river_schemes(net, weightings=("binary", "concave_down:1"))
+        assert list(schemes) == ["river_aem/binary", "river_aem/concave_down:1",
+                                 "river_distance"]
+        assert schemes["river_aem/concave_down:1"].exponent == 1.0
+        Y = transform(survey.species, "hellinger")
+        mixed = {**schemes, "distance": distance_eigenvectors(survey)}
+        out = compare_weighting_schemes(Y, survey, schemes=mixed, n_permutations=199, seed=7,
+                                        conditioning=survey.environment)
+        assert out.n_schemes == 4
+        # the community's spatial part is the downstream drift: a river scheme wins
+        assert out.best is not None and out.best.startswith("river")
+        assert out.table.loc["river_aem/binary", "r2_adj"] > out.table.loc["distance", "r2_adj"]
+
+    def test_bearing_schemes(self):
+        g = neighbour_graph(np.column_stack([np.arange(8.0), np.zeros(8)]), "delaunay",
+                            distance="euclidean")
+        out = D.bearing_schemes(g, bearing=-270, orientations=("with_flow", "against_flow"))
+        assert list(out) == ["bearing_90/binary", "bearing_90_against/binary"]
+        assert out["bearing_90/binary"].method == "aem_bearing"
+
+    def test_equal_edges_under_a_linear_weighting_are_refused_clearly(self):
+        with pytest.raises(InputError, match=r"every edge weight 0.*`max_distance`"):
+            D.site_edge_matrix(D.river_graph(chain(6)), weighting="linear")
+        ok = D.site_edge_matrix(D.river_graph(chain(6)), weighting="linear", max_distance=2.0)
+        assert ok.matrix.max() == pytest.approx(0.5) and ok.max_distance == 2.0
+        with pytest.raises(InputError, match="`weightings` entry 'concave_down:x'"):
+            D.river_schemes(chain(6), weightings=("concave_down:x",))

@@ -55,6 +55,7 @@ from spatial_ev.space.graphs import NeighbourGraph, edge_weight_values
 __all__ = ["DirectionalGraph", "river_graph", "bearing_graph", "SiteEdgeMatrix",
            "site_edge_matrix", "NetworkBasis", "aem_eigenvectors", "network_distances",
            "network_distance_eigenvectors", "equivalent_wavelength", "points_along_network",
+           "river_schemes", "bearing_schemes",
            "ORIENTATIONS", "EDGE_WEIGHTINGS", "WEIGHT_BY"]
 
 ORIENTATIONS = ("with_flow", "against_flow")
@@ -492,6 +493,10 @@ def site_edge_matrix(graph: DirectionalGraph, *, orientation: str = "with_flow",
     if weighting != "binary" and real.any():
         w[real] = edge_weight_values(d_used, weighting, exponent, d_max)
     w[real] *= graph.base_weight[col[real]]
+    if real.any() and not (w[real] > 0).any():
+        raise InputError(f"weighting={weighting!r} gives every edge weight 0 (every distance "
+                         f"equals d_max = {d_max:g}, e.g. equally long edges); pass "
+                         f"`max_distance` larger than {d_max:g}, or use weighting='binary'")
     mat = sparse.csr_matrix((w, (site, col)), shape=(n, len(all_head)))
     mat.eliminate_zeros()
     used = np.flatnonzero(np.asarray((mat != 0).sum(axis=0)).ravel() > 0)
@@ -1020,6 +1025,138 @@ def equivalent_wavelength(vectors: np.ndarray, weights: sparse.csr_matrix,
     small = target < gap[0]
     k_est[small] = np.sqrt(target[small] / (c * float(wb @ d ** 2)))
     return 2 * np.pi / k_est
+
+
+# ------------------------------------------------------------------------ candidate schemes
+
+def river_schemes(network: RiverNetwork | DirectionalGraph, *,
+                  orientations: tuple[str, ...] = ("with_flow",),
+                  weightings: tuple[str, ...] = ("binary", "linear"),
+                  weight_by: str = "edge_length", network_distance: bool = True,
+                  sign: str = "positive",
+                  max_vectors: int | None = None) -> dict[str, NetworkBasis]:
+    """Named directional bases of a river network, ready to compare as weighting schemes.
+
+    Names: ``"river_aem/<weighting>"`` (with the flow), ``"river_aem_against/<weighting>"``
+    (against it), a concave weighting as ``"river_aem/concave_down:<exponent>"``, and
+    ``"river_distance"`` (distance-based eigenvectors of along-network distances). Each counts
+    as one scheme in a Šidák-corrected comparison
+    (:func:`spatial_ev.selection.weighting.compare_weighting_schemes` takes this mapping as
+    ``schemes``, alone or merged with straight-line schemes).
+
+    Parameters
+    ----------
+    network : RiverNetwork or DirectionalGraph
+    orientations : tuple of {"with_flow", "against_flow"}
+    weightings : tuple of str
+        ``"binary"``, ``"linear"``, ``"concave_down:<α>"``, ``"concave_up:<β>"``.
+    weight_by : {"edge_length", "network_distance"}
+        What the non-binary weightings are a function of (see :func:`site_edge_matrix`).
+    network_distance : bool
+        Also the symmetric along-network distance-based basis.
+    sign, max_vectors
+        As in :func:`aem_eigenvectors`.
+
+    Returns
+    -------
+    dict of str to NetworkBasis
+
+    Examples
+    --------
+    >>> import shapely
+    >>> from spatial_ev.input.network import build_river_network
+    >>> line = shapely.LineString([(0, 0), (30, 0)])
+    >>> xy = pd.DataFrame({"x": [1.0, 2, 4, 7, 11, 16, 22, 29], "y": 0.0})
+    >>> sorted(river_schemes(build_river_network([line], xy, snap_tolerance=1)))
+    ['river_aem/binary', 'river_aem/linear', 'river_distance']
+    """
+    graph = river_graph(network) if isinstance(network, RiverNetwork) else network
+    if not isinstance(graph, DirectionalGraph) or graph.kind != "river_network":
+        raise InputError("`network` must be a RiverNetwork (or its river_graph); got "
+                         f"{type(network).__name__}")
+    if isinstance(orientations, str) or isinstance(weightings, str):
+        raise InputError("`orientations` and `weightings` must be tuples of names, e.g. "
+                         "('with_flow',) and ('binary', 'linear')")
+    out: dict[str, NetworkBasis] = {}
+    for orientation in orientations:                      # a handful of schemes
+        check_option("orientations", orientation, ORIENTATIONS)
+        prefix = "river_aem" if orientation == "with_flow" else "river_aem_against"
+        for spec in weightings:
+            weighting, exponent = _weighting_spec(spec)
+            out[f"{prefix}/{spec}"] = aem_eigenvectors(
+                graph, orientation=orientation, weighting=weighting, exponent=exponent,
+                weight_by=weight_by, sign=sign, max_vectors=max_vectors)
+    if network_distance:
+        out["river_distance"] = network_distance_eigenvectors(graph, sign=sign,
+                                                              max_vectors=max_vectors)
+    if not out:
+        raise InputError("no scheme requested: give at least one orientation and weighting, "
+                         "or network_distance=True")
+    return out
+
+
+def bearing_schemes(graph: NeighbourGraph, *, bearing: float,
+                    orientations: tuple[str, ...] = ("with_flow",),
+                    weightings: tuple[str, ...] = ("binary",), sign: str = "positive",
+                    max_vectors: int | None = None) -> dict[str, NetworkBasis]:
+    """Named AEM bases of a neighbour graph oriented along a bearing (currents, winds).
+
+    Names: ``"bearing_<degrees>/<weighting>"`` (``"bearing_90/binary"``), and
+    ``"bearing_<degrees>_against/<weighting>"``. Every edge also carries the cosine of its
+    angle with the bearing (:func:`bearing_graph`); ``weightings`` are functions of the edge
+    length, as in :func:`river_schemes`.
+
+    Parameters
+    ----------
+    graph : NeighbourGraph
+    bearing : float
+        Direction of travel, degrees clockwise from grid north.
+    orientations, weightings, sign, max_vectors
+        As in :func:`river_schemes`.
+
+    Returns
+    -------
+    dict of str to NetworkBasis
+
+    Examples
+    --------
+    >>> from spatial_ev.space.graphs import neighbour_graph
+    >>> g = neighbour_graph(np.column_stack([np.arange(8.0), np.zeros(8)]), "delaunay")
+    >>> list(bearing_schemes(g, bearing=90))
+    ['bearing_90/binary']
+    """
+    directed = bearing_graph(graph, bearing=bearing)
+    if isinstance(orientations, str) or isinstance(weightings, str):
+        raise InputError("`orientations` and `weightings` must be tuples of names, e.g. "
+                         "('with_flow',) and ('binary',)")
+    label = f"bearing_{directed.bearing:g}"
+    out: dict[str, NetworkBasis] = {}
+    for orientation in orientations:
+        check_option("orientations", orientation, ORIENTATIONS)
+        prefix = label if orientation == "with_flow" else f"{label}_against"
+        for spec in weightings:
+            weighting, exponent = _weighting_spec(spec)
+            out[f"{prefix}/{spec}"] = aem_eigenvectors(
+                directed, orientation=orientation, weighting=weighting, exponent=exponent,
+                sign=sign, max_vectors=max_vectors)
+    if not out:
+        raise InputError("no scheme requested: give at least one orientation and weighting")
+    return out
+
+
+def _weighting_spec(spec: Any) -> tuple[str, float | None]:
+    if not isinstance(spec, str):
+        raise InputError(f"`weightings` entries must be strings such as 'binary' or "
+                         f"'concave_down:0.5'; got {spec!r}")
+    name, _, exp_text = spec.partition(":")
+    check_option("weightings", name, EDGE_WEIGHTINGS)
+    if not exp_text:
+        return name, None
+    try:
+        return name, float(exp_text)
+    except ValueError:
+        raise InputError(f"`weightings` entry {spec!r}: exponent {exp_text!r} is not a number; "
+                         f"write e.g. 'concave_down:0.5'") from None
 
 
 # ------------------------------------------------------------------------ points on the network

@@ -310,3 +310,9 @@ def test_site_at_a_confluence_made_from_a_line_interior_takes_that_node():
     assert net.nodes.loc[node, ["x", "y"]].tolist() == [0.0, 10.0]
     assert net.nodes.loc[node, "kind"] == "confluence"
     assert (net.edges["length"] > 0).all() and len(net.edges) == 5
+
+
+def test_lines_in_degrees_are_refused_by_the_in_memory_builder():
+    lines = gpd.GeoSeries([UPPER, LOWER, TRIB], crs=4326)
+    with pytest.raises(CRSError, match="geographic CRS EPSG:4326"):
+        build_river_network(lines, SITES, snap_tolerance=1.0)

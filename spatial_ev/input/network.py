@@ -335,6 +335,10 @@ def build_river_network(lines: Any, sites: pd.DataFrame, *, snap_tolerance: floa
     if crs is None:
         crs = getattr(lines, "crs", None)
         crs = None if crs is None else pyproj.CRS(crs)
+    if crs is not None and crs.is_geographic:
+        raise CRSError(f"{source} is in the geographic CRS {crs_label(crs)} (degrees); lengths "
+                       f"along the network need map units: reproject the lines to the survey's "
+                       f"working CRS first (read_river_network does this)")
     unit = distance_unit or (distance_unit_of(crs) if crs is not None and crs.is_projected
                              else "map unit")
     geoms, feature = _line_parts(lines, source)

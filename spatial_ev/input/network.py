@@ -187,7 +187,8 @@ class RiverNetwork:
                  f"  flow direction: {self.direction}; {s['n_sources']} headwater end(s), "
                  f"{s['n_confluences']} confluence(s)",
                  f"  sites snapped: {s['n_sites']}, median distance "
-                 f"{s['snap_distance']['median']:.4g} {u}, largest {s['snap_distance']['max']:.4g} {u} (site "
+                 f"{s['snap_distance']['median']:.4g} {u}, largest "
+                 f"{s['snap_distance']['max']:.4g} {u} (site "
                  f"{s['snap_distance']['farthest_site']!r}; tolerance {self.snap_tolerance:g})",
                  f"  line ends joined within {self.node_tolerance:g} {u}"]
         lines += [f"  note: {n}" for n in self.notes]

@@ -382,6 +382,8 @@ class TestShippedRiver:
         assert (np.diff(b.eigenvalues) <= 0).all() and (b.scale > 0).all()
         assert pickle.loads(pickle.dumps(b)).eigenvalues == pytest.approx(b.eigenvalues)
         assert set(b.to_frame().columns) == {"eigenvalue", "moran_i", "scale"}
+        assert "concave_down edge weights of network distance" in b.summary()
+        assert "along the network" in D.network_distance_eigenvectors(net).summary()
         with pytest.raises(AttributeError):
             b.method = "other"                                     # frozen
 

@@ -595,6 +595,42 @@ class NetworkBasis(SpatialBasis):
     loadings: np.ndarray | None = field(default=None, repr=False)
     column_means: np.ndarray | None = field(default=None, repr=False)
 
+    def summary(self) -> str:
+        """Short text description (assumptions included).
+
+        Examples
+        --------
+        >>> import shapely
+        >>> from spatial_ev.input.network import build_river_network
+        >>> line = shapely.LineString([(0, 0), (10, 0)])
+        >>> xy = pd.DataFrame({"x": [1.0, 3, 4, 6, 9], "y": 0.0}, index=list("abcde"))
+        >>> b = aem_eigenvectors(build_river_network([line], xy, snap_tolerance=1))
+        >>> b.summary().split(";")[0]
+        '2 asymmetric eigenvector maps (AEM, with_flow, binary edge weights) for 5 sites'
+        """
+        n_sites = self.vectors.shape[0]
+        if self.site_edges is not None:
+            e = self.site_edges
+            what = (f"{self.n_vectors} asymmetric eigenvector maps (AEM, {e.orientation}, "
+                    f"{e.weighting} edge weights"
+                    + (f" of {e.weight_by.replace('_', ' ')}" if e.weighting != "binary" else "")
+                    + f") for {n_sites} sites")
+            assumption = ("AEM assume a process travelling one way along the diagram "
+                          "(with the flow or along the bearing)")
+        else:
+            what = (f"{self.n_vectors} distance-based eigenvectors of along-network distances "
+                    f"(threshold {self.threshold:.6g}) for {n_sites} sites")
+            assumption = "they assume a process spreading both ways along the channels"
+        unit = self.directional.distance_unit if self.directional is not None else "map unit"
+        river = self.directional is None or self.directional.kind == "river_network"
+        if self.n_vectors:
+            i, sc = self.moran_i.to_numpy(), self.scale.to_numpy()
+            what += (f"; Moran's I on the {'network' if river else 'graph'} neighbours from "
+                     f"{i.max():.4f} to {i.min():.4f}; scales from {sc.max():.6g} to "
+                     f"{sc.min():.6g} {unit}{' along the network' if river else ''} "
+                     f"(equivalent wavelength)")
+        return f"{what}. {assumption}."
+
     def extend(self, new_coords: Any) -> pd.DataFrame:
         """Values of the vectors at new points on the river network.
 

@@ -20,13 +20,14 @@ import numpy as np
 import pandas as pd
 
 from spatial_ev._validation import as_matrix, check_int, check_option, check_real, check_rng
-from spatial_ev.inference.engines import ENGINES
+from spatial_ev.inference.engines import ENGINES, run_tasks
 from spatial_ev.errors import DisconnectedGraphWarning, InputError
 from spatial_ev.stats.linear import check_rows
 from spatial_ev.inference.permutation import permutation_test
 from spatial_ev.selection.forward import ForwardSelection, run_selection
 
-__all__ = ["compare_weighting_schemes", "WeightingComparison", "sidak_level", "DEFAULT_SCHEMES"]
+__all__ = ["compare_weighting_schemes", "WeightingComparison", "sidak_level", "DEFAULT_SCHEMES",
+           "SchemeRun", "check_schemes"]
 
 
 #: default candidate schemes (k = 8). Linear edge weights 1 − d/d_max give the longest edge
@@ -142,6 +143,7 @@ def compare_weighting_schemes(
     max_vectors: int | None = None,
     engine: str = "local",
     scheduler: Any = None,
+    n_workers: int | None = None,
     progress: Callable[[str], None] | None = None,
 ) -> WeightingComparison:
     """Choose the spatial weighting scheme whose selected eigenvectors explain most variation.
@@ -181,8 +183,20 @@ def compare_weighting_schemes(
     max_vectors : int, optional
         Keep at most this many of the broadest eigenvectors per scheme (required above
         :data:`spatial_ev.space.eigen.DENSE_LIMIT` sites, where the Lanczos path computes only them).
-    engine, scheduler, progress :
-        As in :func:`forward_selection`.
+    engine : {"local", "processes", "dask"}
+        ``"local"``: the schemes one after the other, each test's permutation batches on this
+        process's threads. ``"processes"`` / ``"dask"``: each scheme is one task (its
+        eigenvectors, global test and selection) on local worker processes or a dask cluster
+        (:func:`spatial_ev.inference.engines.run_tasks`), the survey shipped once per worker.
+        The same seed gives the same comparison on every engine and worker count.
+    scheduler : str or distributed.Client, optional
+        With ``engine="dask"``: the scheduler address or Client.
+    n_workers : int, optional
+        Worker processes (``"processes"``) or temporary dask workers (default: one per core);
+        ignored by ``"local"``.
+    progress : callable, optional
+        Called with a short message: each scheme's stages (``"local"``), or how many schemes
+        are done (worker engines).
 
     Returns
     -------
@@ -198,9 +212,6 @@ def compare_weighting_schemes(
     >>> out.best  # doctest: +SKIP
     'gabriel/binary'
     """
-    from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
-    from spatial_ev.space.graphs import neighbour_graph
-
     Yarr, y_rows, _ = as_matrix("Y", Y, min_rows=3)
     parsed = check_schemes(schemes)
     alpha = check_real("alpha", alpha, low=0, high=1, low_inclusive=False, high_inclusive=False)
@@ -210,6 +221,11 @@ def compare_weighting_schemes(
         max_vectors = check_int("max_vectors", max_vectors, low=1)
     check_option("ceiling", ceiling, ["strict", "keep_last"])
     check_option("engine", engine, ENGINES)
+    if engine != "dask" and scheduler is not None:
+        raise InputError(f"parameter `scheduler` is only used with engine='dask'; got "
+                         f"{scheduler!r} with engine={engine!r}")
+    if n_workers is not None:
+        n_workers = check_int("n_workers", n_workers, low=1)
     k = len(parsed)
     level = sidak_level(alpha, k)
     if 1.0 / (n_permutations + 1) > level:
@@ -224,13 +240,98 @@ def compare_weighting_schemes(
     Yc = Yarr - Yarr.mean(axis=0)
     root = check_rng(seed).spawn(1)[0].bit_generator.seed_seq
 
+    parallel = engine != "local"
+    # on worker engines each scheme is one task (its permutation tests run inside it); locally
+    # the schemes run one after the other and their permutation batches use the threads
+    run = SchemeRun(Yc=Yc, coords=coords, conditioning=cond, y_rows=y_rows, k=k, level=level,
+                    alpha=alpha, n_permutations=n_permutations, root=root, sign=sign,
+                    ceiling=ceiling, max_vectors=max_vectors,
+                    engine="local" if parallel else engine,
+                    scheduler=None if parallel else scheduler,
+                    progress=None if parallel else progress)
+
+    def done(count: int, total: int) -> None:
+        if progress is not None:
+            progress(f"weighting schemes: {count} of {total} compared")
+
+    outcomes = run_tasks(run, parsed, engine=engine, scheduler=scheduler,
+                         n_workers=n_workers if parallel else 1,
+                         progress=done if parallel else None)
     rows_out, best, best_sel, best_basis = [], None, None, None
-    for name, graph_method, weighting, exponent, prebuilt in parsed:
-        rng = _scheme_stream(root, name)
+    for (name, *_), (row, sel, basis, caught) in zip(parsed, outcomes):
+        for message, category, filename, lineno in caught:   # in scheme order on any engine
+            warnings.warn_explicit(message, category, filename, lineno,
+                                   registry=_REISSUED)
+        rows_out.append(row)
+        if sel is not None and sel.selected and (best_sel is None or sel.r2_adj > best_sel.r2_adj):
+            best, best_sel, best_basis = name, sel, basis
+    table = pd.DataFrame(rows_out).set_index("scheme")
+    if best is not None:
+        table.loc[best, "chosen"] = True
+    return WeightingComparison(table=table, best=best, selection=best_sel, basis=best_basis,
+                               alpha=alpha, alpha_corrected=level, n_schemes=k)
+
+
+@dataclass(frozen=True)
+class SchemeRun:
+    """One weighting scheme's eigenvectors, global test and forward selection: the task that
+    :func:`compare_weighting_schemes` sends to :func:`~spatial_ev.inference.engines.run_tasks`
+    once per scheme (picklable; the survey travels once per worker with it).
+
+    Called with a parsed scheme ``(name, graph method, weighting, exponent, prebuilt basis)``
+    (:func:`check_schemes`), it returns ``(row, selection, basis, warnings)``: the scheme's row
+    of the comparison table, its :class:`ForwardSelection` (None when not run), its basis (None
+    unless the selection kept a vector, the only case where it can be chosen) and the warnings
+    raised while it ran as ``(message, category, filename, lineno)``, re-issued by the caller
+    in scheme order. The scheme's random stream is derived from ``root`` and its name, so the
+    outcome does not depend on where or in which order the schemes run.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(4)
+    >>> xy = rng.uniform(0, 100, size=(30, 2))
+    >>> Y = np.sin(xy[:, :1] / 20) + 0.2 * rng.normal(size=(30, 1))
+    >>> run = SchemeRun(Yc=Y - Y.mean(0), coords=xy, conditioning=None, y_rows=None, k=1,
+    ...                 level=0.05, alpha=0.05, n_permutations=99,
+    ...                 root=np.random.SeedSequence(1))
+    >>> row, selection, basis, caught = run(check_schemes(["distance"])[0])
+    >>> row["scheme"], row["significant"]
+    ('distance', True)
+    """
+
+    Yc: np.ndarray = field(repr=False)
+    coords: Any = field(repr=False)
+    conditioning: np.ndarray | None = field(repr=False)
+    y_rows: Any = field(repr=False)
+    k: int
+    level: float
+    alpha: float
+    n_permutations: int
+    root: np.random.SeedSequence
+    sign: str = "positive"
+    ceiling: str = "strict"
+    max_vectors: int | None = None
+    engine: str = "local"
+    scheduler: Any = field(default=None, repr=False)
+    progress: Callable[[str], None] | None = field(default=None, repr=False)
+
+    def __call__(self, scheme: tuple) -> tuple[dict, ForwardSelection | None, Any, list]:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            row, sel, basis = self._run(*scheme)
+        kept = [(w.message, w.category, w.filename, w.lineno) for w in caught]
+        return row, sel, (basis if sel is not None and sel.selected else None), kept
+
+    def _run(self, name, graph_method, weighting, exponent, prebuilt):
+        from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
+        from spatial_ev.space.graphs import neighbour_graph
+
+        Yc, cond, k, level, progress = self.Yc, self.conditioning, self.k, self.level, \
+            self.progress
+        rng = _scheme_stream(self.root, name)
         row = {"scheme": name, "n_vectors": 0, "global_pseudo_f": np.nan, "global_p": np.nan,
                "global_p_sidak": np.nan, "significant": False, "n_selected": 0,
                "r2_adj": np.nan, "chosen": False, "note": ""}
-        rows_out.append(row)
         if progress is not None:
             progress(f"scheme {name}: building eigenvectors")
         try:
@@ -239,14 +340,15 @@ def compare_weighting_schemes(
                 if prebuilt is not None:
                     basis = prebuilt
                 elif graph_method is None:
-                    basis = distance_eigenvectors(coords, sign=sign, max_vectors=max_vectors)
+                    basis = distance_eigenvectors(self.coords, sign=self.sign,
+                                                  max_vectors=self.max_vectors)
                 else:
-                    graph = neighbour_graph(coords, method=graph_method)
+                    graph = neighbour_graph(self.coords, method=graph_method)
                     basis = graph_eigenvectors(graph, weighting=weighting, exponent=exponent,
-                                               sign=sign, max_vectors=max_vectors)
+                                               sign=self.sign, max_vectors=self.max_vectors)
         except InputError as exc:  # recorded in the table, the scheme still counts in k
             row["note"] = f"not built: {exc}"
-            continue
+            return row, None, None
         for w in caught:  # pass every warning on; a split weighted graph also goes in the note
             if issubclass(w.category, DisconnectedGraphWarning):
                 row["note"] = ("weighted graph disconnected: some vectors contrast its "
@@ -256,36 +358,36 @@ def compare_weighting_schemes(
         if vectors.shape[0] != Yc.shape[0]:
             raise InputError(f"`coords` has {vectors.shape[0]} sites but `Y` has "
                              f"{Yc.shape[0]} rows; give one row of `Y` per site")
-        check_rows("coords", vectors.to_numpy(), vectors.index, Yc.shape[0], y_rows)
+        check_rows("coords", vectors.to_numpy(), vectors.index, Yc.shape[0], self.y_rows)
         row["n_vectors"] = vectors.shape[1]
         n_model = vectors.shape[1] + (cond.shape[1] if cond is not None else 0)
         if vectors.shape[1] == 0 or Yc.shape[0] - n_model - 1 <= 0:
             row["note"] = ("no eigenvector of this sign" if vectors.shape[1] == 0 else
                            "too many vectors for a global test")
-            continue
+            return row, None, basis
         gtest = permutation_test(Yc, vectors.to_numpy(), conditioning=cond,
-                                 n_permutations=n_permutations, seed=rng.spawn(1)[0],
-                                 engine=engine, scheduler=scheduler)
+                                 n_permutations=self.n_permutations, seed=rng.spawn(1)[0],
+                                 engine=self.engine, scheduler=self.scheduler)
         row["global_pseudo_f"], row["global_p"] = float(gtest.statistic), float(gtest.p_value)
         row["global_p_sidak"] = float(-np.expm1(k * np.log1p(-min(gtest.p_value, 1.0 - 1e-16))))
         row["significant"] = bool(gtest.p_value <= level)
         if not row["significant"]:
-            continue
+            return row, None, basis
         if progress is not None:
             progress(f"scheme {name}: forward selection among {vectors.shape[1]} vectors")
         sel = run_selection(Yc, vectors.to_numpy(), tuple(map(str, vectors.columns)), cond,
-                      alpha_global=level, alpha=alpha, n_permutations=n_permutations, rng=rng,
-                      global_test="required", r2_adj_limit=None, max_variables=None,
-                      ceiling=ceiling, engine=engine, scheduler=scheduler, progress=progress,
-                      global_result=gtest)
+                            alpha_global=level, alpha=self.alpha,
+                            n_permutations=self.n_permutations, rng=rng,
+                            global_test="required", r2_adj_limit=None, max_variables=None,
+                            ceiling=self.ceiling, engine=self.engine, scheduler=self.scheduler,
+                            progress=progress, global_result=gtest)
         row["n_selected"], row["r2_adj"] = len(sel.selected), sel.r2_adj
-        if sel.selected and (best_sel is None or sel.r2_adj > best_sel.r2_adj):
-            best, best_sel, best_basis = name, sel, basis
-    table = pd.DataFrame(rows_out).set_index("scheme")
-    if best is not None:
-        table.loc[best, "chosen"] = True
-    return WeightingComparison(table=table, best=best, selection=best_sel, basis=best_basis,
-                               alpha=alpha, alpha_corrected=level, n_schemes=k)
+        return row, sel, basis
+
+
+_REISSUED: dict = {}
+"""Warning registry of the re-issued scheme warnings (the "default" filter action shows each
+message once per place, as it would have without the detour through a task)."""
 
 
 def _scheme_stream(root: np.random.SeedSequence, name: str) -> np.random.Generator:

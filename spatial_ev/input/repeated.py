@@ -440,7 +440,7 @@ def _presence(tables: dict, times: pd.Series, base: Survey, incomplete: str,
                 raise InputError(f"{role} {table.source}: {n_missing} site(s) of the site table "
                                  f"are not in every survey: {'; '.join(problems)}{more}; add "
                                  f"their rows, or keep only the sites present in every survey "
-                                 f"(incomplete_sites='keep_complete', --complete-sites-only)")
+                                 f"(incomplete_sites='keep_complete')")
     return keep
 
 
@@ -484,8 +484,9 @@ def _assemble(base: Survey, tables: dict, incomplete: str, decimal: str) -> Repe
         names = [f"{index[i][1]!r} in survey {index[i][0]}" for i in empty]
         raise InputError(f"species {sp.source}: {len(empty)} site-survey(s) have no species at "
                          f"all (all zero): {', '.join(names[:T.MAX_LISTED])}; the Hellinger and "
-                         f"chord transformations divide by each row's total; remove these "
-                         f"sites (or use --complete-sites-only after deleting their rows)")
+                         f"chord transformations divide by each row's total; delete these "
+                         f"rows and keep only the complete sites "
+                         f"(incomplete_sites='keep_complete')")
     environment = None
     if "environment" in tables:
         env = tables["environment"]

@@ -83,7 +83,7 @@ class RepeatedAnalysis:
         Examples
         --------
         >>> sorted(_example_analysis().summary())[:4]
-        ['change', 'distance_unit', 'n_sites', 'n_species']
+        ['change', 'crs', 'distance_unit', 'n_sites']
         """
         s = self.survey.summary()
         return {

@@ -128,8 +128,8 @@ def change_map_figure(sites: gpd.GeoDataFrame, *, unit: str = "m",
     >>> g = gpd.GeoDataFrame({"losses": [0.1, 0.6], "gains": [0.2, 0.0],
     ...                       "exceptional": [False, True]},
     ...                      geometry=[shapely.Point(0, 0), shapely.Point(10, 5)])
-    >>> len(change_map_figure(g).axes)
-    3
+    >>> len(change_map_figure(g).axes)  # two panels and their colour bars
+    4
     """
     frame = _check_change_frame(sites, ("losses", "gains", "exceptional"))
     if not isinstance(frame, gpd.GeoDataFrame) or len(frame) == 0:

@@ -489,7 +489,6 @@ def build_river_network(lines: Any, sites: pd.DataFrame, *, snap_tolerance: floa
 
     k = len(node_xy)
     up_deg = np.bincount(e_head, minlength=k)      # edges arriving from upstream
-    down_deg = np.bincount(e_tail, minlength=k)    # edges leaving downstream
     kind = np.full(k, "joint", dtype=object)
     kind[is_site] = "site"
     kind[up_deg >= 2] = "confluence"

@@ -36,7 +36,7 @@ sites or edges in Python (reachability is propagated one step along the network 
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np

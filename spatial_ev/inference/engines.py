@@ -31,6 +31,7 @@ their inner tasks one after the other in that worker: the cores are already busy
 from __future__ import annotations
 
 import atexit
+import contextvars
 import multiprocessing
 import os
 import pickle
@@ -51,7 +52,8 @@ from spatial_ev._compat import import_distributed
 from spatial_ev._validation import check_int, check_option
 from spatial_ev.errors import InputError
 
-__all__ = ["run_tasks", "ENGINES", "one_blas_thread", "worker_status", "close_pools"]
+__all__ = ["run_tasks", "ENGINES", "one_blas_thread", "worker_status", "close_pools",
+           "default_workers"]
 
 ENGINES = ("local", "processes", "dask")
 CONNECT_TIMEOUT = "20s"  # how long to wait for a remote dask scheduler
@@ -61,6 +63,36 @@ CACHE_SIZE = 4           # functions a worker process keeps between calls
 T = TypeVar("T")
 R = TypeVar("R")
 Progress = Callable[[int, int], Any]
+
+
+_DEFAULT_WORKERS: contextvars.ContextVar = contextvars.ContextVar("n_workers", default=None)
+
+
+@contextmanager
+def default_workers(n_workers: int | None) -> Iterator[None]:
+    """Worker count of every :func:`run_tasks` call made in this context without its own.
+
+    A whole analysis passes its ``n_workers`` once this way instead of through every test
+    function it calls; None keeps each engine's default.
+
+    Parameters
+    ----------
+    n_workers : int or None
+        ≥ 1, or None.
+
+    Examples
+    --------
+    >>> with default_workers(1):
+    ...     run_tasks(abs, [-1, -2], engine="processes")  # doctest: +SKIP
+    [1, 2]
+    """
+    if n_workers is not None:
+        n_workers = check_int("n_workers", n_workers, low=1)
+    token = _DEFAULT_WORKERS.set(n_workers)
+    try:
+        yield
+    finally:
+        _DEFAULT_WORKERS.reset(token)
 
 
 def _check_run(function, tasks, engine, scheduler, n_workers, progress):
@@ -74,6 +106,8 @@ def _check_run(function, tasks, engine, scheduler, n_workers, progress):
     engine = check_option("engine", engine, ENGINES)
     if n_workers is not None:
         n_workers = check_int("n_workers", n_workers, low=1)
+    else:
+        n_workers = _DEFAULT_WORKERS.get()
     if progress is not None and not callable(progress):
         raise InputError("parameter `progress` must be a callable progress(done, total) or None; "
                          f"got {type(progress).__name__}")
@@ -451,7 +485,8 @@ def run_tasks(function: Callable[[T], R], tasks: Sequence[T], *, engine: str = "
     n_workers : int, optional
         Threads of the local pool (default: ``os.cpu_count()``), worker processes (default:
         ``os.cpu_count()``), or workers of the temporary LocalCluster (default: up to 4).
-        Inside a worker process, nested calls run their tasks one after the other.
+        Inside a worker process, nested calls run their tasks one after the other. None takes
+        the count of an enclosing :func:`default_workers`, if any.
     progress : callable, optional
         ``progress(done, total)``, called in the calling thread after each finished task.
 

@@ -40,6 +40,7 @@ import pandas as pd
 
 from spatial_ev._validation import check_int, check_option, check_real, check_rng
 from spatial_ev.errors import InputError, SpatialEVWarning
+from spatial_ev.inference.engines import ENGINES, default_workers
 from spatial_ev.inference.lcbd import BetaDiversity, beta_diversity
 from spatial_ev.inference.permutation import PermutationTest
 from spatial_ev.inference.spectral import SpectralRandomisationTest
@@ -269,7 +270,7 @@ def _check_analysis(survey, transformation, spatial_weighting, schemes, alpha, n
     alpha = check_real("alpha", alpha, low=0, high=0.5, low_inclusive=False)
     n_permutations = check_int("n_permutations", n_permutations, low=19)
     check_option("trend", trend, TREND_OPTIONS)
-    check_option("engine", engine, ["local", "dask"])
+    check_option("engine", engine, ENGINES)
     check_option("environment_test", environment_test, ENVIRONMENT_TESTS)
     if schemes is None:
         schemes = list(DEFAULT_SCHEMES) if spatial_weighting == "compare" else ["distance"]
@@ -295,7 +296,8 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
             scale_breaks: Sequence[float] | None = None, trend: str = "test",
             engine: str = "local", scheduler: Any = None,
             progress: Callable[[str], None] | None = None,
-            environment_test: str = "spectral", max_vectors: int | None = None) -> Analysis:
+            environment_test: str = "spectral", max_vectors: int | None = None,
+            n_workers: int | None = None) -> Analysis:
     """Run the whole spatial-structure analysis of a survey.
 
     Parameters
@@ -325,7 +327,11 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         ``"test"``: test a linear trend on the coordinates and keep it as a covariable when
         significant; ``"ignore"``: do not model a trend.
     engine, scheduler : str, optional
-        Where permutation batches run (``"local"`` or ``"dask"`` with a scheduler address).
+        Where the work runs: ``"local"`` (threads of this process), ``"processes"`` (local
+        worker processes, one BLAS thread each; the weighting schemes are compared in
+        parallel, one task each) or ``"dask"`` (likewise on a dask.distributed cluster, with a
+        scheduler address or Client, or a temporary local cluster). The result does not
+        depend on the engine or the number of workers.
     progress : callable, optional
         Called with a short message at each stage and test.
     environment_test : {"spectral", "permutation"}
@@ -343,6 +349,8 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         Keep only the broadest spatial eigenvectors of each scheme. Default: all positive-I
         vectors up to :data:`~spatial_ev.space.eigen.DENSE_LIMIT` sites, the 200 broadest above it
         (recorded in the notes).
+    n_workers : int, optional
+        Threads or worker processes of every parallel part (default: one per core).
 
     Returns
     -------
@@ -362,13 +370,16 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         scale_breaks, trend, engine, environment_test)
     if max_vectors is not None:
         max_vectors = check_int("max_vectors", max_vectors, low=1)
+    if n_workers is not None:
+        n_workers = check_int("n_workers", n_workers, low=1)
     options = StepOptions(n_permutations=n_permutations, engine=engine, scheduler=scheduler,
-                          progress=progress)
+                          n_workers=n_workers, progress=progress)
     # the seventh stream is new; the first six are unchanged by spawning one more
     streams = dict(zip(["trend", "environment", "space", "partition", "classes", "lcbd",
                         "spectral"], check_rng(seed).spawn(7)))
     spectral_streams = streams["spectral"].spawn(2)
-    with warnings.catch_warnings(record=True) as caught:
+    # every test's batches use n_workers, also those whose functions take no worker count
+    with default_workers(n_workers), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", SpatialEVWarning)
 
         options.say(f"transforming the community ({transformation})")

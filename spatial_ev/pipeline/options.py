@@ -9,6 +9,7 @@ from typing import Any
 
 from spatial_ev._validation import check_int, check_option
 from spatial_ev.errors import InputError
+from spatial_ev.inference.engines import ENGINES
 
 __all__ = ["DEFAULT_OPTIONS", "StepOptions"]
 
@@ -21,10 +22,12 @@ class StepOptions:
     ----------
     n_permutations : int
         Permutations per test (≥ 19).
-    engine : {"local", "dask"}
-        Where permutation batches run.
+    engine : {"local", "processes", "dask"}
+        Where permutation batches (and, when schemes are compared, each scheme) run.
     scheduler : object, optional
         A ``dask.distributed`` scheduler address or client (``engine="dask"``).
+    n_workers : int, optional
+        Worker threads or processes (default: the engine's, one per core).
     progress : callable, optional
         Called with a short message at each stage and test; the steps never print.
 
@@ -38,11 +41,14 @@ class StepOptions:
     n_permutations: int = 999
     engine: str = "local"
     scheduler: Any = field(default=None, repr=False, compare=False)
+    n_workers: int | None = field(default=None, compare=False)
     progress: Callable[[str], None] | None = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         check_int("n_permutations", self.n_permutations, low=1)
-        check_option("engine", self.engine, ["local", "dask"])
+        check_option("engine", self.engine, ENGINES)
+        if self.n_workers is not None:
+            check_int("n_workers", self.n_workers, low=1)
         if self.progress is not None and not callable(self.progress):
             raise InputError(f"`progress` must be a callable taking one message (str); got "
                              f"{type(self.progress).__name__}")

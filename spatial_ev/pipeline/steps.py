@@ -451,7 +451,8 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
                      f"were not examined. Raise `max_vectors` to look at finer scales.")
     weighting = compare_weighting_schemes(Y, survey, schemes=schemes, alpha=alpha, seed=seed,
                                           conditioning=conditioning, max_vectors=max_vectors,
-                                          progress=options.progress, **options.tests())
+                                          progress=options.progress, n_workers=options.n_workers,
+                                          **options.tests())
     chosen_basis = weighting.basis
     if chosen_basis is None:
         notes.append("No spatial weighting scheme had a significant global test at the "

@@ -16,8 +16,8 @@ from spatial_ev.inference.autocorrelation import morans_i
 from spatial_ev.inference.lcbd import LCBD_BLOCK_SIZE, ColumnOrders
 from spatial_ev.inference.null import (
     BLOCK_SIZE, DEFAULT_CHUNK, TIE_TOLERANCE, FreePermutations, RunOptions, SeedBlocks,
-    check_run_options, count_as_extreme, p_value_from_count, permutation_p_value,
-    permutation_p_values, seed_blocks)
+    SequentialRule, check_run_options, count_as_extreme, p_value_from_count,
+    permutation_p_value, permutation_p_values, seed_blocks, sequential_decision)
 from spatial_ev.space.moran import moran_inputs
 
 SEED = 1_618_033_988
@@ -249,3 +249,80 @@ class TestRunOptions:
         far = np.abs(base.null_distribution - base.expected) >= \
             np.abs(base.statistic.to_numpy() - base.expected) * (1 - TIE_TOLERANCE)
         np.testing.assert_array_equal(base.p_permutation, (far.sum(axis=0) + 1) / 300)
+
+
+class TestSequentialDecision:
+    """Stopping rules of a test whose one use is the decision "p ≤ α?"."""
+
+    def test_exceedance_limit_is_besag_clifford_h(self):
+        # h = the smallest count with h/N > α, so that the Besag & Clifford (1991, Biometrika
+        # 78:301–304) p-value h/L exceeds α at any stop L ≤ N, and any count ≥ h makes the
+        # fixed-count p (k + 1)/(N + 1) exceed α as well [derived]
+        for alpha in (0.01, 0.05, 0.0525, 0.1):
+            for n_max in (19, 99, 199, 209, 999, 4999):
+                h = SequentialRule(alpha).exceedances(n_max)
+                assert h / n_max > alpha and (h - 1 == 0 or (h - 1) / n_max <= alpha)
+                assert p_value_from_count(h, n_max) > alpha
+
+    def test_significance_boundary_spends_at_most_the_risk(self):
+        # each look's largest early count k has P(Bin(L, α) ≤ k) within its share of ε and is
+        # the largest such count (scipy.stats.binom); shares follow ε·L/(L + 1000) (Gandy 2009,
+        # JASA 104:1504–1511) and add up to less than ε
+        rule = SequentialRule(0.05, risk=0.01)
+        looks = np.array(rule.looks(2999)[:-1])
+        spent = 0.01 * looks / (looks + 1000)
+        shares = np.diff(np.r_[0.0, spent])
+        counts = rule.significant_counts(2999)
+        assert shares.sum() < 0.01
+        for size, share, k in zip(looks, shares, counts):
+            if k >= 0:
+                assert stats.binom.cdf(k, size, 0.05) <= share
+                assert (k + 1) / (size + 1) <= 0.05
+            assert stats.binom.cdf(k + 1, size, 0.05) > share or (k + 2) / (size + 1) > 0.05
+
+    def test_stops_agree_with_the_full_count(self):
+        # Random null sequences: a "not significant" stop or a full run always gives the
+        # decision of the fixed count over the same N draws [derived]; p at a Besag–Clifford
+        # stop is h/L with L the draw of the h-th exceedance.
+        rng = np.random.default_rng(SEED)
+        rule = SequentialRule(0.05)
+        for _ in range(400):
+            null = rng.random(999)
+            observed = rng.choice([rng.random(), rng.uniform(0.9, 1.0)])
+            out = sequential_decision(lambda a, b: null[a:b], observed, 999, rule)
+            fixed = permutation_p_value(observed, null)
+            if out.stop == "significant":
+                assert out.n_used in rule.looks(999)[:-1]
+                k = int(count_as_extreme(observed, null[:out.n_used]))
+                assert out.p_value == (k + 1) / (out.n_used + 1) <= 0.05
+                continue
+            assert (out.p_value <= 0.05) == (fixed <= 0.05)
+            if out.stop == "not_significant":
+                hits = np.flatnonzero(null >= observed * (1 - TIE_TOLERANCE))
+                h = rule.exceedances(999)
+                assert out.n_used == hits[h - 1] + 1 and out.p_value == h / out.n_used
+            else:
+                assert out.p_value == fixed and out.n_used == 999
+
+    def test_risk_bound_at_the_boundary(self):
+        # p over all permutations exactly α (exceedances Bernoulli(α)): the chance of an early
+        # significant stop is at most ε (Gandy 2009); 4000 streams, binomial 99.9 % margin
+        rule = SequentialRule(0.05, risk=0.05)
+        rng = np.random.default_rng(SEED + 1)
+        early = 0
+        for _ in range(4000):
+            null = (rng.random(999) < 0.05).astype(float)     # 1 = exceedance of observed 0.5
+            early += sequential_decision(lambda a, b: null[a:b], 0.5, 999,
+                                         rule).stop == "significant"
+        assert early / 4000 <= 0.05 + 3.3 * np.sqrt(0.05 * 0.95 / 4000)
+        assert early > 0                      # the rule does stop early sometimes
+
+    def test_bad_input(self):
+        with pytest.raises(InputError, match=r"`alpha` must be"):
+            SequentialRule.checked(1.5)
+        with pytest.raises(InputError, match=r"`decision_risk` must be"):
+            SequentialRule.checked(0.05, risk=0.7)
+        with pytest.raises(InputError, match=r"`rule` must be a SequentialRule"):
+            sequential_decision(lambda a, b: np.zeros(b - a), 1.0, 10, 0.05)
+        with pytest.raises(InputError, match=r"returned 3 values; expected 10"):
+            sequential_decision(lambda a, b: np.zeros(3), 1.0, 10, SequentialRule(0.05))

@@ -15,8 +15,9 @@ from spatial_ev.stats.canonical import redundancy_analysis
 from spatial_ev.stats.linear import explained_fraction
 from spatial_ev.errors import InputError
 from spatial_ev.inference.permutation import (
-    PermutationTest, axis_tests, permutation_test, permutations, term_tests)
-from spatial_ev.inference.null import BLOCK_SIZE
+    PermutationTest, axis_tests, orthonormal_permutation_test, permutation_test, permutations,
+    term_tests)
+from spatial_ev.inference.null import BLOCK_SIZE, SequentialRule
 
 
 def data(seed: int, n: int = 30, p: int = 5, m: int = 3, k: int = 2, effect: float = 0.5):
@@ -384,3 +385,106 @@ class TestTermTests:
         y, x, _ = data(5)
         with pytest.raises(InputError, match=r"`terms` must be a non-empty mapping"):
             term_tests(y, [x])
+
+
+class TestOrthonormalEntry:
+    """The entry that takes the caller's orthonormal bases (forward selection's steps)."""
+
+    @staticmethod
+    def _bases(x, w):
+        n = len(x)
+        qw = np.linalg.qr(w - w.mean(axis=0))[0]
+        xc = x - x.mean(axis=0)
+        xr = xc - qw @ (qw.T @ xc)
+        return qw, np.linalg.qr(xr)[0]
+
+    def test_same_null_and_p_as_the_table_entry(self):
+        # Same spans, same seed: the null distribution equals permutation_test's (which refits
+        # with its own rank-revealing QR) and both equal direct least-squares refits of the
+        # permuted reduced-model residuals (Freedman & Lane 1983).
+        y, x, w = data(600613, n=40, p=6)
+        qw, qx = self._bases(x, w)
+        yc = y - y.mean(axis=0)
+        test = orthonormal_permutation_test(yc, qw, qx, n_permutations=300, seed=31)
+        ref = permutation_test(y, x, conditioning=w, n_permutations=300, seed=31)
+        np.testing.assert_allclose(test.null_distribution, ref.null_distribution, rtol=1e-12)
+        assert test.p_value == ref.p_value
+        assert test.statistic == pytest.approx(refit_f(y, x, w), rel=1e-12)
+        assert (test.df_model, test.df_residual, test.method) == (3, 40 - 1 - 2 - 3,
+                                                                  "reduced_residual")
+        assert test.r2_adj == pytest.approx(ref.r2_adj, rel=1e-12)
+        assert test.stop == "full"
+
+    def test_statistic_is_statsmodels_partial_f(self):
+        # one response column: the partial pseudo-F is the nested-model F test
+        # (statsmodels compare_f_test)
+        y, x, w = data(8080, n=35, p=1)
+        qw, qx = self._bases(x, w)
+        full = sm.OLS(y, sm.add_constant(np.column_stack([w, x]))).fit()
+        reduced = sm.OLS(y, sm.add_constant(w)).fit()
+        f = full.compare_f_test(reduced)[0]
+        test = orthonormal_permutation_test(y - y.mean(axis=0), qw, qx, n_permutations=0)
+        assert test.statistic == pytest.approx(f, rel=1e-10)
+        assert np.isnan(test.p_value)
+
+    @pytest.mark.parametrize("chunk_size,n_workers", [(1, 1), (7, 2), (BLOCK_SIZE, 1),
+                                                      (1000, 2)])
+    def test_sequential_decision_same_for_every_chunk_and_worker_count(self, chunk_size,
+                                                                        n_workers):
+        # the looks are fixed multiples of the block size, so a seed stops at the same
+        # permutation with the same p whatever the task split (DESIGN: same seed, same result)
+        rule = SequentialRule.checked(0.05)
+        y, x, w = data(7171, n=50, p=4, effect=0.05)
+        qw, qx = self._bases(x[:, :1], w)
+        yc = y - y.mean(axis=0)
+        ref = orthonormal_permutation_test(yc, qw, qx, n_permutations=999, seed=5,
+                                           decision=rule)
+        test = orthonormal_permutation_test(yc, qw, qx, n_permutations=999, seed=5,
+                                            decision=rule, chunk_size=chunk_size,
+                                            n_workers=n_workers)
+        assert (test.p_value, test.n_permutations, test.stop) == \
+            (ref.p_value, ref.n_permutations, ref.stop)
+        np.testing.assert_allclose(test.null_distribution, ref.null_distribution, rtol=1e-12)
+
+    def test_sequential_stops_use_the_fixed_tests_permutations(self):
+        # a weak effect stops at its h-th exceedance (Besag & Clifford 1991: p = h/L); a strong
+        # one stops early as significant; both read the same permutations as the full test.
+        rule = SequentialRule.checked(0.05)
+        y, x, w = data(4242, n=60, p=4, effect=0.0)
+        qw, qx = self._bases(x, w)
+        yc = y - y.mean(axis=0)
+        full = orthonormal_permutation_test(yc, qw, qx, n_permutations=999, seed=8)
+        weak = orthonormal_permutation_test(yc, qw, qx, n_permutations=999, seed=8,
+                                            decision=rule)
+        assert weak.stop == "not_significant" and weak.n_permutations < 999
+        np.testing.assert_array_equal(weak.null_distribution,
+                                      full.null_distribution[:weak.n_permutations])
+        h = rule.exceedances(999)
+        hits = np.flatnonzero(full.null_distribution >= full.statistic * (1 - 1e-10))
+        assert weak.n_permutations == hits[h - 1] + 1
+        assert weak.p_value == h / weak.n_permutations
+        assert full.p_value > 0.05       # the decision of the full count is the same
+        ys, xs, ws = data(4243, n=60, p=4, effect=2.0)
+        qw, qx = self._bases(xs, ws)
+        strong = orthonormal_permutation_test(ys - ys.mean(axis=0), qw, qx,
+                                              n_permutations=999, seed=8, decision=rule)
+        assert strong.stop == "significant" and strong.n_permutations in rule.looks(999)
+        assert strong.p_value == 1 / (strong.n_permutations + 1)
+
+    def test_bad_input(self):
+        y, x, w = data(1, n=20)
+        qw, qx = self._bases(x, w)
+        yc = y - y.mean(axis=0)
+        with pytest.raises(InputError, match=r"`tested` must have orthonormal columns"):
+            orthonormal_permutation_test(yc, qw, 2 * qx)
+        with pytest.raises(InputError, match=r"`within` has 19 rows but `y` has 20"):
+            orthonormal_permutation_test(yc, qw[:19], qx)
+        with pytest.raises(InputError, match=r"`tested` has no columns"):
+            orthonormal_permutation_test(yc, qw, qx[:, :0])
+        with pytest.raises(InputError, match=r"`y` must be a 2-d numpy array"):
+            orthonormal_permutation_test(list(yc), qw, qx)
+        with pytest.raises(InputError, match=r"`decision` must be a SequentialRule"):
+            orthonormal_permutation_test(yc, qw, qx, decision=0.05)
+        with pytest.raises(InputError, match=r"needs n_permutations >= 1"):
+            orthonormal_permutation_test(yc, qw, qx, n_permutations=0,
+                                         decision=SequentialRule.checked(0.05))

@@ -11,7 +11,8 @@ import statsmodels.api as sm
 from scipy import stats
 
 from spatial_ev.errors import DroppedVariablesWarning, InputError
-from spatial_ev.selection.forward import ForwardSelection, forward_selection
+from spatial_ev.inference.permutation import permutation_test
+from spatial_ev.selection.forward import ForwardSelection, GrowingBasis, forward_selection
 from spatial_ev.selection.weighting import compare_weighting_schemes
 
 
@@ -224,6 +225,88 @@ class TestForwardSelection:
         expected = 1 - (1 - alpha) ** m
         low, high = stats.binom.interval(0.99, reps, expected)
         assert low <= hit_skip <= high
+
+
+class TestIncrementalBasis:
+    def test_growing_basis_spans_what_numpy_qr_spans(self):
+        # nearly collinear columns: Gram–Schmidt with one reorthogonalisation stays orthonormal
+        # to rounding level and spans the columns' space (projector of numpy.linalg.qr)
+        rng = np.random.default_rng(20261202)
+        base = rng.normal(size=(200, 1))
+        cols = base + 1e-7 * rng.normal(size=(200, 30))
+        cols -= cols.mean(axis=0)
+        cond = np.linalg.qr(rng.normal(size=(200, 3)) - rng.normal(size=(200, 3)).mean(0))[0]
+        basis = GrowingBasis(cond)
+        for j in range(30):
+            basis.append(basis.orthonormalise(cols[:, j]))
+        q = basis.columns
+        assert np.abs(q.T @ q - np.eye(33)).max() < 1e-12
+        ref = np.linalg.qr(np.column_stack([cond, cols]))[0]
+        np.testing.assert_allclose(q @ q.T, ref @ ref.T, atol=1e-9)
+        with pytest.raises(InputError, match=r"lies in the span"):
+            basis.orthonormalise(cols[:, 4] + cond[:, 0])
+
+    def test_step_tests_equal_tests_refitted_from_scratch(self):
+        # Each step's test on the incrementally grown basis gives the p-value (same seed
+        # stream) and, to rounding, the pseudo-F of a permutation test that refactorises
+        # [conditioning, selected] from scratch; and the pseudo-F is the nested-model F of
+        # statsmodels (compare_f_test) for one response column.
+        rng = np.random.default_rng(97531)
+        n = 80
+        X = pd.DataFrame(rng.normal(size=(n, 8)), columns=[f"e{j}" for j in range(8)])
+        X["e3"] = 0.7 * X["e1"] + 0.3 * X["e3"]
+        C = rng.normal(size=(n, 2))
+        y = (X[["e1", "e5", "e6"]].to_numpy() @ [[1.0], [0.8], [0.6]] + C[:, :1]
+             + rng.normal(size=(n, 1)))
+        sel = forward_selection(y, X, conditioning=C, n_permutations=199, seed=11)
+        assert len(sel.selected) >= 2
+        streams = np.random.default_rng(11)
+        streams.spawn(1)                                    # the global test's stream
+        tested = sel.steps[np.isfinite(sel.steps["p_value"])]
+        for i, (_, row) in enumerate(tested.iterrows()):
+            given = np.column_stack([C, X[list(sel.selected[:i])].to_numpy()])
+            ref = permutation_test(y, X[[row["variable"]]], conditioning=given,
+                                   n_permutations=199, seed=streams.spawn(1)[0])
+            assert row["p_value"] == ref.p_value
+            assert row["pseudo_f"] == pytest.approx(ref.statistic, rel=1e-12)
+            full = _ols(y, np.column_stack([given, X[[row["variable"]]]]))
+            assert row["pseudo_f"] == pytest.approx(full.compare_f_test(_ols(y, given))[0],
+                                                    rel=1e-9)
+
+
+class TestSequentialSteps:
+    def test_same_selection_fewer_permutations(self):
+        # A strong signal on three of thirty orthonormal vectors: sequential step decisions
+        # select what the full count selects; the clearly significant steps stop at an early
+        # look and the final non-significant one at its h-th exceedance (Besag & Clifford
+        # 1991), so the steps draw far fewer permutations; the global test keeps all 999.
+        U = _orthonormal_frame(120, 30, 1212)
+        rng = np.random.default_rng(3434)
+        Y = (np.outer(U["sv002"], [3, 2, 1]) + np.outer(U["sv009"], [2, -2, 1])
+             + np.outer(U["sv017"], [1, 1, -2]) + 0.5 * rng.normal(size=(120, 3)))
+        fixed = forward_selection(Y, U, n_permutations=999, seed=77)
+        seq = forward_selection(Y, U, n_permutations=999, seed=77, sequential_steps=True)
+        assert seq.selected == fixed.selected
+        assert {"sv002", "sv009", "sv017"} <= set(seq.selected)
+        assert seq.global_test.n_permutations == 999
+        assert seq.global_test.p_value == fixed.global_test.p_value
+        drawn = seq.steps["permutations"]
+        assert seq.step_permutations == drawn.sum() < 0.5 * 999 * len(drawn)
+        assert "permutations" not in fixed.steps.columns and fixed.step_permutations == \
+            999 * int(np.isfinite(fixed.steps["p_value"]).sum())
+        last = seq.steps.iloc[-1]
+        if not last["added"] and np.isfinite(last["p_value"]):
+            assert last["p_value"] > 0.05 and last["permutations"] < 999
+        assert seq.sequential and seq.decision_risk == 0.001
+        assert "stopping once the decision is settled" in seq.summary()
+
+    def test_bad_input(self):
+        X = _orthonormal_frame(20, 4, 1)
+        y = X[["sv001"]].to_numpy()
+        with pytest.raises(InputError, match=r"`sequential_steps` must be True or False"):
+            forward_selection(y, X, sequential_steps="yes")
+        with pytest.raises(InputError, match=r"`decision_risk` must be"):
+            forward_selection(y, X, sequential_steps=True, decision_risk=0.0)
 
 
 class TestForwardSelectionValidation:

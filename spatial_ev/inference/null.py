@@ -19,6 +19,25 @@ and key come from the user's generator in one of two ways (:func:`seed_blocks`):
 drawn from it (the default, key ``()``), or the generator's own seed sequence, whose next
 children are reserved for the blocks (``derivation="spawn"``).
 
+Sequential decisions. A test whose only use is the decision "p ≤ α?" (a step of forward
+selection) may stop drawing once that decision is settled (:class:`SequentialRule`,
+:func:`sequential_decision`). The null distribution is drawn in rounds ending at fixed looks
+(multiples of ``look_every`` permutations, and the maximum N), so the same seed stops at the
+same permutation whatever the chunk size, engine or number of workers. Two boundaries:
+
+* not significant: stop at the h-th exceedance, h = the smallest count with h/N > α
+  (Besag & Clifford 1991, Biometrika 78:301–304 [paper]); p = h/L with L the draw at which the
+  h-th exceedance occurred. Any count ≥ h makes the fixed-count p (k + 1)/(N + 1) exceed α as
+  well, so this stop never changes the decision the full N permutations would give.
+* significant: stop at a look after L draws with k exceedances when P(Bin(L, α) ≤ k) is at
+  most that look's share of the risk ε and (k + 1)/(L + 1) ≤ α; shares follow the spending
+  function ε·L/(L + 1000) of Gandy (2009, JASA 104:1504–1511 [paper]). Permutations are drawn
+  independently, so when the p-value over all permutations is ≥ α the chance of ever stopping
+  here is at most Σ shares ≤ ε (union bound over the looks [derived]). The p reported is
+  (k + 1)/(L + 1) over the L drawn (below α; an estimate, the decision is what is bounded).
+
+Without an early stop the test ends at N with the fixed-count p-value and decision.
+
 Run options. The number of resamples, seed, engine, scheduler, workers, chunk size and progress
 callback travel together as one frozen :class:`RunOptions`, validated once by
 :meth:`RunOptions.checked` (one rule: count ≥ 0, chunk ≥ 1, engine one of ``ENGINES``, a
@@ -28,19 +47,20 @@ scheduler only with dask, workers ≥ 1, ``progress(done, total)`` callable or N
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from scipy import stats
 
-from spatial_ev._validation import check_int, check_option, check_rng
+from spatial_ev._validation import check_int, check_option, check_real, check_rng
 from spatial_ev.errors import InputError
 from spatial_ev.inference.engines import ENGINES, run_tasks
 
 __all__ = ["BLOCK_SIZE", "TIE_TOLERANCE", "DEFAULT_CHUNK", "ALTERNATIVES", "SeedBlocks",
            "seed_blocks", "FreePermutations", "count_as_extreme", "p_value_from_count",
            "permutation_p_values", "permutation_p_value", "RunOptions",
-           "check_run_options"]
+           "check_run_options", "SequentialRule", "SequentialOutcome", "sequential_decision"]
 
 BLOCK_SIZE = 128
 TIE_TOLERANCE = 1e-10
@@ -459,3 +479,176 @@ def check_run_options(n_permutations, chunk_size, engine, progress, *,
     options = RunOptions.checked(n_permutations, seed=0, engine=engine, chunk_size=chunk_size,
                                  progress=progress, count_name=count_name)
     return options.n_permutations, options.chunk_size, options.engine
+
+
+# ----------------------------------------------------------------------------------------------
+# sequential decisions
+# ----------------------------------------------------------------------------------------------
+
+#: the constant k of Gandy's (2009) spending function ε·n/(n + k)
+SPENDING_CONSTANT = 1000
+
+
+@dataclass(frozen=True)
+class SequentialRule:
+    """When a test of "p ≤ α?" may stop drawing permutations (module notes).
+
+    Attributes
+    ----------
+    alpha : float
+        Level of the decision, in (0, 1).
+    risk : float
+        Bound ε on the chance of stopping early as significant when the p-value over all
+        permutations is ≥ α, in (0, 0.5).
+    look_every : int
+        Permutations between looks (≥ 1); part of the rule, so the same for every engine.
+
+    Examples
+    --------
+    >>> rule = SequentialRule.checked(0.05)
+    >>> rule.exceedances(999), rule.looks(999)[-2:]
+    (50, [896, 999])
+    """
+
+    alpha: float
+    risk: float = 1e-3
+    look_every: int = BLOCK_SIZE
+
+    @classmethod
+    def checked(cls, alpha: Any, *, risk: Any = 1e-3, look_every: Any = BLOCK_SIZE
+                ) -> SequentialRule:
+        """Validate the rule's parameters (errors name the argument and the allowed range).
+
+        Examples
+        --------
+        >>> SequentialRule.checked(0.05, risk=0.01).risk
+        0.01
+        """
+        alpha = check_real("alpha", alpha, low=0, high=1, low_inclusive=False,
+                           high_inclusive=False)
+        risk = check_real("decision_risk", risk, low=0, high=0.5, low_inclusive=False,
+                          high_inclusive=False)
+        look_every = check_int("look_every", look_every, low=1)
+        return cls(alpha, risk, look_every)
+
+    def exceedances(self, n_max: int) -> int:
+        """h: the smallest count with h/N > α (any count ≥ h is not significant at N either).
+
+        Examples
+        --------
+        >>> SequentialRule(0.05).exceedances(199)
+        10
+        """
+        h = int(np.floor(self.alpha * n_max)) + 1
+        while h / n_max <= self.alpha:
+            h += 1
+        while h > 1 and (h - 1) / n_max > self.alpha:
+            h -= 1
+        return h
+
+    def looks(self, n_max: int) -> list[int]:
+        """Numbers of permutations drawn at each look: multiples of ``look_every``, then N."""
+        return [*range(self.look_every, n_max, self.look_every), n_max]
+
+    def significant_counts(self, n_max: int) -> np.ndarray:
+        """Largest count allowing an early significant stop at each look but the last (−1:
+        none); the last look decides by the fixed-count rule.
+
+        Examples
+        --------
+        >>> SequentialRule(0.05).significant_counts(999)[:3]
+        array([-1,  1,  4])
+        """
+        looks = np.asarray(self.looks(n_max)[:-1], dtype=float)
+        spent = self.risk * looks / (looks + SPENDING_CONSTANT)
+        share = np.diff(np.concatenate([[0.0], spent]))
+        out = np.full(looks.size, -1, dtype=int)
+        for i, (size, eps) in enumerate(zip(looks, share)):
+            k = int(stats.binom.ppf(eps, size, self.alpha))     # P(Bin ≤ k) ≥ eps
+            while k >= 0 and stats.binom.cdf(k, size, self.alpha) > eps:
+                k -= 1
+            while (k + 1) / (size + 1) > self.alpha and k >= 0:
+                k -= 1
+            out[i] = k
+        return out
+
+
+@dataclass(frozen=True)
+class SequentialOutcome:
+    """Result of :func:`sequential_decision`.
+
+    Attributes
+    ----------
+    p_value : float
+        h/L (stopped as not significant), (k + 1)/(L + 1) (stopped as significant) or
+        (k + 1)/(N + 1) (ran to N).
+    n_used : int
+        Permutations the p-value rests on (L, or N).
+    n_drawn : int
+        Permutations computed (rounds end at looks, so n_drawn ≥ n_used).
+    stop : str
+        ``"not_significant"``, ``"significant"`` (early) or ``"full"``.
+    null : ndarray, shape (n_used,)
+        The resampled statistics the p-value rests on.
+    """
+
+    p_value: float
+    n_used: int
+    n_drawn: int
+    stop: str
+    null: np.ndarray = field(repr=False)
+
+
+def sequential_decision(null_between: Callable[[int, int], np.ndarray], observed: float,
+                        n_max: int, rule: SequentialRule) -> SequentialOutcome:
+    """Draw a null distribution in rounds until "p ≤ α?" is settled (module notes).
+
+    Parameters
+    ----------
+    null_between : callable
+        ``null_between(start, stop)``: the resampled statistics number ``start`` to
+        ``stop - 1`` (the same values whatever the engine, as for seed blocks).
+    observed : float
+        The observed statistic (larger is more extreme; tie rule of :func:`count_as_extreme`).
+    n_max : int
+        The most permutations to draw, N ≥ 1.
+    rule : SequentialRule
+
+    Returns
+    -------
+    SequentialOutcome
+
+    Examples
+    --------
+    >>> draws = np.random.default_rng(1).random(999)
+    >>> out = sequential_decision(lambda a, b: draws[a:b], 0.5, 999, SequentialRule(0.05))
+    >>> out.stop, out.n_used < 128, out.p_value > 0.05
+    ('not_significant', True, True)
+    """
+    n_max = check_int("n_max", n_max, low=1)
+    if not isinstance(rule, SequentialRule):
+        raise InputError(f"`rule` must be a SequentialRule; got {type(rule).__name__}")
+    h = rule.exceedances(n_max)
+    looks = rule.looks(n_max)
+    early = rule.significant_counts(n_max)
+    threshold = _threshold(np.asarray(float(observed)))
+    parts: list[np.ndarray] = []
+    count, start = 0, 0
+    for i, stop in enumerate(looks):
+        part = np.asarray(null_between(start, stop), dtype=float).reshape(-1)
+        if part.size != stop - start:
+            raise InputError(f"`null_between({start}, {stop})` returned {part.size} values; "
+                             f"expected {stop - start}")
+        parts.append(part)
+        hits = np.flatnonzero(part >= threshold)
+        if count + hits.size >= h:
+            used = start + int(hits[h - count - 1]) + 1
+            null = np.concatenate(parts)[:used]
+            return SequentialOutcome(h / used, used, stop, "not_significant", null)
+        count += hits.size
+        start = stop
+        if i < len(early) and count <= early[i]:
+            return SequentialOutcome((count + 1) / (stop + 1), stop, stop, "significant",
+                                     np.concatenate(parts))
+    return SequentialOutcome((count + 1) / (n_max + 1), n_max, n_max, "full",
+                             np.concatenate(parts))

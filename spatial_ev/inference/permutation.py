@@ -67,12 +67,12 @@ from spatial_ev.stats.linear import (
     Table, LinearModel, check_explanatory, check_response, model_fraction, prepare_model)
 from spatial_ev.inference.engines import run_tasks
 from spatial_ev.errors import InputError
-from spatial_ev.inference.null import (SeedBlocks, check_run_options,
-                                       permutation_p_value)
+from spatial_ev.inference.null import (SeedBlocks, SequentialRule, check_run_options,
+                                       permutation_p_value, sequential_decision)
 from spatial_ev.stats.linear import reduce_response
 
 __all__ = ["permutation_test", "PermutationTest", "axis_tests", "term_tests", "permutations",
-           "RESTRICTIONS"]
+           "orthonormal_permutation_test", "RESTRICTIONS"]
 
 RESTRICTIONS = ("free", "blocks", "cyclic", "toroidal")
 _GATHER_BYTES = 8 * 2 ** 20
@@ -269,6 +269,11 @@ class PermutationTest:
         2006).
     df_model, df_residual : int
         Rank of X after W, and ``n - 1 - rank(W) - rank(X)``.
+    stop : str
+        ``"full"`` (all ``n_permutations`` drawn), or, for a sequential decision
+        (:func:`orthonormal_permutation_test` with ``decision``), ``"not_significant"`` /
+        ``"significant"`` when it stopped early; ``n_permutations`` is then the number the
+        p-value rests on (:class:`~spatial_ev.inference.null.SequentialOutcome`).
 
     The test assumes that sites (or the residuals of the reduced model) are exchangeable under
     the null hypothesis within the chosen restriction; spatially autocorrelated residuals make a
@@ -285,6 +290,7 @@ class PermutationTest:
     r2_adj: float
     df_model: int
     df_residual: int
+    stop: str = "full"
 
     def to_frame(self) -> pd.DataFrame:
         """One-row table of the test.
@@ -326,10 +332,11 @@ class PermutationTest:
 
 
 def _null(kernels: list[_Kernel], n_permutations: int, chunk_size: int, engine: str,
-          scheduler, n_workers, progress) -> list[np.ndarray]:
-    """Null distributions of several kernels, all tasks sent to the engine at once."""
+          scheduler, n_workers, progress, start: int = 0) -> list[np.ndarray]:
+    """Null distributions of several kernels (permutations ``start`` to ``n_permutations - 1``),
+    all tasks sent to the engine at once."""
     ranges = [(a, min(a + chunk_size, n_permutations))
-              for a in range(0, n_permutations, chunk_size)]
+              for a in range(start, n_permutations, chunk_size)]
     tasks = [(i, r) for i in range(len(kernels)) for r in ranges]
     out = run_tasks(_MultiKernel(tuple(kernels)), tasks, engine=engine, scheduler=scheduler,
                     n_workers=n_workers, progress=progress)
@@ -437,6 +444,119 @@ def permutation_test(Y: Table, X: Table, *, conditioning: Table | None = None,
         restriction=scheme.restriction, r2=fraction.r2, r2_adj=fraction.r2_adj,
         df_model=fraction.rank,
         df_residual=kernel.df_residual)
+
+
+def orthonormal_permutation_test(y: np.ndarray, within: np.ndarray, tested: np.ndarray, *,
+                                 n_permutations: int = 999,
+                                 seed: None | int | np.random.Generator = None,
+                                 chunk_size: int | None = None, engine: str = "local",
+                                 scheduler: Any = None,
+                                 progress: Callable[[int, int], Any] | None = None,
+                                 n_workers: int | None = None,
+                                 decision: SequentialRule | None = None) -> PermutationTest:
+    """Permutation test of ``tested`` given ``within`` from orthonormal bases built by the caller.
+
+    The entry for callers that keep the bases of a growing model themselves (forward
+    selection adds one column per step): nothing is factorised here, so a step costs
+    O(n·k·p) for the residuals and the permutations instead of a QR of the whole model. The
+    statistic, permutations (for a seed) and p-value are those of :func:`permutation_test`
+    with the same spans (free permutations; reduced-model residual permutation when
+    ``within`` has columns), up to rounding in the last digits.
+
+    Parameters
+    ----------
+    y : ndarray, shape (n_sites, n_responses)
+        Column-centred response.
+    within : ndarray, shape (n_sites, q)
+        Orthonormal columns orthogonal to the constant (the conditioning basis; q may be 0).
+    tested : ndarray, shape (n_sites, r)
+        Orthonormal columns orthogonal to the constant and to ``within``, r ≥ 1.
+    n_permutations, seed, chunk_size, engine, scheduler, progress, n_workers
+        As in :func:`permutation_test`.
+    decision : SequentialRule, optional
+        Stop drawing once "p ≤ α?" is settled (:func:`~spatial_ev.inference.null.
+        sequential_decision`): the result's ``stop`` says how it ended and
+        ``n_permutations`` how many permutations the p-value rests on. Only for tests whose
+        one use is that decision (selection steps); needs ``n_permutations`` ≥ 1.
+
+    Returns
+    -------
+    PermutationTest
+
+    Notes
+    -----
+    Only shapes, finiteness and unit column norms are checked (O(n·k)); orthogonality is the
+    caller's promise, since checking it would cost the factorisation this entry avoids.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(918273645)
+    >>> x = rng.normal(size=(30, 2))
+    >>> y = x @ rng.normal(size=(2, 5)) + rng.normal(size=(30, 5))
+    >>> q = np.linalg.qr(x - x.mean(axis=0))[0]
+    >>> orthonormal_permutation_test(y - y.mean(axis=0), q[:, :0], q, n_permutations=199,
+    ...                              seed=42).p_value
+    0.005
+    """
+    n_permutations, chunk_size, engine = check_run_options(n_permutations, chunk_size, engine,
+                                                           progress)
+    y, within, tested = (_check_orthonormal_piece(name, a) for name, a in
+                         (("y", y), ("within", within), ("tested", tested)))
+    n = y.shape[0]
+    for name, a in (("within", within), ("tested", tested)):
+        if a.shape[0] != n:
+            raise InputError(f"`{name}` has {a.shape[0]} rows but `y` has {n}; every table "
+                             f"must have one row per site")
+        norms = np.sqrt(np.einsum("ij,ij->j", a, a))
+        if norms.size and np.abs(norms - 1.0).max() > 1e-8:
+            raise InputError(f"`{name}` must have orthonormal columns; column "
+                             f"{int(np.argmax(np.abs(norms - 1.0)))} has norm "
+                             f"{norms[np.argmax(np.abs(norms - 1.0))]:.6g}; pass an "
+                             f"orthonormal basis (e.g. from numpy.linalg.qr)")
+    if tested.shape[1] == 0:
+        raise InputError("`tested` has no columns; pass at least one basis vector to test")
+    if n - within.shape[1] - tested.shape[1] - 1 <= 0:
+        raise InputError(f"the model has {within.shape[1] + tested.shape[1]} independent "
+                         f"predictors for {n} sites, which leaves no residual degrees of "
+                         f"freedom; test fewer columns")
+    if decision is not None:
+        if not isinstance(decision, SequentialRule):
+            raise InputError(f"parameter `decision` must be a SequentialRule or None; got "
+                             f"{type(decision).__name__}")
+        if n_permutations == 0:
+            raise InputError("a sequential `decision` needs n_permutations >= 1; got 0")
+    model = LinearModel(y, None, None, within, tested, None, pd.Index([]),
+                        np.arange(tested.shape[1]), pd.Index([]))
+    scheme = _check_scheme(n, seed, "free", None, None, None)
+    observed, kernel = _test(model, scheme)
+    stop = "full"
+    if decision is None:
+        null = _null([kernel], n_permutations, chunk_size, engine, scheduler, n_workers,
+                     progress)[0]
+        p_value, used = permutation_p_value(observed, null), n_permutations
+    else:
+        outcome = sequential_decision(
+            lambda a, b: _null([kernel], b, chunk_size, engine, scheduler, n_workers,
+                               progress, start=a)[0], observed, n_permutations, decision)
+        null, p_value, used, stop = outcome.null, outcome.p_value, outcome.n_used, outcome.stop
+    fraction = model_fraction(model)
+    return PermutationTest(
+        statistic=float(observed), p_value=float(p_value), null_distribution=null,
+        n_permutations=used, method="reduced_residual" if within.shape[1] else "raw",
+        restriction="free", r2=fraction.r2, r2_adj=fraction.r2_adj, df_model=fraction.rank,
+        df_residual=kernel.df_residual, stop=stop)
+
+
+def _check_orthonormal_piece(name: str, a: Any) -> np.ndarray:
+    if not isinstance(a, np.ndarray) or a.ndim != 2:
+        raise InputError(f"`{name}` must be a 2-d numpy array (sites x columns); got "
+                         f"{type(a).__name__}" + (f" with {a.ndim} dimension(s)"
+                                                  if isinstance(a, np.ndarray) else ""))
+    a = np.asarray(a, dtype=float)
+    if not np.isfinite(a).all():
+        raise InputError(f"`{name}` contains NaN or infinite values; pass finite numbers")
+    return a
 
 
 _AXIS_METHODS = ("forward", "marginal")

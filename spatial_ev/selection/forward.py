@@ -31,9 +31,10 @@ from spatial_ev.stats.linear import column_basis, adjusted_r2
 from spatial_ev.inference.engines import ENGINES
 from spatial_ev.errors import DroppedVariablesWarning, InputError
 from spatial_ev.stats.linear import check_rows
-from spatial_ev.inference.permutation import permutation_test
+from spatial_ev.inference.null import SequentialRule
+from spatial_ev.inference.permutation import orthonormal_permutation_test, permutation_test
 
-__all__ = ["forward_selection", "ForwardSelection"]
+__all__ = ["forward_selection", "ForwardSelection", "GrowingBasis"]
 
 #: relative tolerance below which a candidate is taken as collinear with the model so far
 _COLLINEAR_RTOL = 1e-10
@@ -76,7 +77,14 @@ class ForwardSelection:
     n_candidates : int
         Candidates offered.
     n_permutations : int
-        Permutations per test.
+        Permutations per test (the most a sequential step test draws).
+    sequential : bool
+        Whether step tests stopped drawing once "p ≤ α?" was settled; the step table then has
+        a column ``permutations`` (how many each step's p-value rests on).
+    decision_risk : float or None
+        The bound ε of the sequential rule (None when ``sequential`` is False).
+    step_permutations : int
+        Permutations drawn by all step tests together (not the global test).
     """
 
     selected: tuple
@@ -90,6 +98,9 @@ class ForwardSelection:
     ranking: str
     n_candidates: int
     n_permutations: int
+    sequential: bool = False
+    decision_risk: float | None = None
+    step_permutations: int = 0
 
     @property
     def r2_adj(self) -> float:
@@ -103,9 +114,11 @@ class ForwardSelection:
 
     def summary(self) -> str:
         """Return a plain-text account of the selection and its stopping rule."""
+        how = (f"up to {self.n_permutations} permutations per step, stopping once the "
+               f"decision is settled (risk {self.decision_risk:g})" if self.sequential
+               else f"{self.n_permutations} permutations per test")
         lines = [f"Forward selection among {self.n_candidates} candidates "
-                 f"(alpha = {self.alpha:g}, {self.n_permutations} permutations per test, "
-                 f"{self.ranking} ranking)"]
+                 f"(alpha = {self.alpha:g}, {how}, {self.ranking} ranking)"]
         if self.global_test is not None:
             lines.append(f"Global test of all candidates: pseudo-F = "
                          f"{self.global_test.statistic:.3f}, p = {self.global_test.p_value:.4f}")
@@ -119,6 +132,8 @@ class ForwardSelection:
             lines.append(f"  {row['variable']:<16s} R²adj = {row['r2_adj']: .4f} "
                          f"(+{row['r2_adj_gain']:.4f})  {p}  {row['decision']}")
         lines.append(f"Selected ({len(self.selected)}): {', '.join(self.selected) or 'none'}")
+        if self.sequential:
+            lines.append(f"Step tests drew {self.step_permutations} permutations in all.")
         lines.append(f"Stopped because: {self.stop_reason}")
         lines.append("Assumptions: linear effects; sites exchangeable under each null hypothesis "
                      "(spatially autocorrelated residuals make p-values too small); the adjusted "
@@ -141,6 +156,8 @@ def forward_selection(
     engine: str = "local",
     scheduler: Any = None,
     progress: Callable[[str], None] | None = None,
+    sequential_steps: bool = False,
+    decision_risk: float = 1e-3,
 ) -> ForwardSelection:
     """Select explanatory variables by forward selection with the double stopping criterion.
 
@@ -176,6 +193,16 @@ def forward_selection(
         Where permutation batches run (see :func:`spatial_ev.inference.permutation.permutation_test`).
     progress : callable, optional
         Called with a short message before each test.
+    sequential_steps : bool, default False
+        Let each step's test stop drawing permutations once "p ≤ α?" is settled
+        (:func:`spatial_ev.inference.null.sequential_decision`): a non-significant step stops
+        at its h-th exceedance (Besag & Clifford 1991), never changing the decision of the
+        full count; a clearly significant step stops early with probability at most
+        ``decision_risk`` when its p over all permutations is ≥ α (Gandy 2009). The global
+        test always draws ``n_permutations``. Results are identical for a seed on every engine
+        and chunk size.
+    decision_risk : float, default 0.001
+        The bound ε of the sequential rule, in (0, 0.5).
 
     Returns
     -------
@@ -217,27 +244,49 @@ def forward_selection(
     if max_variables is not None:
         max_variables = check_int("max_variables", max_variables, low=1)
     check_option("engine", engine, ENGINES)
+    if not isinstance(sequential_steps, (bool, np.bool_)):
+        raise InputError(f"parameter `sequential_steps` must be True or False; got "
+                         f"{sequential_steps!r}")
+    rule = SequentialRule.checked(alpha, risk=decision_risk) if sequential_steps else None
     return run_selection(Yc, Z, names, cond, alpha_global=alpha, alpha=alpha,
                    n_permutations=n_permutations, rng=check_rng(seed),
                    global_test=global_test, r2_adj_limit=r2_adj_limit, ceiling=ceiling,
                    max_variables=max_variables, engine=engine, scheduler=scheduler,
-                   progress=progress)
+                   progress=progress, decision=rule)
 
 
 def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, global_test,
             r2_adj_limit, max_variables, engine, scheduler, progress, ceiling="strict",
-            global_result=None) -> ForwardSelection:
-    """Forward selection on clean inputs (Yc centred; Z, cond raw columns)."""
+            global_result=None, decision: SequentialRule | None = None) -> ForwardSelection:
+    """Forward selection on clean inputs (Yc centred; Z, cond raw columns).
+
+    ``decision``: a :class:`~spatial_ev.inference.null.SequentialRule` at level ``alpha`` for
+    sequential step tests, or None for the full count. The orthonormal basis of the
+    conditioning variables and the selected candidates grows by one Gram–Schmidt column per
+    step (:class:`GrowingBasis`) and each step is tested on it by
+    :func:`~spatial_ev.inference.permutation.orthonormal_permutation_test`, so no step
+    refactorises the model.
+    """
     n = Yc.shape[0]
     total_ss = float(np.sum(Yc * Yc))
     if total_ss <= 0:
         raise InputError("`Y` has no variation (every column is constant); nothing to explain")
+    if decision is not None and decision.alpha != alpha:
+        raise InputError(f"the sequential rule's level ({decision.alpha:g}) must be the "
+                         f"selection's alpha ({alpha:g})")
+    Yt = Yc - Yc.mean(axis=0)   # centred once more, as the tests of whole tables do
 
     def test(X, conditioning):
         return permutation_test(Yc, X, conditioning=conditioning, n_permutations=n_permutations,
                                 seed=rng.spawn(1)[0], engine=engine, scheduler=scheduler)
 
+    def step_test(within, column):
+        return orthonormal_permutation_test(
+            Yt, within, column[:, None], n_permutations=n_permutations, seed=rng.spawn(1)[0],
+            engine=engine, scheduler=scheduler, decision=decision)
+
     Yr, Zr, Qc, raw_norms2, dead = remove_conditioning(Yc, Z, cond, names)
+    model_basis = GrowingBasis(Qc)
     m_c = Qc.shape[1]
     r2_c = (total_ss - float(np.sum(Yr * Yr))) / total_ss
     base_adj = adjusted_r2(r2_c, n, m_c)
@@ -261,6 +310,7 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
         r2_adj_global if r2_adj_global is not None else np.inf)
 
     rows: list[dict] = []
+    drawn = 0
     gtest = global_result
     if global_test == "required" and gtest is None:
         if progress is not None:
@@ -268,14 +318,20 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
         gtest = test(Z[:, ~dead], cond)
 
     def finish(reason):
-        steps = pd.DataFrame(rows, columns=["variable", "r2", "r2_adj", "r2_adj_gain",
-                                            "pseudo_f", "p_value", "added", "decision"])
+        columns = ["variable", "r2", "r2_adj", "r2_adj_gain", "pseudo_f", "p_value", "added",
+                   "decision"] + (["permutations"] if decision is not None else [])
+        steps = pd.DataFrame(rows, columns=columns)
+        if decision is not None:
+            steps["permutations"] = steps["permutations"].fillna(0).astype(int)
         steps.index = pd.RangeIndex(1, len(steps) + 1, name="step")
         return ForwardSelection(
             selected=tuple(r["variable"] for r in rows if r["added"]), steps=steps,
             global_test=gtest, r2_adj_global=r2_adj_global, r2_adj_limit=float(limit),
             ceiling=ceiling, stop_reason=reason, alpha=alpha, ranking=ranking,
-            n_candidates=len(names), n_permutations=n_permutations)
+            n_candidates=len(names), n_permutations=n_permutations,
+            sequential=decision is not None,
+            decision_risk=decision.risk if decision is not None else None,
+            step_permutations=drawn)
 
     ranking = ranker.kind
     if gtest is not None and gtest.p_value > alpha_global:
@@ -316,9 +372,12 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
             break
         if progress is not None:
             progress(f"step {len(chosen) + 1}: testing {names[j]}")
-        given = [c for c in (cond, Z[:, chosen] if chosen else None) if c is not None]
-        result = test(Z[:, [j]], np.hstack(given) if given else None)
+        column = model_basis.orthonormalise(Zr[:, j])
+        result = step_test(model_basis.columns, column)
+        drawn += result.n_permutations
         row["pseudo_f"], row["p_value"] = float(result.statistic), float(result.p_value)
+        if decision is not None:
+            row["permutations"] = int(result.n_permutations)
         if result.p_value > alpha:
             row["decision"] = f"not added: p > {alpha:g}"
             rows.append(row)
@@ -327,6 +386,7 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
         row["added"], row["decision"] = True, "added"
         rows.append(row)
         chosen.append(j)
+        model_basis.append(column)
         r2_sel = r2_new
         ranker.enter(j)
         if crossing:  # ceiling="keep_last": the crossing variable is kept, then stop
@@ -357,6 +417,69 @@ def remove_conditioning(Yc, Z, cond, names, stacklevel=4):
                       f"collinear with the conditioning variables and were not considered",
                       DroppedVariablesWarning, stacklevel=stacklevel)
     return Yr, Zr, Qc, raw_norms2, dead
+
+
+class GrowingBasis:
+    """Orthonormal basis of a model that grows by one column at a time.
+
+    Starts from an orthonormal ``start`` (n, q) (the conditioning basis, orthogonal to the
+    constant); :meth:`orthonormalise` projects a centred column off the basis twice
+    (classical Gram–Schmidt with one reorthogonalisation, which keeps the loss of
+    orthogonality at rounding level) and :meth:`append` adds it. Storage doubles when full,
+    so k appends cost O(n·k) copies in all and a step O(n·k) arithmetic, instead of the
+    O(n·k²) of refactorising the whole model.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> basis = GrowingBasis(np.zeros((20, 0)))
+    >>> for _ in range(3):
+    ...     x = rng.normal(size=20)
+    ...     basis.append(basis.orthonormalise(x - x.mean()))
+    >>> bool(np.allclose(basis.columns.T @ basis.columns, np.eye(3)))
+    True
+    """
+
+    def __init__(self, start: np.ndarray):
+        n, q = start.shape
+        self._store = np.empty((n, max(2 * q, 16)))
+        self._store[:, :q] = start
+        self._size = q
+
+    @property
+    def columns(self) -> np.ndarray:
+        """The basis so far, shape (n, k) (a view: do not modify)."""
+        return self._store[:, :self._size]
+
+    def orthonormalise(self, column: np.ndarray) -> np.ndarray:
+        """``column`` with its projection on the basis removed (twice), scaled to unit length.
+
+        Raises
+        ------
+        InputError
+            When nothing is left (the column lies in the span of the basis).
+        """
+        v = np.array(column, dtype=float)
+        norm0 = float(np.sqrt(v @ v))
+        q = self.columns
+        for _ in range(2):
+            if q.shape[1]:
+                v -= q @ (q.T @ v)
+        norm = float(np.sqrt(v @ v))
+        if not norm > _COLLINEAR_RTOL * max(norm0, TINY):
+            raise InputError("a candidate lies in the span of the variables already in the "
+                             "model; it cannot be tested")
+        return v / norm
+
+    def append(self, column: np.ndarray) -> None:
+        """Add an orthonormalised column (from :meth:`orthonormalise`)."""
+        n, capacity = self._store.shape
+        if self._size == capacity:
+            grown = np.empty((n, 2 * capacity))
+            grown[:, :self._size] = self.columns
+            self._store = grown
+        self._store[:, self._size] = column
+        self._size += 1
 
 
 class _OrthogonalRanking:

@@ -79,12 +79,14 @@ def configure(parser: argparse.ArgumentParser) -> None:
     sim.add_argument("--seed", type=int, default=None, metavar="N",
                      help="seed of the simulations (default: drawn and recorded)")
     ex = parser.add_argument_group("execution and output")
-    ex.add_argument("--engine", default="local", choices=("local", "dask"),
-                    help="where simulations run: local threads (default) or dask")
+    ex.add_argument("--engine", default="local", choices=("local", "processes", "dask"),
+                    help="where simulations run: local threads (default), local worker "
+                         "processes or dask")
     ex.add_argument("--scheduler", default=None, metavar="ADDR",
                     help="dask.distributed scheduler address (default: a local cluster)")
     ex.add_argument("--workers", type=int, default=None, metavar="N",
-                    help="local threads or local-cluster workers (default: one per core)")
+                    help="local threads, worker processes or local-cluster workers "
+                         "(default: one per core)")
     ex.add_argument("--overwrite", action="store_true",
                     help="replace the output folder if it exists")
     ex.add_argument("--quiet", action="store_true", help="print only the final summary")

@@ -61,8 +61,11 @@ def _analysis_options(parser: argparse.ArgumentParser) -> None:
                        help="boundaries of the scale classes in map units (default: three "
                             "equal-size classes: broad, medium, fine)")
     ex = parser.add_argument_group("execution and output")
-    ex.add_argument("--engine", default="local", choices=("local", "dask"),
-                    help="where permutation batches run (default local threads)")
+    ex.add_argument("--engine", default="local", choices=("local", "processes", "dask"),
+                    help="where the work runs: local threads (default), local worker "
+                         "processes (the weighting schemes compared in parallel) or dask")
+    ex.add_argument("--workers", type=int, default=None, metavar="N",
+                    help="threads or worker processes (default: one per core)")
     ex.add_argument("--scheduler", default=None, metavar="ADDR",
                     help="dask.distributed scheduler address (with --engine dask; default: a "
                          "local cluster)")
@@ -223,6 +226,8 @@ def check_analysis_options(args: argparse.Namespace) -> None:
                          f"{level:.6f} for {n_schemes} scheme(s) compared at --alpha {alpha:g} "
                          f"(the smallest p is 1/(N + 1)); use at least --permutations {need}"
                          + (", or one scheme with --weighting" if n_schemes > 1 else ""))
+    if args.workers is not None and args.workers < 1:
+        raise InputError(f"--workers must be at least 1; got {args.workers}")
     if args.scheduler is not None and args.engine != "dask":
         raise InputError("--scheduler applies to --engine dask; add --engine dask or drop "
                          "--scheduler")
@@ -263,7 +268,8 @@ def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=Non
                          n_permutations=args.permutations, seed=args.seed,
                          scale_breaks=args.scale_breaks, trend=args.trend, engine=args.engine,
                          scheduler=args.scheduler, progress=progress,
-                         environment_test=args.environment_test, max_vectors=args.max_vectors)
+                         environment_test=args.environment_test, max_vectors=args.max_vectors,
+                         n_workers=args.workers)
         progress("writing the run folder")
         params = {"command_line": sys.argv[1:] if sys.argv else [],
                   "read_options": reading or {}}

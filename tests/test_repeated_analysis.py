@@ -78,14 +78,16 @@ def test_interaction_type_one_error_on_no_change_variant():
     n_rep = 500
     base = generate_resurvey(moving=False, decline=False)
     keep = [f"G{r:02d}-{c:02d}" for r in range(3, 7) for c in range(2, 14)]
-    sites = base.sites.loc[keep]
+    survey = RepeatedSurvey.from_frames(base.sites.loc[keep],
+                                        base.species[base.species["site_id"].isin(keep)])
+    rows = survey.species.index
+    order = pd.MultiIndex.from_arrays([rows.get_level_values(0).astype(int),
+                                       rows.get_level_values(1)])
     rejections = 0
     for rep in range(1, n_rep + 1):            # replicates of a simulation study
         g = generate_resurvey(moving=False, decline=False, replicate=rep)
-        long = g.species[g.species["site_id"].isin(keep)]
-        survey = RepeatedSurvey.from_frames(sites, long)
-        y = survey.species
-        yh = pd.DataFrame(transform(y.to_numpy(), "hellinger").to_numpy(), index=y.index)
+        counts = g.species.set_index(["year", "site_id"]).loc[order]
+        yh = pd.DataFrame(transform(counts.to_numpy(), "hellinger").to_numpy(), index=rows)
         res = space_time_tests(yh, coords=survey.coords, times=survey.times,
                                n_permutations=39, seed=rep, follow_up="never", n_workers=1)
         rejections += res.table.loc["interaction", "p_value"] <= 0.05

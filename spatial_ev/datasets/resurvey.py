@@ -28,6 +28,7 @@ from __future__ import annotations
 import json
 import os
 from dataclasses import dataclass
+from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
@@ -69,6 +70,12 @@ class Resurvey:
     sites: Any
     species: pd.DataFrame
     truth: dict
+
+
+@lru_cache(maxsize=1)
+def _mudflat_sites():
+    """The demo mudflat's sites (generated once per process; callers get a copy)."""
+    return generate_demo_survey().sites
 
 
 def _fields(u: np.ndarray, v: np.ndarray, years: list) -> dict[str, np.ndarray]:
@@ -113,7 +120,7 @@ def generate_resurvey(*, moving: bool = True, decline: bool = True,
     (660, 42)
     """
     p = PARAMETERS
-    base = generate_demo_survey().sites
+    base = _mudflat_sites().copy()
     u = base.geometry.x.to_numpy() - ORIGIN[0]
     v = base.geometry.y.to_numpy() - ORIGIN[1]
     years = list(p["years"])

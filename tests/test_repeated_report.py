@@ -114,6 +114,14 @@ class TestRunFolder:
         assert not (tmp_path / "x").exists()
         assert not [p for p in tmp_path.iterdir() if p.name.startswith(".x.partial")]
 
+    @pytest.mark.browser
+    def test_page_displays_in_a_browser(self, folder):
+        from browser_check import inspect_in_browser
+
+        check = inspect_in_browser(folder / "report.html")
+        assert check.problems() == []
+        assert check.instrumented and check.images_total == 2 and check.images_broken == ()
+
     def test_html_escapes_titles(self, analysis):
         html = render_change_report(analysis, title="<b>x</b>", figures={})
         assert "<b>x</b>" not in html and "&lt;b&gt;x&lt;/b&gt;" in html

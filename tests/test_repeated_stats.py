@@ -248,6 +248,26 @@ class TestSpaceTimeTests:
         b = space_time_tests(y, coords=coords, times=times, n_permutations=49, seed=7)
         pd.testing.assert_frame_equal(a.table, b.table)
 
+    def test_two_surveys(self):
+        # two surveys: one temporal vector, which leaves no residual within a site
+        y, coords, times = _design(np.random.default_rng(8), s=15, t=2)
+        r = space_time_tests(y, coords=coords, times=times, n_permutations=19, seed=2,
+                             follow_up="always")
+        assert r.n_time_vectors == 1 and r.within_sites is None
+        assert r.within_surveys is not None and len(r.within_surveys) == 2
+        assert any("not tested" in n for n in r.notes)
+        assert r.table.loc["interaction", "df_residual"] == 14 - r.table.loc[
+            "interaction", "df_model"]
+
+    def test_no_follow_up_without_interaction(self):
+        y, coords, times = _design(np.random.default_rng(9))
+        r = space_time_tests(y, coords=coords, times=times, n_permutations=19, seed=2)
+        assert r.interaction_significant is False      # pure noise, fixed seed
+        assert r.within_surveys is None and r.within_sites is None
+        never = space_time_tests(y, coords=coords, times=times, n_permutations=19, seed=2,
+                                 follow_up="never")
+        assert never.within_surveys is None and never.within_sites is None
+
     def test_validation(self):
         y, coords, times = _design(np.random.default_rng(7))
         with pytest.raises(InputError, match="MultiIndex"):

@@ -83,11 +83,9 @@ def helmert_contrasts(n_levels: int) -> np.ndarray:
     [[-1.0, -1.0], [1.0, -1.0], [0.0, 2.0]]
     """
     n_levels = check_int("n_levels", n_levels, low=2)
-    out = np.zeros((n_levels, n_levels - 1))
-    for j in range(n_levels - 1):      # n_levels − 1 columns, not a hot path
-        out[:j + 1, j] = -1.0
-        out[j + 1, j] = float(j + 1)
-    return out
+    level = np.arange(n_levels)[:, None]
+    column = np.arange(1, n_levels)[None, :]
+    return np.where(level < column, -1.0, np.where(level == column, column * 1.0, 0.0))
 
 
 def temporal_eigenvectors(times: Any) -> pd.DataFrame:

@@ -248,7 +248,8 @@ def _parse_times(raw: pd.Series, where, ids: pd.Series, role: str, source: str, 
             i = int(np.flatnonzero(~np.isfinite(numbers))[0])
             raise InputError(f"{role} {source}: time column {column!r} holds {text.iloc[i]!r} at "
                              f"{where(i)} (site {ids.iloc[i]!r}); times must be finite")
-        labels = np.array([f"{v:g}" for v in numbers], dtype=object)
+        distinct, inverse = np.unique(numbers, return_inverse=True)
+        labels = np.array([f"{v:g}" for v in distinct], dtype=object)[inverse]  # per survey
         return labels, numbers, "as given"
     dates = pd.to_datetime(text, errors="coerce", format="mixed")
     failed = dates.isna().to_numpy()
@@ -467,7 +468,9 @@ def _assemble(base: Survey, tables: dict, incomplete: str, decimal: str) -> Repe
     index = pd.MultiIndex.from_product([times.index, sites], names=["survey", sites.name])
     sp = tables["species"]
     order = pairs["species"].get_indexer(target)
-    labels = pd.Index([f"{site} in survey {t}" for t, site in target], dtype=object)
+    site_text = sites.astype(str).to_numpy(dtype=object)
+    labels = pd.Index(np.tile(site_text, len(times)) + " in survey "
+                      + np.repeat(times.index.to_numpy(dtype=object), len(sites)), dtype=object)
     species = T.species_matrix(sp.raw, order, labels, decimal).set_axis(index, axis=0)
     species.columns.name = "species"
     totals = species.sum(axis=0)

@@ -142,6 +142,88 @@ class TestCompareWeightingSchemes:
         assert hits <= stats.binom.interval(0.99, reps, alpha)[1]
 
 
+def _assert_same_comparison(other, base):
+    """Same table (p-values, counts and choices exactly; statistics to 1e-12 relative, since
+    one-thread and multi-thread BLAS sum in different orders), same choice and selection."""
+    exact = ["global_p", "significant", "n_selected", "chosen", "note", "n_vectors"]
+    pd.testing.assert_frame_equal(other.table[exact], base.table[exact], check_exact=True)
+    pd.testing.assert_frame_equal(other.table, base.table, check_exact=False, rtol=1e-12)
+    assert other.best == base.best
+    if base.selection is None:
+        assert other.selection is None and other.basis is None
+        return
+    assert other.selection.selected == base.selection.selected
+    pd.testing.assert_frame_equal(other.selection.steps, base.selection.steps,
+                                  check_exact=False, rtol=1e-12)
+    pd.testing.assert_frame_equal(other.basis.vectors, base.basis.vectors, check_exact=False,
+                                  rtol=1e-10, atol=1e-12)
+
+
+@pytest.fixture(scope="module")
+def broad_data():
+    return _broad_scale_survey(60, 90210, signal=1.0)
+
+
+@pytest.fixture(scope="module")
+def sequential(broad_data):
+    xy, Y = broad_data
+    return compare_weighting_schemes(Y, xy, n_permutations=199, seed=11)
+
+
+@pytest.fixture(scope="module")
+def client():
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                                  dashboard_address=":0") as cluster, \
+            distributed.Client(cluster) as c:
+        yield c
+
+
+class TestSchemesInParallel:
+    """Each scheme is an independent task on worker processes or dask; the comparison must be
+    the sequential one, whatever the engine and number of workers."""
+
+    def test_sequential_reference_is_not_trivial(self, sequential):
+        # several schemes significant with vectors kept, so the choice is a real comparison
+        assert sequential.table["n_selected"].gt(0).sum() >= 2 and sequential.best is not None
+
+    @pytest.mark.parametrize("n_workers", [1, 2])
+    def test_processes(self, broad_data, sequential, n_workers):
+        xy, Y = broad_data
+        out = compare_weighting_schemes(Y, xy, n_permutations=199, seed=11,
+                                        engine="processes", n_workers=n_workers)
+        _assert_same_comparison(out, sequential)
+
+    def test_dask(self, broad_data, sequential, client):
+        xy, Y = broad_data
+        out = compare_weighting_schemes(Y, xy, n_permutations=199, seed=11, engine="dask",
+                                        scheduler=client)
+        _assert_same_comparison(out, sequential)
+
+    def test_warnings_and_progress_come_back(self):
+        xy, Y = _broad_scale_survey(40, 1122, signal=1.0)
+        messages = []
+        with pytest.warns(DisconnectedGraphWarning):
+            out = compare_weighting_schemes(Y, xy, schemes=["minimum_spanning_tree/linear",
+                                                            "distance"],
+                                            n_permutations=99, seed=3, engine="processes",
+                                            n_workers=2, progress=messages.append)
+        assert out.table.loc["minimum_spanning_tree/linear", "note"].startswith(
+            "weighted graph disconnected")
+        assert messages == ["weighting schemes: 1 of 2 compared",
+                            "weighting schemes: 2 of 2 compared"]
+
+    def test_execution_options_validated(self, broad_data):
+        xy, Y = broad_data
+        with pytest.raises(InputError, match=r"`engine` must be one of 'local', 'processes', "
+                                             r"'dask'; got 'ray'"):
+            compare_weighting_schemes(Y, xy, engine="ray")
+        with pytest.raises(InputError, match=r"`n_workers` must be >= 1; got 0"):
+            compare_weighting_schemes(Y, xy, engine="processes", n_workers=0)
+        with pytest.raises(InputError, match=r"`scheduler` is only used with engine='dask'"):
+            compare_weighting_schemes(Y, xy, engine="processes", scheduler="tcp://h:8786")
+
+
 class TestCompareWeightingSchemesValidation:
     def setup_method(self):
         self.xy, self.Y = _broad_scale_survey(25, 1234, signal=1.0)

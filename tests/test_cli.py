@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import pytest
 
-from spatial_ev.cli import check as cli_check
 from spatial_ev.cli.main import COMMANDS, build_parser, main
 
 

@@ -3,17 +3,13 @@ declining cluster is flagged; and the interaction test's type I error on the no-
 
 from __future__ import annotations
 
-import numpy as np
-import pandas as pd
 import pytest
 import scipy.stats
 
 from spatial_ev.datasets.resurvey import generate_resurvey
 from spatial_ev.errors import InputError
-from spatial_ev.inference.space_time import space_time_tests
-from spatial_ev.input.repeated import RepeatedSurvey, read_repeated_survey
+from spatial_ev.input.repeated import read_repeated_survey
 from spatial_ev.pipeline.repeated import RepeatedAnalysis, analyse_repeated
-from spatial_ev.stats.transform import transform
 
 
 @pytest.fixture(scope="module")
@@ -68,31 +64,32 @@ class TestDemo:
         assert a.change.exceptional_sites == []
 
 
+def _validation_study():
+    """validation/space_time_error_rate.py, imported as a module (the test and the validation
+    script share the study)."""
+    import importlib.util
+    import sys
+    from pathlib import Path
+
+    name = "space_time_error_rate"
+    if name not in sys.modules:
+        path = Path(__file__).resolve().parents[1] / "validation" / f"{name}.py"
+        spec = importlib.util.spec_from_file_location(name, path)
+        module = importlib.util.module_from_spec(spec)
+        sys.modules[name] = module
+        spec.loader.exec_module(module)
+    return sys.modules[name]
+
+
 @pytest.mark.slow
 def test_interaction_type_one_error_on_no_change_variant():
     """Type I error of the interaction test on the no-change resurvey: 500 replicate noise
-    draws of 48 grid sites (4 rows x 12 columns) x 3 years x 40 taxa, 39 permutations each
-    (rejection p <= 0.05 then happens with probability 2/40 = 0.05 under exchangeability
-    [derived, Phipson & Smyth 2010 p-value rule]). The rate must lie in the binomial 99 %
-    interval around 0.05 (scipy.stats.binom)."""
-    n_rep = 500
-    base = generate_resurvey(moving=False, decline=False)
-    keep = [f"G{r:02d}-{c:02d}" for r in range(3, 7) for c in range(2, 14)]
-    survey = RepeatedSurvey.from_frames(base.sites.loc[keep],
-                                        base.species[base.species["site_id"].isin(keep)])
-    rows = survey.species.index
-    order = pd.MultiIndex.from_arrays([rows.get_level_values(0).astype(int),
-                                       rows.get_level_values(1)])
-    rejections = 0
-    for rep in range(1, n_rep + 1):            # replicates of a simulation study
-        g = generate_resurvey(moving=False, decline=False, replicate=rep)
-        counts = g.species.set_index(["year", "site_id"]).loc[order]
-        yh = pd.DataFrame(transform(counts.to_numpy(), "hellinger").to_numpy(), index=rows)
-        res = space_time_tests(yh, coords=survey.coords, times=survey.times,
-                               n_permutations=39, seed=rep, follow_up="never", n_workers=1)
-        rejections += res.table.loc["interaction", "p_value"] <= 0.05
-    lo, hi = scipy.stats.binom.interval(0.99, n_rep, 0.05)
-    rate = rejections / n_rep
-    print(f"interaction type I error: {rate:.3f} ({rejections}/{n_rep}); 99% interval "
-          f"[{lo / n_rep:.3f}, {hi / n_rep:.3f}]")
-    assert lo <= rejections <= hi
+    draws of 48 grid sites x 3 years x 40 taxa, 39 permutations each (rejection p <= 0.05 then
+    happens with probability 2/40 = 0.05 under exchangeability [derived, Phipson & Smyth 2010
+    p-value rule]). The rate must lie in the binomial 99 % interval around 0.05
+    (scipy.stats.binom); design in validation/space_time_error_rate.py."""
+    study = _validation_study().interaction_study(500, moving=False)
+    lo, hi = scipy.stats.binom.interval(0.99, 500, 0.05)
+    print(f"interaction type I error: {study['rate']:.3f} ({study['rejections']}/500); 99% "
+          f"interval [{lo / 500:.3f}, {hi / 500:.3f}]")
+    assert lo <= study["rejections"] <= hi

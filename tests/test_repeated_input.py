@@ -56,6 +56,7 @@ class TestLongForm:
         with pytest.raises(InputError, match=r"'q3' \(missing from species survey\(s\) 2021\)"):
             read(paths)
 
+    @pytest.mark.filterwarnings("ignore::spatial_ev.errors.DroppedSpeciesWarning")
     def test_keep_complete_drops_with_warning(self, files):
         paths, _, long = files
         long.drop(index=long.index[(long.site == "q3") & (long.year == 2021)]).to_csv(
@@ -109,6 +110,7 @@ class TestLongForm:
         with pytest.warns(SpatialEVWarning):
             assert read(paths, time_column="when").n_surveys == 3
 
+    @pytest.mark.filterwarnings("ignore::spatial_ev.errors.DroppedSpeciesWarning")
     def test_empty_site_survey_and_bad_value(self, files):
         paths, _, long = files
         bad = long.copy()
@@ -201,3 +203,18 @@ class TestResurveyDemo:
         folder = repo_root / "data_demo" / "resurvey"
         f = read_repeated_survey(folder / "sites.gpkg", folder / "species.csv")
         np.testing.assert_array_equal(r.species.to_numpy(), f.species.to_numpy())
+
+
+def test_bad_value_in_a_per_survey_table_names_its_file_and_line(files, tmp_path):
+    paths, _, long = files
+    tables = []
+    for year in (2020, 2021):
+        p = tmp_path / f"sp{year}.csv"
+        part = long[long.year == year].drop(columns="year").astype({"sp_b": object})
+        if year == 2021:
+            part.iloc[2, part.columns.get_loc("sp_b")] = "n/a?"
+        part.to_csv(p, index=False)
+        tables.append(p)
+    with pytest.raises(InputError, match=r"sp2021\.csv' \(survey 2021\): column 'sp_b' line 4 "
+                                         r"\(site 'q2 in survey 2021'\) holds 'n/a\?'"):
+        read_repeated_survey(paths["sites"], tables, times=[2020, 2021], local_unit="metre")

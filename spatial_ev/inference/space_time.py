@@ -381,7 +381,6 @@ def space_time_tests(Y: pd.DataFrame, *, coords: pd.DataFrame, times: Any,
     t, s = len(surveys), len(sites)
     if s < 5:
         raise InputError(f"space-time tests need at least 5 sites; got {s}")
-    n = s * t
     survey_of = np.repeat(np.arange(t), s)
     site_of = np.tile(np.arange(s), t)
     space_f = helmert_contrasts(s)[site_of]

@@ -335,8 +335,14 @@ def _read_per_survey(paths: Sequence, times: Sequence, site_id, opts: dict) -> _
                 frame = pd.DataFrame(frame.drop(columns=frame.geometry.name))
             lines = None
         name, ids, data = T.split_ids(frame, role="species", source=source, site_id=site_id)
-        T.check_ids(T.RawTable("species", source, name, ids, data,
-                               extra={"csv": lines is not None, "lines": lines}))
+        raw = T.RawTable("species", source, name, ids, data,
+                         extra={"csv": lines is not None, "lines": lines})
+        T.check_ids(raw)
+        # values checked file by file, so that a bad cell is reported with its file and line
+        labels_here = pd.Index(ids.astype(str).to_numpy(dtype=object) + f" in survey {label}",
+                               dtype=object)
+        data = T.species_matrix(raw, np.arange(len(ids)), labels_here, opts["decimal"])
+        data = data.reset_index(drop=True).rename_axis(columns=None)
         if columns is None:
             columns, id_name, first = list(data.columns), name, source
         elif list(data.columns) != columns:

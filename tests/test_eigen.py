@@ -113,6 +113,80 @@ class TestDistanceEigenvectors:
         changes = (np.diff(signs, axis=0) != 0).sum(axis=0)
         assert np.all(np.abs(changes[:20] - k[:20]) <= 1)
 
+    def test_scale_on_equal_edges_is_the_plane_wave_match(self):
+        # [derived] on a unit grid with t = 1 every edge has length 1, the amplitude weights
+        # cancel and the scale is the plane wave whose neighbour-lag correlation J0(κ)
+        # equals ρ = uᵀWu/uᵀDu (J0 for a random direction: Watson 1944, Bessel Functions
+        # §2.2 [memory]); scipy's brentq and j0 are the oracle
+        from scipy.optimize import brentq
+        from scipy.special import j0
+
+        b = distance_eigenvectors(_grid(10, 10))
+        u = b.vectors.to_numpy()
+        w = b.weights
+        rho = np.einsum("ik,ik->k", u, w @ u) / (np.asarray(w.sum(axis=1)).ravel() @ u ** 2)
+        expected = [2 * np.pi / brentq(lambda k, r=r: j0(k) - r, 1e-9, 3.8317) for r in rho]
+        assert np.allclose(b.scale.to_numpy(), expected, rtol=1e-5)
+
+    def test_transect_scales_are_the_cosine_match(self):
+        # [derived] on a transect with t = 1 (equal edges) the scale solves
+        # 1 − cos(κ) = 1 − ρ exactly: κ = arccos(ρ) (numpy as the oracle); the odd,
+        # sine-like vectors keep these values whatever the estimator's mixed-density form
+        b = distance_eigenvectors(_transect(60))
+        u = b.vectors.to_numpy()
+        rho = np.einsum("ik,ik->k", u, b.weights @ u) / (
+            np.asarray(b.weights.sum(axis=1)).ravel() @ u ** 2)
+        assert np.allclose(b.scale.to_numpy(), 2 * np.pi / np.arccos(rho), rtol=1e-5)
+
+    def test_scale_solves_the_local_amplitude_equation(self):
+        # [derived] on a mixed-density layout each vector's κ = 2π/scale balances
+        # Σ w (u_i − u_j)² = Σ w (u_i² + u_j²) g(κ d_ij), g = 1 − J0(min(x, j₁,₁)) the monotone
+        # envelope (j₁,₁ = 3.8317, first zero of J1, from scipy); evaluated edge by edge with
+        # scipy.special.j0 (the estimator bins lags, hence the 2 % tolerance)
+        from scipy import sparse
+        from scipy.special import j0, jn_zeros
+
+        rng = np.random.default_rng(SEEDS[0])
+        xy = np.vstack([rng.normal(150, 25, (60, 2)), rng.uniform(0, 600, (40, 2))])
+        b = distance_eigenvectors(xy)
+        w = sparse.triu(b.weights).tocoo()
+        d = np.hypot(*(xy[w.row] - xy[w.col]).T)
+        u = b.vectors.to_numpy()
+        left = w.data @ (u[w.row] - u[w.col]) ** 2
+        kappa = 2 * np.pi / b.scale.to_numpy()
+        x = np.minimum(np.outer(d, kappa), jn_zeros(1, 1)[0])
+        right = np.einsum("e,ek,ek->k", w.data, u[w.row] ** 2 + u[w.col] ** 2, 1 - j0(x))
+        assert np.allclose(left, right, rtol=0.02)
+        # no clamping: every positive-I vector has its own scale (a first-crossing rule
+        # gave many vectors the same value on such layouts)
+        assert np.unique(b.scale.round(6)).size == b.n_vectors
+
+    @pytest.mark.parametrize("seed", range(6))
+    def test_adding_sites_inside_never_coarsens_the_finest_scale(self, seed):
+        # property: clustered sites plus 30 sites inside their convex hull (shapely decides
+        # inside); the finest resolvable scale (5 % quantile of the vector scales) does not
+        # rise beyond 5 % (the quantile of a discrete spectrum moves by one vector), the
+        # broadest (twice the extent's long side) does not move at all
+        from shapely.geometry import MultiPoint, Point
+
+        from spatial_ev.space.scales import resolvable_scales
+
+        rng = np.random.default_rng(seed)
+        centres = rng.uniform(100, 500, (4, 2))
+        xy = np.vstack([c + rng.normal(0, 40, (20, 2)) for c in centres]
+                       + [rng.uniform(0, 600, (15, 2))])
+        hull = MultiPoint([tuple(p) for p in xy]).convex_hull
+        extra = []
+        while len(extra) < 30:
+            p = rng.uniform(0, 600, 2)
+            if hull.contains(Point(*p)):
+                extra.append(p)
+        more = np.vstack([xy, extra])
+        fine1, broad1 = resolvable_scales(distance_eigenvectors(xy).scale, xy)
+        fine2, broad2 = resolvable_scales(distance_eigenvectors(more).scale, more)
+        assert fine2 <= fine1 * 1.05
+        assert broad2 == pytest.approx(broad1, rel=1e-12)
+
     @pytest.mark.parametrize("solver", ["dense", "sparse"])
     def test_extension_reproduces_sites(self, solver):
         # Nyström / add-a-point extension [derived]: exact at the original sites.

@@ -8,7 +8,13 @@ import pytest
 import statsmodels.api as sm
 
 from spatial_ev.errors import InputError
-from spatial_ev.space.scales import classify_scales, default_scale_breaks, scalogram
+from spatial_ev.space.scales import (
+    classify_scales,
+    default_scale_breaks,
+    extent_wavelength,
+    resolvable_scales,
+    scalogram,
+)
 
 
 def centred_orthonormal_basis(n, rng):
@@ -89,3 +95,43 @@ class TestScaleClasses:
     def test_too_few_vectors(self):
         with pytest.raises(InputError, match="cannot be split"):
             default_scale_breaks(self.scales.iloc[:2])
+
+
+class TestResolvableScales:
+    def test_extent_wavelength_of_a_rotated_rectangle(self):
+        # twice the long side of the smallest enclosing rectangle, whatever the rotation and
+        # with interior points (shapely's minimum_rotated_rectangle as the oracle)
+        import shapely
+        from shapely.geometry import MultiPoint
+
+        rng = np.random.default_rng(20261202)
+        a = np.deg2rad(30.0)
+        rot = np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+        corners = np.array([[0, 0], [300, 0], [300, 120], [0, 120]], float)
+        inside = rng.uniform([0, 0], [300, 120], (50, 2))
+        xy = np.vstack([corners, inside]) @ rot.T + [1000.0, 2000.0]
+        rect = shapely.minimum_rotated_rectangle(MultiPoint([tuple(p) for p in xy]))
+        c = np.asarray(rect.exterior.coords)[:3]
+        long_side = max(np.hypot(*(c[1] - c[0])), np.hypot(*(c[2] - c[1])))
+        assert extent_wavelength(xy) == pytest.approx(2 * long_side, rel=1e-9)
+        assert extent_wavelength(xy) == pytest.approx(600.0, rel=1e-9)
+
+    def test_transect_is_twice_its_length(self):
+        # a transect's broadest resolvable wavelength is ≈ 2 × extent (REFERENCES "Sampling
+        # design" [derived]); collinear points have no hull, the length is used
+        xy = np.column_stack([np.arange(11.0) * 3, np.arange(11.0) * 4])
+        assert extent_wavelength(xy) == pytest.approx(2 * 50.0)
+
+    def test_finest_is_the_five_percent_quantile(self):
+        # numpy's quantile (method "lower") as the oracle
+        rng = np.random.default_rng(7)
+        s = pd.Series(rng.uniform(10, 500, 61))
+        finest, broadest = resolvable_scales(s, [[0, 0], [100, 0], [100, 50], [0, 50]])
+        assert finest == np.quantile(s.to_numpy(), 0.05, method="lower")
+        assert broadest == pytest.approx(200.0)
+
+    def test_bad_coordinates(self):
+        with pytest.raises(InputError, match="two columns"):
+            extent_wavelength(np.zeros((4, 3)))
+        with pytest.raises(InputError, match="same point"):
+            extent_wavelength(np.ones((4, 2)))

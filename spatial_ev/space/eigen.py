@@ -68,11 +68,15 @@ class SpatialBasis:
     moran_i : Series, shape (k,)
         Moran's I of each vector under ``weights``.
     scale : Series, shape (k,)
-        Equivalent wavelength in map units: the wavelength 2π/κ of a plane wave (a sine on a
-        transect) whose neighbour-lag autocorrelation Σw f(κd)/Σw (f = J0 in two dimensions,
-        cos on a line) equals the vector's ρ = uᵀWu/uᵀDu (D = weighted degrees). On a regular
-        transect vector k has scale ≈ 2n/k spacings; half of it is the size of a patch.
-        Vectors finer than the neighbour lag can resolve get the finest resolvable wavelength.
+        Equivalent wavelength in map units: the 2π/κ that solves
+        Σ w_ij (u_i − u_j)² = Σ w_ij (u_i² + u_j²) g(κ d_ij) over the neighbour pairs, g the
+        monotone envelope of 1 − J0 in two dimensions (1 − cos on a line). Each pair counts
+        with the vector's own amplitude at its ends, so on mixed-density layouts the lags
+        where the vector lives set its scale; on equal-length edges this is the plane wave
+        (sine on a transect) whose neighbour-lag autocorrelation equals ρ = uᵀWu/uᵀDu
+        (D = weighted degrees). On a regular transect vector k has scale ≈ 2n/k spacings;
+        half of it is the size of a patch. Vectors finer than the neighbour lags can resolve
+        get the finest wavelength those lags resolve.
     method : str
         ``"distance_based"`` or the neighbour-graph method.
     threshold : float or None
@@ -270,45 +274,97 @@ def finish_vectors(mu: np.ndarray, u: np.ndarray, sign: str) -> tuple[np.ndarray
 
 # ---------------------------------------------------------------- scale
 
-def _scales(u: np.ndarray, mu: np.ndarray, w: sparse.csr_matrix, lengths: np.ndarray,
-            weights: np.ndarray, one_dimensional: bool) -> np.ndarray:
+def _scales(u: np.ndarray, mu: np.ndarray, w: sparse.csr_matrix, lengths: sparse.spmatrix,
+            weights: sparse.spmatrix, one_dimensional: bool) -> np.ndarray:
     """Equivalent wavelength (map units) of each column of u; see SpatialBasis.scale.
 
-    For unit eigenvectors of CWC orthogonal to 1, uᵀWu = μ, so ρ = μ / Σ_i deg_i u_i².
+    Local-amplitude form: the wavelength 2π/κ solves
+    Σ w_ij (u_i − u_j)² = Σ w_ij (u_i² + u_j²) g(κ d_ij) over the edges, with g the monotone
+    envelope of 1 − J0 (1 − cos on a line): 1 − J0(min(x, j1)) with j1 = 3.8317 the first
+    zero of J1 (π on a line). Each edge counts with the vector's own amplitude at its ends, so
+    densely and sparsely sampled parts of a layout each speak for the lags they hold; the left
+    side is 2(uᵀDu − uᵀWu), and g is non-decreasing, so the solution is unique up to the
+    envelope's plateau (the finest resolvable wavelength). On equal-length edges the amplitude
+    weights cancel and the estimate is that of a plane wave whose neighbour-lag
+    autocorrelation equals ρ = uᵀWu/uᵀDu.
     """
     if u.shape[1] == 0:
         return np.zeros(0)
-    deg = np.asarray(w.sum(axis=1)).ravel()
-    rho = np.clip(mu / (deg @ (u * u)), -1.0, 1.0)
-    pos = weights > 0
-    lengths, weights = lengths[pos], weights[pos]
-    lo, hi = float(lengths.min()), float(lengths.max())
+    n = u.shape[0]
+    lengths, weights = sparse.coo_matrix(lengths), sparse.csr_matrix(weights)
+    wv = np.asarray(weights[lengths.row, lengths.col]).ravel()
+    pos = wv > 0
+    rows, d_e, w_e = lengths.row[pos], lengths.data[pos].astype(float), wv[pos]
+    lo, hi = float(d_e.min()), float(d_e.max())
     if hi - lo <= 1e-12 * hi:                  # all edges equally long (regular lattices)
-        d, wb = np.array([float(np.average(lengths, weights=weights))]), np.ones(1)
+        bins = np.zeros(d_e.size, dtype=np.int64)
+        d = np.array([float(np.average(d_e, weights=w_e))])
     else:
-        hist_w, edges = np.histogram(lengths, bins=256, weights=weights)
-        hist_d, _ = np.histogram(lengths, bins=edges, weights=weights * lengths)
-        nz = hist_w > 0
-        d, wb = hist_d[nz] / hist_w[nz], hist_w[nz] / hist_w[nz].sum()
-    d_mean = float(wb @ d)
-    kappa = np.geomspace(1e-3, 20.0, 4000) / d_mean
+        edges = np.linspace(lo, hi, 257)
+        bins = np.clip(np.searchsorted(edges, d_e, side="right") - 1, 0, 255)
+        hist_w = np.bincount(bins, weights=w_e, minlength=256)
+        hist_d = np.bincount(bins, weights=w_e * d_e, minlength=256)
+        used = hist_w > 0
+        remap = np.cumsum(used) - 1
+        bins, d = remap[bins], hist_d[used] / hist_w[used]
+    # per site and lag bin: weight of the site's edges in that bin (n × bins, sparse)
+    site_bin = sparse.csr_matrix((w_e, (rows, bins)), shape=(n, d.size))
+    amp = np.asarray(site_bin.T @ (u * u))                   # (bins, k): Σ_i D_ib u_ik²
+    total = amp.sum(axis=0)
+    deg_u2 = np.asarray(w.sum(axis=1)).ravel() @ (u * u)
+    uwu = np.einsum("ik,ik->k", u, np.asarray(w @ u))
+    target = np.clip(1.0 - uwu / deg_u2, 1e-300, None)       # 1 − ρ
+    share = amp / np.where(total > 0, total, 1.0)
+    d_mean = float(np.average(d, weights=share.mean(axis=1) + 1e-300))
+    kappa = np.geomspace(1e-3, 40.0, 4000) / d_mean
     x = kappa[:, None] * d[None, :]
-    one_minus_f = 2 * np.sin(x / 2) ** 2 if one_dimensional else _one_minus_j0(x)
-    gap = one_minus_f @ wb                                  # 1 − ρ(κ), increasing at first
-    stop = np.flatnonzero(np.diff(gap) <= 0)
-    last = stop[0] + 1 if len(stop) else len(gap)
-    kappa, gap = kappa[:last], gap[:last]
-    target = np.clip(1.0 - rho, 1e-300, None)
-    k_est = np.exp(np.interp(np.log(target), np.log(gap), np.log(kappa)))
+    gap = (_one_minus_cos_envelope(x) if one_dimensional else _one_minus_j0_envelope(x)) @ share
+    gap = np.maximum.accumulate(gap, axis=0)                 # exact monotone (rounding)
+    cols = np.arange(u.shape[1])
+    above = gap >= target[None, :]
+    first = np.where(above.any(axis=0), above.argmax(axis=0), len(kappa) - 1)
+    # reaching the plateau: the finest wavelength those lags resolve (first plateau point)
+    top = gap[-1]
+    plateau = target >= top * (1 - 1e-12)
+    first_top = (gap >= top[None, :] * (1 - 1e-12)).argmax(axis=0)
+    first = np.where(plateau, first_top, first)
+    lo_i = np.maximum(first - 1, 0)
+    g0, g1 = gap[lo_i, cols], gap[first, cols]
+    k0, k1 = np.log(kappa[lo_i]), np.log(kappa[first])
+    frac = np.where(g1 > g0, (np.minimum(target, g1) - g0) / np.where(g1 > g0, g1 - g0, 1.0), 1.0)
+    k_est = np.exp(k0 + np.clip(frac, 0.0, 1.0) * (k1 - k0))
     c = 0.5 if one_dimensional else 0.25
     small = target < gap[0]
-    k_est[small] = np.sqrt(target[small] / (c * float(wb @ d ** 2)))
+    k_est[small] = np.sqrt(target[small] / (c * (share[:, small].T @ d ** 2)))
     return 2 * np.pi / k_est
 
 
-def _one_minus_j0(x: np.ndarray) -> np.ndarray:
+#: first zero of J1: 1 − J0 rises to its largest value there and only oscillates below it after
+_J1_FIRST_ZERO = float(special.jn_zeros(1, 1)[0])
+
+
+def _one_minus_j0_envelope(x: np.ndarray) -> np.ndarray:
+    """Monotone envelope of 1 − J0(x): 1 − J0(min(x, j₁,₁)), j₁,₁ = 3.8317 (first zero of J1).
+
+    Examples
+    --------
+    >>> round(float(_one_minus_j0_envelope(np.array([10.0]))[0]), 4)
+    1.4028
+    """
+    x = np.minimum(np.asarray(x, dtype=float), _J1_FIRST_ZERO)
     series = x ** 2 / 4 - x ** 4 / 64 + x ** 6 / 2304
     return np.where(x < 1e-2, series, 1.0 - special.j0(x))
+
+
+def _one_minus_cos_envelope(x: np.ndarray) -> np.ndarray:
+    """Monotone envelope of 1 − cos(x): 2 sin²(min(x, π)/2).
+
+    Examples
+    --------
+    >>> float(_one_minus_cos_envelope(np.array([7.0]))[0])
+    2.0
+    """
+    return 2 * np.sin(np.minimum(np.asarray(x, dtype=float), np.pi) / 2) ** 2
 
 
 def _count_for_scale(layout: Layout, finest_scale: float) -> int:
@@ -347,7 +403,8 @@ def _check_basis_options(n: int, max_vectors, finest_scale, sign, solver):
     return max_vectors, finest_scale, sign, solver
 
 
-def _basis(w: sparse.csr_matrix, layout: Layout, lengths: np.ndarray, raw_weights: np.ndarray,
+def _basis(w: sparse.csr_matrix, layout: Layout, lengths: sparse.spmatrix,
+           raw_weights: sparse.spmatrix,
            *, max_vectors, finest_scale, sign, solver, **fields) -> SpatialBasis:
     n = layout.n
     if w.nnz == 0:
@@ -443,7 +500,7 @@ def distance_eigenvectors(coords: Any, *, threshold: float | None = None,
         threshold = check_real("threshold", threshold, low=0, low_inclusive=False)
     i, j, d = band_pairs(layout, threshold)
     w = symmetric_matrix(layout.n, i, j, 1.0 - (d / (4.0 * threshold)) ** 2)
-    basis = _basis(w, layout, d, 1.0 - (d / (4.0 * threshold)) ** 2,
+    basis = _basis(w, layout, symmetric_matrix(layout.n, i, j, d), w,
                    max_vectors=max_vectors, finest_scale=finest_scale, sign=sign,
                    solver=solver, method="distance_based", threshold=threshold)
     # a frozen result: the PCoA eigenvalues go into a new instance, never set afterwards
@@ -509,7 +566,7 @@ def graph_eigenvectors(graph: NeighbourGraph, *, weighting: str = "binary",
                            "great_circle" else "euclidean")
     layout = layout._replace(site_ids=graph.site_ids)
     self_weight = 1.0 if weighting != "concave_up" else float(w.data.max())
-    basis = _basis(w, layout, graph.lengths.data, full.data, max_vectors=max_vectors,
+    basis = _basis(w, layout, graph.lengths, full, max_vectors=max_vectors,
                    finest_scale=finest_scale, sign=sign, solver=solver, method=graph.method,
                    threshold=graph.threshold, weighting=weighting, exponent=exponent,
                    graph=graph, self_weight=self_weight,

@@ -19,11 +19,16 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+import scipy.spatial
 
 from spatial_ev._validation import as_matrix, check_int
 from spatial_ev.errors import InputError
 
-__all__ = ["ScaleClass", "default_scale_breaks", "classify_scales", "scalogram"]
+__all__ = ["FINEST_QUANTILE", "ScaleClass", "classify_scales", "default_scale_breaks",
+           "extent_wavelength", "resolvable_scales", "scalogram"]
+
+#: share of a basis's vectors allowed below its reported finest resolvable scale
+FINEST_QUANTILE = 0.05
 
 
 @dataclass(frozen=True)
@@ -199,3 +204,83 @@ def scalogram(Y, vectors: pd.DataFrame, *, scales: pd.Series | None = None) -> p
     if scales is not None:
         frame["scale"] = pd.Series(scales, dtype=float).reindex(vectors.columns).to_numpy()
     return frame
+
+
+def extent_wavelength(coords) -> float:
+    """Broadest wavelength a layout's extent can resolve: twice its long side (map units).
+
+    The long side is that of the smallest-area rectangle enclosing the layout (a transect's
+    length; a square's side), so the value depends only on the convex hull: sites added
+    inside the hull never change it, and it never shrinks when sites are added. A half-wave
+    spanning the extent is the broadest structure a layout can tell apart from a constant
+    (extent sets the broadest resolvable wavelength, ≈ 2 × extent; REFERENCES "Sampling
+    design" [derived from the transect eigenfunctions]).
+
+    Parameters
+    ----------
+    coords : array-like, shape (n, 2)
+        Projected coordinates in map units.
+
+    Returns
+    -------
+    float
+
+    Examples
+    --------
+    >>> extent_wavelength([[0, 0], [10, 0], [10, 4], [0, 4]])
+    20.0
+    """
+    xy, _, _ = as_matrix("coords", coords, min_rows=2)
+    if xy.shape[1] != 2:
+        raise InputError(f"`coords` must have two columns (x, y); got {xy.shape[1]}")
+    xy = xy - xy.mean(axis=0)
+    if not np.any(np.ptp(xy, axis=0) > 0):
+        raise InputError("`coords` are all the same point; a layout needs an extent (give at "
+                         "least two distinct sites)")
+    try:
+        hull = xy[scipy.spatial.ConvexHull(xy).vertices]
+    except scipy.spatial.QhullError:  # collinear: the points themselves
+        hull = xy
+    edges = np.diff(np.vstack([hull, hull[:1]]), axis=0)
+    angles = np.arctan2(edges[:, 1], edges[:, 0])
+    angles = np.concatenate([angles, [0.0]])
+    c, s = np.cos(angles), np.sin(angles)
+    u = hull @ np.vstack([c, s])                    # (points, directions) along each edge
+    v = hull @ np.vstack([-s, c])
+    span_u, span_v = np.ptp(u, axis=0), np.ptp(v, axis=0)
+    best = int(np.argmin(span_u * span_v + 1e-300 * (span_u + span_v)))
+    if np.all(span_u * span_v <= 1e-12 * max(float(np.max(span_u)), 1e-300) ** 2):
+        return float(2 * np.max(np.ptp(u, axis=0)))   # collinear: twice the length
+    return float(2 * max(span_u[best], span_v[best]))
+
+
+def resolvable_scales(scales: pd.Series, coords) -> tuple[float, float]:
+    """The finest and broadest scale (map units) a layout's basis can resolve.
+
+    The finest is the :data:`FINEST_QUANTILE` quantile of the basis's vector scales (a few
+    vectors localised in the densest corner do not set it alone); the broadest is
+    :func:`extent_wavelength`, set by the layout's extent rather than by its broadest
+    vector (on mixed-density layouts the first vectors localise, while broad structure is
+    still carried by combinations of them).
+
+    Parameters
+    ----------
+    scales : pandas.Series
+        Scale of every vector of the layout's basis, map units.
+    coords : array-like, shape (n, 2)
+        The layout's coordinates.
+
+    Returns
+    -------
+    (float, float)
+        ``(finest, broadest)``.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> resolvable_scales(pd.Series([40.0, 20.0, 10.0]), [[0, 0], [30, 0], [30, 10]])
+    (10.0, 60.0)
+    """
+    scales = _check_scales(scales)
+    finest = float(np.quantile(scales.to_numpy(), FINEST_QUANTILE, method="lower"))
+    return finest, extent_wavelength(coords)

@@ -53,6 +53,7 @@ Restricted permutations (``restriction``)
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, replace
 from functools import partial
@@ -76,7 +77,8 @@ __all__ = ["permutation_test", "PermutationTest", "axis_tests", "term_tests", "p
 
 RESTRICTIONS = ("free", "blocks", "cyclic", "toroidal")
 _GATHER_BYTES = 8 * 2 ** 20
-_COMPLEMENT_MAX_SITES = 5000   # the complement is built from an n x n orthogonal matrix
+_COMPLEMENT_MAX_SITES = 5000
+_MIN_PIECE = 32                # smallest task when a short run is split over the workers   # the complement is built from an n x n orthogonal matrix
 
 
 # ----------------------------------------------------------------------------------------------
@@ -334,7 +336,17 @@ class PermutationTest:
 def _null(kernels: list[_Kernel], n_permutations: int, chunk_size: int, engine: str,
           scheduler, n_workers, progress, start: int = 0) -> list[np.ndarray]:
     """Null distributions of several kernels (permutations ``start`` to ``n_permutations - 1``),
-    all tasks sent to the engine at once."""
+    all tasks sent to the engine at once.
+
+    A run with fewer tasks than workers (e.g. 199 permutations in chunks of 256, or one
+    round of a sequential decision) is split into smaller tasks, at least ``_MIN_PIECE``
+    permutations each, so that every worker has one; the split never changes the values."""
+    workers = n_workers or os.cpu_count() or 1
+    tasks_per_kernel = -(-(n_permutations - start) // chunk_size) if n_permutations > start \
+        else 0
+    if 0 < len(kernels) * tasks_per_kernel < workers:
+        per_task = -(-(n_permutations - start) * len(kernels) // workers)
+        chunk_size = min(chunk_size, max(_MIN_PIECE, -(-per_task // len(kernels))))
     ranges = [(a, min(a + chunk_size, n_permutations))
               for a in range(start, n_permutations, chunk_size)]
     tasks = [(i, r) for i in range(len(kernels)) for r in ranges]

@@ -102,6 +102,22 @@ class TestRunTasks:
         assert all(t == [1] * len(before) for t in inside)
         assert blas_threads() == before
 
+    def test_nested_calls_in_pool_threads_run_inline(self):
+        def outer(task):
+            me = threading.get_ident()
+            inner = run_tasks(lambda t: threading.get_ident(), range(4), n_workers=2)
+            return set(inner) == {me}
+
+        assert run_tasks(outer, range(3), n_workers=3) == [True] * 3
+        # called in turn (one worker), the tasks are not pool workers: their calls use a pool
+        def pause(task):
+            time.sleep(0.02)
+            return threading.get_ident()
+
+        seen = run_tasks(lambda t: run_tasks(pause, range(6), n_workers=3), [0],
+                         n_workers=1)[0]
+        assert len(set(seen)) > 1
+
     def test_progress_counts_every_task(self):
         calls = []
         run_tasks(slow_square, range(5), n_workers=2,

@@ -24,8 +24,10 @@ Engines (:data:`ENGINES`):
     of single-thread worker processes kept for the session. The function is scattered once to
     every worker (``broadcast=True``); each worker process is limited to one BLAS thread.
 
-Tasks that run inside a worker (of either local engine) and call :func:`run_tasks` again run
-their inner tasks one after the other in that worker: the cores are already busy.
+Tasks that run inside a worker (a pool thread, a worker process or a dask worker) and call
+:func:`run_tasks` again run their inner tasks one after the other in that worker: the cores are
+already busy. Tasks run one after the other in the calling thread (``n_workers=1``) are not
+workers: their inner calls may use a pool.
 """
 
 from __future__ import annotations
@@ -200,7 +202,7 @@ _task_state = threading.local()
 
 
 def _inside_task() -> bool:
-    """Whether the calling thread runs a task of a worker engine (processes or dask)."""
+    """Whether the calling thread runs a task of a pool (threads, processes or dask)."""
     return _in_worker or getattr(_task_state, "depth", 0) > 0
 
 
@@ -248,12 +250,16 @@ _dask_limited = False
 
 
 def _call(function, task):
-    """A task on a dask worker; a worker in its own process keeps BLAS at one thread."""
+    """A task on a dask worker, with one BLAS thread: a worker in its own process is limited
+    once; a worker thread of an in-process cluster limits this process while tasks run (as the
+    local thread pool does)."""
     global _dask_limited, _worker_limiter
+    if multiprocessing.parent_process() is None:           # an in-process cluster
+        with one_blas_thread():
+            return _as_task(function, task)
     if not _dask_limited:
         _dask_limited = True
-        if multiprocessing.parent_process() is not None:   # not an in-process cluster
-            _worker_limiter = threadpool_limits(limits=1, user_api="blas")
+        _worker_limiter = threadpool_limits(limits=1, user_api="blas")
     return _as_task(function, task)
 
 
@@ -278,7 +284,7 @@ def _run_local(function, tasks, n_workers, report):
     # one BLAS thread per task thread: the threads already fill the cores, and BLAS threads on
     # top of them would compete for the same cores (measured: slower, and much noisier)
     with one_blas_thread(), ThreadPoolExecutor(max_workers=threads) as pool:
-        futures = {pool.submit(function, task): i for i, task in enumerate(tasks)}
+        futures = {pool.submit(_as_task, function, task): i for i, task in enumerate(tasks)}
         for future in as_completed(futures):
             results[futures[future]] = future.result()
             report()
@@ -485,8 +491,9 @@ def run_tasks(function: Callable[[T], R], tasks: Sequence[T], *, engine: str = "
     n_workers : int, optional
         Threads of the local pool (default: ``os.cpu_count()``), worker processes (default:
         ``os.cpu_count()``), or workers of the temporary LocalCluster (default: up to 4).
-        Inside a worker process, nested calls run their tasks one after the other. None takes
-        the count of an enclosing :func:`default_workers`, if any.
+        Inside a task of a pool (thread, worker process or dask worker), nested calls run
+        their tasks one after the other. None takes the count of an enclosing
+        :func:`default_workers`, if any.
     progress : callable, optional
         ``progress(done, total)``, called in the calling thread after each finished task.
 

@@ -13,7 +13,7 @@ import shapely
 from spatial_ev.cli.main import main
 
 FILES = {"design.json", "coverage.csv", "power.csv", "fractions.csv", "layouts.csv",
-         "figures", "design_report.html", "layouts.gpkg"}
+         "selection_stops.csv", "figures", "design_report.html", "layouts.gpkg"}
 TRANSECT = "transect:start=452300,5612900;bearing=90;spacing=15;length=540"
 
 
@@ -68,6 +68,13 @@ class TestDesignCommand:
         printed = capsys.readouterr().out
         assert f"design folder written: {out}" in printed
         assert "power (share of simulations detecting each objective):" in printed
+        # a transect among other layouts: no recommendation speaks of "nan" line length
+        assert "nan" not in printed.lower() and "nan" not in " ".join(record["recommendations"])
+        # plain column headers on the page (the CSV files keep machine names)
+        assert "<th>scale class</th>" in page and "<th>scale_class</th>" not in page
+        stops = pd.read_csv(out / "selection_stops.csv")
+        reasons = ["no global significance", "p > alpha", "ceiling", "exhausted"]
+        assert (stops[reasons].sum(axis=1).round(12) == 1).all()
 
     def test_bad_spec_exit_2_nothing_written(self, demo_run, tmp_path, capsys):
         out = tmp_path / "design"

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from types import SimpleNamespace
-
 import geopandas as gpd
 import numpy as np
 import pandas as pd
@@ -14,11 +12,16 @@ from scipy.spatial.distance import cdist
 from spatial_ev.design.evaluate import layout_basis
 from spatial_ev.design.layouts import CandidateLayout
 from spatial_ev.design.simulate import (
-    _LayoutModel,
-    _owners,
+    band_members,
+    draw_fields,
+    draw_truth,
     environment_at,
+    field_covariance,
+    holm,
     layout_model,
     pilot_model,
+    site_uniforms,
+    stop_category,
 )
 from spatial_ev.errors import InputError
 from spatial_ev.input.survey import Survey
@@ -93,49 +96,183 @@ def spatial_pilot():
                    n_permutations=99, seed=20261202, trend="ignore")
 
 
+def _pilot_layout(pilot):
+    return CandidateLayout("pilot", "pilot", pilot.survey.coords[["x", "y"]], None, {})
+
+
 class TestPilotModel:
-    def test_signal_at_pilot_sites_is_the_fit(self, spatial_pilot):
+    def test_fit_and_class_fields(self, spatial_pilot):
         pilot = spatial_pilot
-        # at the pilot's own sites the generating signal is the least-squares fit of the
-        # transformed community on trend + selected environment + selected vectors
-        # (numpy lstsq as the oracle)
+        # the joint least-squares fit (numpy lstsq as the oracle): each scale class's
+        # field components at the pilot sites rebuild that class's fitted structure, shrunk
+        # by a factor in (0, 1] (the class's adjusted/raw R² ratio)
         model = pilot_model(pilot)
-        lay = CandidateLayout("pilot", "pilot", pilot.survey.coords[["x", "y"]], None, {})
-        basis, _, _ = layout_basis(lay.coords.to_numpy(), "distance")
-        lm, info = layout_model(pilot, model, lay, basis, None)
         Y = pilot.response.to_numpy()
-        parts = []
-        if pilot.trend_kept:
-            parts.append(pilot.survey.coords.to_numpy())
-        if pilot.selected_environment:
-            parts.append(pilot.environment[list(pilot.selected_environment)].to_numpy())
-        parts.append(pilot.basis.vectors[list(pilot.selected_space)].to_numpy())
+        names = list(pilot.selected_space)
+        parts = [pilot.environment[list(pilot.selected_environment)].to_numpy(),
+                 pilot.basis.vectors[names].to_numpy()]
         X = np.column_stack([np.ones(len(Y))] + parts)
         coef, *_ = np.linalg.lstsq(X, Y, rcond=None)
-        assert np.allclose(lm.signal, X @ coef, atol=1e-10)
+        space_coef = coef[1 + parts[0].shape[1]:]
         assert pilot.selected_space and pilot.selected_environment
-        assert all(abs(v - 1.0) < 1e-9 for v in info["class_variance_ratio"].values())
-        # residual rows: the fit's residuals inflated by sqrt((n - 1)/(n - 1 - m))
+        comps = {c.name: c for c in model.components}
+        for fit in pilot.scale_fits:
+            idx = [names.index(v) for v in fit.scale_class.vectors]
+            if not idx:
+                assert fit.scale_class.name not in comps
+                continue
+            structure = parts[1][:, idx] @ space_coef[idx]
+            structure -= structure.mean(axis=0)
+            comp = comps[fit.scale_class.name]
+            rebuilt = comp.pilot_scores @ comp.loadings
+            factor = np.sum(rebuilt * structure) / np.sum(structure ** 2)
+            assert 0 < factor <= 1 + 1e-9
+            assert np.allclose(rebuilt, factor * structure, atol=1e-9)
+            # latent fields have unit variance among the pilot sites
+            assert np.allclose(comp.pilot_scores.var(axis=0, ddof=1), 1.0)
+            lo, hi = comp.band
+            assert 0 < lo < hi < np.inf
         n, m = X.shape[0], X.shape[1] - 1
-        assert np.allclose(model.residuals,
-                           (Y - X @ coef) * np.sqrt((n - 1) / (n - 1 - m)), atol=1e-10)
+        resid = (Y - X @ coef) * np.sqrt((n - 1) / (n - 1 - m))
+        # the independent residual rows are the fit's, inflated, and shrunk by the share moved
+        # into the unselected-structure field
+        shrink = np.sum(model.residuals * resid) / np.sum(resid ** 2)
+        assert np.allclose(model.residuals, shrink * resid, atol=1e-10) and 0 < shrink <= 1
+
+    def test_conditional_truth_keeps_the_pilot_patches(self, spatial_pilot):
+        # conditional simulation (simple kriging on the pilot's structure): at the pilot's
+        # own sites every draw reproduces each class's (shrunk) fitted structure
+        pilot = spatial_pilot
+        model = pilot_model(pilot)
+        lay = _pilot_layout(pilot)
+        basis, _, _ = layout_basis(lay.coords.to_numpy(), "distance")
+        lm, _ = layout_model(pilot, model, lay, basis, None, conditional=True)
+        for seed in (1, 2):
+            truth = draw_truth(lm, model, np.random.default_rng(seed))
+            for comp in model.components:
+                target = comp.pilot_scores @ comp.loadings
+                got = truth["structures"][comp.name]
+                assert np.corrcoef(got.ravel(), target.ravel())[0, 1] > 0.99
+        # unconditional draws do not: two seeds give different landscapes at the pilot sites
+        lm0, _ = layout_model(pilot, model, lay, basis, None)
+        a = draw_truth(lm0, model, np.random.default_rng(1))["structures"]
+        b = draw_truth(lm0, model, np.random.default_rng(2))["structures"]
+        name = model.components[0].name
+        assert abs(np.corrcoef(a[name].ravel(), b[name].ravel())[0, 1]) < 0.9
+
+    def test_environment_local_part(self, pilot):
+        # at pilot sites the environment is the pilot's; one pilot spacing or more away, the
+        # simulated local part has the pilot's leave-one-out inverse-distance error as its
+        # standard deviation (brute force with scipy's cdist as the oracle; an irregular
+        # pilot, so that no two neighbours tie); category indicators get none
+        indicators = {c for cols in pilot.survey.categorical.values() for c in cols}
+        model = pilot_model(pilot)
+        xy = pilot.survey.coords.to_numpy()
+        d = cdist(xy, xy)
+        np.fill_diagonal(d, np.inf)
+        near = np.argsort(d, axis=1)[:, :8]
+        w = 1.0 / np.take_along_axis(d, near, axis=1) ** 2
+        values = pilot.environment.to_numpy()
+        loo = np.einsum("mk,mkc->mc", w / w.sum(1, keepdims=True), values[near])
+        expected = np.sqrt(np.mean((values - loo) ** 2, axis=0))
+        expected[[c in indicators for c in pilot.environment.columns]] = 0.0
+        assert expected.max() > 0
+        got = np.array([model.environment_sd[c] for c in pilot.environment.columns])
+        assert np.allclose(got, expected)
+        far = xy.max(axis=0) + 3 * model.spacing
+        new = np.vstack([xy[:3], far])
+        lay = CandidateLayout("x", "file", pd.DataFrame(new, columns=["x", "y"]), None, {})
+        basis = SimpleBasis(len(new))
+        lm, _ = layout_model(pilot, model, lay, basis, None)
+        assert np.allclose(lm.env_local_sd[:3], 0.0)
+        assert np.allclose(lm.env_local_sd[3], expected)
 
 
-class TestOwners:
-    def test_vectors_go_to_the_structure_they_carry(self):
-        # a vector aligned with one class's structure is attributed to it, whatever its
-        # nominal scale (orthonormal columns from numpy's QR)
+class SimpleBasis:
+    """Only what layout_model reads from a basis: the row index."""
+
+    def __init__(self, n):
+        self.vectors = pd.DataFrame(index=pd.RangeIndex(n))
+
+
+class TestFields:
+    def test_covariance_is_the_band_average_of_j0(self):
+        # [derived] a plane wave of random direction has correlation J0(κh) (Watson 1944,
+        # Bessel Functions §2.2 [memory]); the band's correlation is its average over log λ,
+        # computed with scipy's quad and j0 as the oracle
+        from scipy.integrate import quad
+        from scipy.special import j0
+
+        band = (40.0, 160.0)
+        for h in (0.0, 10.0, 35.0, 90.0):
+            exact = quad(lambda s: j0(2 * np.pi * h / np.exp(s)), np.log(40), np.log(160))[0] \
+                / np.log(4)
+            assert field_covariance(np.array([h]), band)[0] == pytest.approx(exact, abs=2e-3)
+
+    def test_draws_have_that_covariance(self):
+        # Monte Carlo: over 4000 realisations the correlation of the field at two points h
+        # apart matches field_covariance within 3 standard errors (SE ≈ (1 − r²)/√N)
+        from spatial_ev.design.simulate import FieldComponent
+
+        comp = FieldComponent("x", (40.0, 160.0), np.ones((1, 1)), 1.0, np.zeros((1, 1)))
+        xy = np.array([[0.0, 0.0], [25.0, 0.0], [0.0, 60.0]])
         rng = np.random.default_rng(20261202)
-        q, _ = np.linalg.qr(rng.normal(size=(40, 3)) - 0.0)
-        q -= q.mean(axis=0)
-        q, _ = np.linalg.qr(q)
-        load = rng.normal(size=(1, 5))
-        parts = {"broad": np.outer(q[:, 0], load[0]), "fine": np.outer(q[:, 2], load[0])}
-        vec = pd.DataFrame(q, columns=["sv001", "sv002", "sv003"])
-        lay = _LayoutModel("x", np.zeros((40, 5)), pd.DataFrame({"x": q[:, 0], "y": q[:, 1]}),
-                           None, SimpleNamespace(vectors=vec), None, None, parts)
-        assert _owners(lay, vec, ("sv003", "sv001")) == ["fine", "broad"]
-        assert _owners(lay, vec, ()) == []
+        draws = np.array([draw_fields((comp,), rng, xy)[0][:, 0] for _ in range(4000)])
+        assert draws.var(axis=0).mean() == pytest.approx(1.0, abs=0.08)
+        for j, h in ((1, 25.0), (2, 60.0)):
+            r = np.corrcoef(draws[:, 0], draws[:, j])[0, 1]
+            expected = field_covariance(np.array([h]), comp.band)[0]
+            assert abs(r - expected) < 3 * (1 - expected ** 2) / np.sqrt(4000) + 0.01
+
+    def test_common_random_numbers_site_by_site(self):
+        # the same generator gives the same landscape, so a site shared by two layouts gets
+        # the same field value and the same site-keyed noise whatever the other sites
+        from spatial_ev.design.simulate import FieldComponent
+
+        comp = FieldComponent("x", (40.0, 160.0), np.ones((2, 3)), 1.3, np.zeros((1, 2)))
+        a = np.array([[5.0, 5.0], [100.0, 20.0]])
+        b = np.array([[300.0, 1.0], [7.0, 9.0], [5.0, 5.0]])
+        fa = draw_fields((comp,), np.random.default_rng(3), a)[0]
+        fb = draw_fields((comp,), np.random.default_rng(3), b)[0]
+        assert np.array_equal(fa[0], fb[2])
+        ua, ub = site_uniforms(a, 11, 4, 1e-6), site_uniforms(b, 11, 4, 1e-6)
+        assert np.array_equal(ua[0], ub[2]) and not np.array_equal(ua[0], ua[1])
+        assert not np.array_equal(site_uniforms(a, 12, 4, 1e-6), ua)
+        # uniform: mean 1/2, variance 1/12 over many sites (Kolmogorov–Smirnov with scipy)
+        from scipy import stats
+
+        many = site_uniforms(np.random.default_rng(0).uniform(0, 1e3, (5000, 2)), 5, 1, 1e-6)
+        assert stats.kstest(many[:, 0], "uniform").pvalue > 0.001
+
+
+class TestDetectionPieces:
+    def test_holm_matches_statsmodels(self):
+        # Holm 1979 step-down adjustment, statsmodels' multipletests as the oracle
+        from statsmodels.stats.multitest import multipletests
+
+        p = {"broad": 0.001, "medium": 0.04, "fine": 0.03, "none": None}
+        got = holm(p)
+        expected = multipletests([0.001, 0.04, 0.03], method="holm")[1]
+        assert np.allclose([got["broad"], got["medium"], got["fine"]], expected)
+        assert got["none"] is None
+
+    def test_members_by_their_own_scale(self):
+        # a selected vector belongs to the band its own scale falls in, whatever structure
+        # it carries (bounds: lower < scale <= upper)
+        scale = pd.Series({"sv001": 400.0, "sv002": 150.0, "sv003": 60.0, "sv004": 120.0})
+        bands = {"broad": (150.0, np.inf), "medium": (80.0, 150.0), "fine": (0.0, 80.0)}
+        got = band_members(scale, ["sv003", "sv001", "sv002", "sv004"], bands)
+        assert got == {"broad": ["sv001"], "medium": ["sv002", "sv004"], "fine": ["sv003"]}
+
+    def test_stop_categories(self):
+        from spatial_ev.selection.forward import forward_selection
+
+        rng = np.random.default_rng(20261202)
+        x = pd.DataFrame(rng.normal(size=(40, 3)), columns=["a", "b", "c"])
+        y = np.column_stack([x["a"] * 2 + rng.normal(size=40), rng.normal(size=40)])
+        sel = forward_selection(y, x, n_permutations=99, seed=1)
+        assert stop_category(sel) in ("p > alpha", "ceiling")
+        assert stop_category(None) == "no global significance"
 
 
 class TestSimulatorRunsThePipeline:

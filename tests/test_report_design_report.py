@@ -123,6 +123,17 @@ class TestRenderDesignReport:
             render_design_report({"power": None})
 
 
+class TestPlainHeaders:
+    def test_no_machine_names(self):
+        from spatial_ev.report.design_report import plain_header
+
+        for name in ("scale_class", "mc_se", "n_sites", "layout_vectors", "space_stop",
+                     "environment_only", "ci_low"):
+            assert "_" not in plain_header(name)
+        assert plain_header("mc_se") == "Monte Carlo SE"
+        assert plain_header("power") == "power"
+
+
 class TestLayerName:
     def test_plain_identifier(self):
         assert layer_name(3, "transect:start=1,2;bearing=45") == \

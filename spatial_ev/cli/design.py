@@ -76,6 +76,10 @@ def configure(parser: argparse.ArgumentParser) -> None:
                           "(default) or the nominal alpha")
     sim.add_argument("--reference", choices=("pilot", "none"), default="pilot",
                      help="also evaluate the pilot layout as a reference (default) or not")
+    sim.add_argument("--truth", choices=("unconditional", "conditional"),
+                     default="unconditional",
+                     help="simulated landscapes: new ones like the pilot's each time "
+                          "(default), or with the pilot's patches fixed in place")
     sim.add_argument("--seed", type=int, default=None, metavar="N",
                      help="seed of the simulations (default: drawn and recorded)")
     ex = parser.add_argument_group("execution and output")
@@ -218,7 +222,8 @@ def execute(args: argparse.Namespace) -> int:
             pilot, list(args.layout), n_simulations=args.simulations,
             n_permutations=args.permutations, target_power=args.target_power,
             space_level=args.space_level, environment_layer=_environment_layer(args, crs),
-            area=_area(args, crs), reference=args.reference, seed=args.seed,
+            area=_area(args, crs), reference=args.reference, truth=args.truth,
+            seed=args.seed,
             engine=args.engine, scheduler=args.scheduler, n_workers=args.workers,
             progress=progress.step)
         write_design_folder(evaluation, args.out, pilot=pilot, overwrite=args.overwrite,

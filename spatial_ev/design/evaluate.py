@@ -8,33 +8,40 @@ analysis behind the caller's back):
 1. **Spectral coverage** (:func:`spectral_coverage`). Each layout gets its own spatial basis
    under the *pilot's chosen weighting scheme* (distance-based MEM when the pilot chose none,
    or when that graph cannot be built on the layout, e.g. Delaunay on a straight transect —
-   the table says which). The basis's vector scales (equivalent wavelengths, map units) give
-   the broadest and finest scale the layout represents and the number of vectors in each of
-   the pilot's scale classes. Rule: a class is **resolved** when the layout has at least as
-   many vectors inside the class bounds as the pilot selected there (and at least one);
-   **partly** when it has some but fewer; **not resolved** when it has none. Extent sets the
-   broadest wavelength (≈ 2 × extent) and spacing the finest (≈ 2–4 sampling intervals,
-   Nyquist-type reasoning [practice]).
+   the table says which). Its resolvable range: the finest scale is the 5 % quantile of its
+   vector scales, the broadest twice the long side of its extent
+   (:func:`~spatial_ev.space.scales.resolvable_scales`). For each pilot scale class a field
+   with the class's wavelengths is sampled at the layout (:func:`band_shares`): the share of
+   its variation on the layout's vectors whose scale lies in the class's band is *carried*,
+   the share on its other vectors *aliased*. A class is **resolved** when its own band holds
+   the largest share of what the basis captures, **partly** when it holds at least a quarter
+   but another band holds more, **not resolved** otherwise or without a vector in the band.
+   Extent sets the broadest wavelength (≈ 2 × extent) and spacing the finest (≈ 2–4 sampling
+   intervals, Nyquist-type reasoning [practice]).
 
-2. **Simulated power** (:func:`evaluate_design`). The pilot's fitted model is the truth: the
-   transformed community is regressed jointly on the kept trend (coordinates), the selected
-   environmental variables and the selected spatial vectors; at a layout's sites the signal is
-   the trend at the new coordinates + the environmental coefficients × the environment there
-   + each scale class's coefficients × the pilot vectors extended to the new points
-   (:meth:`SpatialBasis.extend`, Nyström). The environment at new sites comes from a
-   user-supplied vector layer (nearest feature; a raster is not read) or, by default, is
-   interpolated from the pilot sites (inverse-distance weighting of the 8 nearest sites,
-   power 2, nearest site for category indicators). Residual variation: whole rows of the
-   pilot residuals resampled with replacement (keeps the species' covariance) and inflated
-   by √((n − 1)/(n − 1 − m)) for the m fitted terms. Each simulated table is analysed by the
-   pipeline's own named steps (:mod:`spatial_ev.pipeline.steps`): trend test, forward
-   selection of environmental variables (global test, double stopping), selection of the
-   layout's spatial vectors under one scheme (global test at the pilot's Šidák-corrected
-   level by default, because next season's analysis will again compare schemes; then double
-   stopping), variation partition with tests of the unique fractions, and detection of each
-   scale class by the partial test of its selected vectors. Without candidate environmental
-   variables at a layout the environment's fractions are zero by construction. Simulations
-   are on the transformed scale (no counts are drawn).
+2. **Simulated power** (:func:`evaluate_design`). The pilot's fitted model becomes a generator
+   of continuous landscapes in map units (:mod:`spatial_ev.design.simulate`): the kept trend;
+   the selected environmental variables (at new sites: interpolated from the pilot sites by
+   inverse-distance weighting, 8 nearest, power 2, plus a simulated local part with the
+   pilot's leave-one-out interpolation error; or read from a vector layer); per scale class,
+   stationary Gaussian random fields with wavelengths in the class's band, the class's
+   species loadings and its variance among the pilot sites (shrunk by the class's
+   adjusted/raw R²); residual structure on the unselected vectors beyond chance as one more
+   field; and spatially independent residual rows of the pilot (inflated by
+   √((n − 1)/(n − 1 − m)) for the m fitted terms). Unconditional simulation (default) draws a
+   new landscape each time; conditional simulation keeps the pilot's patches in place.
+   Replicate r draws the same landscape at every layout (common random numbers; site-keyed
+   noise is the same at a site shared by two layouts), so layouts are compared paired. Each
+   simulated table is analysed by the pipeline's own named steps
+   (:mod:`spatial_ev.pipeline.steps`): trend test, forward selection of environmental
+   variables (global test, double stopping), selection of the layout's spatial vectors under
+   one scheme (global test at the pilot's Šidák-corrected level by default, because next
+   season's analysis will again compare schemes; then double stopping), variation partition
+   with tests of the unique fractions, and detection of each scale class. Why each selection
+   stopped is recorded (:attr:`DesignEvaluation.stops`); when the ceiling of the double
+   stopping rule ends more than half of a layout's spatial selections a warning gives the
+   share and the pilot layout's re-detection rates. Simulations are on the transformed scale
+   (no counts are drawn).
 
 Permutations. Every test uses ``n_permutations`` (default 199). A rejection rate at α = 0.05
 needs p-values accurate near 0.05: with N = 199 the Monte Carlo standard error of a p-value of
@@ -47,25 +54,20 @@ p = 0.001 would fail 18 % of the time (1 − 0.999^199) and power would be under
 test therefore uses max(N, ⌈4/α'⌉ − 1) permutations (783 for α' = 0.0051: up to three
 exceedances still reject, and a true p of 0.001 rejects 96 % of the time).
 
-Detection of a scale class at a layout: each spatial vector selected in a simulated analysis
-is attributed to the pilot class whose generating structure it carries most of (share
-‖F_cᵀu‖² of the class's structure F_c at the layout's sites); the class is detected when it
-has at least one such vector and their partial test (given the other selected vectors and the
-trend) has p ≤ α. Attribution goes by the structure carried rather than by the vector's
-nominal scale because scale estimates differ between bases: a denser layout's basis labels the
-same wave finer, which would credit it with a "finer" class it only resolves at the broader
-scale. Classes without selected pilot vectors carry no structure and are never detected.
+Detection of a scale class at a layout: the layout's selected vectors whose own scale lies in
+the class's band are tested jointly, given the other selected vectors and the trend; the
+class is detected when that p, Holm-adjusted across the classes, is ≤ α. A layout is
+recommended for a class only if it resolves it; a layout that reaches the target power for a
+class it does not resolve is reported as aliasing (broader or finer vectors picking up the
+structure), never recommended for it.
 
 Assumptions, stated in every result: the pilot model is right (linear effects of the selected
-variables, the selected spatial structure is the real one); stationarity (the structure seen
-in the pilot area holds wherever the layout samples, and the extension of fine vectors
-between pilot sites shrinks them toward zero); residuals spatially independent; interpolated
-environment is smoother than the real one (local variation between pilot sites is lost, so
-environmental power away from pilot sites is pessimistic). Power refers to this model's effect
-sizes.
+variables; each class's structure a stationary field with the class's wavelengths);
+stationarity over the layouts' area; residuals independent beyond the simulated fields. Power
+refers to this model's effect sizes.
 
-Seeds: one seed → ``SeedSequence(seed).spawn(n_layouts)``, each layout's sequence spawns one
-child per simulation; results are identical on any engine and number of workers.
+Seeds: one seed → ``SeedSequence(seed).spawn(n_simulations)``, one sequence per replicate,
+shared by every layout; results are identical on any engine and number of workers.
 """
 
 from __future__ import annotations
@@ -118,13 +120,19 @@ class SpectralCoverage:
     ----------
     layouts : DataFrame
         One row per layout (index ``layout``): ``kind``, ``n_sites``, ``line_length``,
-        ``scheme`` (the basis built), ``n_vectors``, ``broadest_scale``, ``finest_scale``
-        (map units), ``note``.
+        ``scheme`` (the basis built), ``n_vectors``, ``broadest_scale`` (twice the layout's
+        long side, :func:`~spatial_ev.space.scales.extent_wavelength`), ``finest_scale`` (the
+        5 % quantile of the basis's vector scales), map units, ``note``.
     classes : DataFrame
         One row per (layout, pilot scale class): ``layout``, ``scale_class``, ``lower``,
         ``upper`` (map units), ``pilot_significant`` (bool), ``pilot_vectors`` (selected in
-        the pilot), ``layout_vectors`` (layout basis vectors inside the bounds), ``status``
-        (``"resolved"``, ``"partly"``, ``"not resolved"``).
+        the pilot), ``layout_vectors`` (layout basis vectors inside the bounds), ``carried``
+        and ``aliased`` (expected share of a field in the class's band on the layout's
+        in-band and other vectors, :func:`band_shares`), ``status`` (``"resolved"``: the
+        class's own band holds the largest share of what the basis captures and at least a
+        quarter of it; ``"partly"``: at least a quarter, but another band holds more; ``"not
+        resolved"``: less, or no vector in the band — the structure is aliased onto other
+        scales).
     bases : dict
         Layout name → its :class:`~spatial_ev.space.eigen.SpatialBasis`.
     """
@@ -194,10 +202,57 @@ def _pilot_classes(pilot: Analysis) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def _status(count: int, need: int) -> str:
-    if count == 0:
+#: least share of the class structure a layout's basis captures that must lie on its in-band
+#: vectors for the class to count as (partly) resolved; the rest is aliased onto other scales
+PARTLY_SHARE = 0.25
+_COVERAGE_FEATURES = 512
+
+
+def _status(count: int, name: str, shares: dict) -> str:
+    """Resolved: the class's own band holds the largest share of what the basis captures of
+    its structure and at least PARTLY_SHARE of it; partly: at least PARTLY_SHARE but another
+    band holds more; not resolved: less, or no vector in the band (aliased)."""
+    captured = sum(shares.values())
+    in_band = shares[name] / captured if captured > 0 else 0.0
+    if count == 0 or not in_band >= PARTLY_SHARE:
         return "not resolved"
-    return "resolved" if count >= max(1, need) else "partly"
+    return "resolved" if shares[name] >= max(shares.values()) else "partly"
+
+
+def band_shares(basis: Any, coords: Any, band: tuple[float, float],
+                vector_bands: dict, *, seed: int = 0) -> dict:
+    """Expected share of a band-limited field carried by a basis's vectors of each scale band.
+
+    A stationary field with wavelengths log-uniform in ``band`` (as the simulated truth of a
+    scale class) is sampled at the layout's sites; the share of its variation among the sites
+    that lies on the basis's vectors whose scale falls in each of ``vector_bands`` (name →
+    (lower, upper], map units) is estimated from 512 random waves, a fixed sample so tables
+    repeat. What no vector carries (structure finer than the layout's positive-I vectors)
+    is in none of the shares.
+
+    Examples
+    --------
+    >>> basis, _, _ = layout_basis(xy, "distance")  # doctest: +SKIP
+    >>> band_shares(basis, xy, (40.0, 80.0), {"fine": (0, 80.0), "broad": (80.0, np.inf)})
+    ... # doctest: +SKIP
+    {'fine': 0.61, 'broad': 0.12}
+    """
+    from spatial_ev.design.simulate import band_wavelengths
+
+    xy = np.asarray(coords, dtype=float)
+    xy = xy - xy.mean(axis=0)
+    rng = np.random.default_rng(seed)
+    lam = band_wavelengths(band, rng.random(_COVERAGE_FEATURES))
+    theta = rng.uniform(0, 2 * np.pi, _COVERAGE_FEATURES)
+    phase = rng.uniform(0, 2 * np.pi, _COVERAGE_FEATURES)
+    waves = np.cos(xy @ (2 * np.pi / lam * np.vstack([np.cos(theta), np.sin(theta)])) + phase)
+    waves -= waves.mean(axis=0)
+    total = float(np.sum(waves ** 2))
+    u = basis.vectors.to_numpy()
+    s = basis.scale.to_numpy()
+    share = np.sum((u.T @ waves) ** 2, axis=1) / total
+    return {name: float(share[(s > lo) & (s <= hi)].sum())
+            for name, (lo, hi) in vector_bands.items()}
 
 
 def spectral_coverage(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *,
@@ -230,24 +285,34 @@ def spectral_coverage(pilot: Analysis, layouts: Sequence[CandidateLayout | str],
 
 
 def _coverage(pilot: Analysis, built: list[CandidateLayout]) -> SpectralCoverage:
+    from spatial_ev.design.simulate import class_band
+    from spatial_ev.space.scales import resolvable_scales
+
     classes = _pilot_classes(pilot)
+    bands = {r.scale_class: (r.lower, r.upper) for r in classes.itertuples()}
     scheme = pilot.settings.chosen_scheme
     rows, crow, bases = [], [], {}
     for lay in built:
-        basis, used, note = layout_basis(lay.coords.to_numpy(), scheme)
+        xy = lay.coords.to_numpy()
+        basis, used, note = layout_basis(xy, scheme)
         bases[lay.name] = basis
         scale = basis.scale.to_numpy()
+        finest, broadest = resolvable_scales(basis.scale, xy)
         rows.append({"layout": lay.name, "kind": lay.kind, "n_sites": lay.n_sites,
                      "line_length": lay.line_length, "scheme": used,
-                     "n_vectors": basis.n_vectors, "broadest_scale": float(scale.max()),
-                     "finest_scale": float(scale.min()),
+                     "n_vectors": basis.n_vectors, "broadest_scale": broadest,
+                     "finest_scale": finest,
                      "note": "; ".join(t for t in (lay.note, note) if t)})
         for c in classes.itertuples():
             count = int(np.count_nonzero((scale > c.lower) & (scale <= c.upper)))
+            shares = band_shares(basis, xy, class_band(pilot, c.scale_class), bands)
+            carried = shares[c.scale_class]
+            aliased = sum(shares.values()) - carried
             crow.append({"layout": lay.name, "scale_class": c.scale_class, "lower": c.lower,
                          "upper": c.upper, "pilot_significant": c.pilot_significant,
                          "pilot_vectors": c.pilot_vectors, "layout_vectors": count,
-                         "status": _status(count, c.pilot_vectors)})
+                         "carried": carried, "aliased": aliased,
+                         "status": _status(count, c.scale_class, shares)})
     return SpectralCoverage(pd.DataFrame(rows).set_index("layout"), pd.DataFrame(crow), bases)
 
 
@@ -308,7 +373,10 @@ class DesignSettings:
     pilot_seed : int
     engine : str
     layout_diagnostics : dict
-        Layout name → diagnostics (variables constant there, variance ratios).
+        Layout name → diagnostics (variables constant there, share of sites with a
+        simulated local environment).
+    truth : {"unconditional", "conditional"}
+        How the simulated landscapes relate to the pilot.
 
     Examples
     --------
@@ -331,6 +399,7 @@ class DesignSettings:
     pilot_seed: int
     engine: str
     layout_diagnostics: dict = field(repr=False)
+    truth: str = "unconditional"
 
     def __getitem__(self, name: str) -> Any:
         """Read-only lookup by name (``settings["seed"]``), as in ``design.json``."""
@@ -371,6 +440,10 @@ class DesignEvaluation:
         source, residual model, scheme).
     notes : tuple of str
         Assumptions and per-layout remarks.
+    stops : DataFrame
+        Per layout and selection (``space``, ``environment``): the share of simulations whose
+        selection stopped for each reason (``no global significance``, ``p > alpha``,
+        ``ceiling``, ``exhausted``).
     """
 
     layouts: tuple[CandidateLayout, ...]
@@ -381,6 +454,7 @@ class DesignEvaluation:
     recommendations: tuple[str, ...]
     settings: DesignSettings
     notes: tuple[str, ...]
+    stops: pd.DataFrame = field(default_factory=pd.DataFrame, repr=False)
 
     def to_frame(self) -> pd.DataFrame:
         """The power table."""
@@ -416,7 +490,11 @@ class DesignEvaluation:
                 "layouts": clean(self.coverage.layouts),
                 "coverage": clean(self.coverage.classes),
                 "power": clean(self.power), "fractions": clean(self.fractions),
+                "selection_stops": clean(self.stops),
                 "recommendations": list(self.recommendations), "notes": list(self.notes)}
+
+
+TRUTHS = ("unconditional", "conditional")
 
 
 def _check_evaluate(n_simulations, n_permutations, alpha_target, space_level, seed, engine):
@@ -424,7 +502,7 @@ def _check_evaluate(n_simulations, n_permutations, alpha_target, space_level, se
     n_permutations = check_int("n_permutations", n_permutations, low=19)
     target = check_real("target_power", alpha_target, low=0, high=1, low_inclusive=False)
     space_level = check_option("space_level", space_level, SPACE_LEVELS)
-    check_option("engine", engine, ["local", "dask"])
+    check_option("engine", engine, ["local", "processes", "dask"])
     if seed is None:
         seed = int(np.random.SeedSequence().entropy % (2 ** 32))
     elif not isinstance(seed, (int, np.integer)) or isinstance(seed, bool) or seed < 0:
@@ -437,7 +515,8 @@ def evaluate_design(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *
                     n_simulations: int = 100, n_permutations: int = 199,
                     target_power: float = 0.8, space_level: str = "corrected",
                     environment_layer: Any = None, area: Any = None,
-                    reference: str = "pilot", seed: int | None = None,
+                    reference: str = "pilot", truth: str = "unconditional",
+                    seed: int | None = None,
                     engine: str = "local", scheduler: Any = None, n_workers: int | None = None,
                     progress: Callable[[int, int], Any] | None = None) -> DesignEvaluation:
     """Spectral coverage and simulated power of candidate sampling layouts.
@@ -465,8 +544,13 @@ def evaluate_design(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *
     reference : {"pilot", "none"}
         ``"pilot"``: also evaluate the pilot layout as sampled (named ``"pilot"``), the
         baseline the candidates are compared with; ``"none"``: only the candidates.
+    truth : {"unconditional", "conditional"}
+        ``"unconditional"`` (default): every simulation draws a new landscape like the
+        pilot's ("a structure like this next season"); ``"conditional"``: the class
+        structures are fixed at the pilot sites ("the same patches, in place").
     seed : int, optional
-        One seed for every simulation (drawn and recorded when omitted).
+        One seed for every simulation (drawn and recorded when omitted); replicate r uses
+        the same landscape at every layout.
     engine, scheduler, n_workers :
         Where simulations run (:func:`spatial_ev.inference.engines.run_tasks`): local threads or dask.
     progress : callable, optional
@@ -487,6 +571,7 @@ def evaluate_design(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *
     n_simulations, n_permutations, target, space_level, seed = _check_evaluate(
         n_simulations, n_permutations, target_power, space_level, seed, engine)
     reference = check_option("reference", reference, ["pilot", "none"])
+    truth = check_option("truth", truth, TRUTHS)
     pilot, built = _check_pilot_layouts(pilot, layouts, area, seed)
     if reference == "pilot" and "pilot" not in [b.name for b in built]:
         built = [CandidateLayout("pilot", "pilot", pilot.survey.coords[["x", "y"]].copy(), None,
@@ -504,21 +589,24 @@ def evaluate_design(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *
     models, infos = [], {}
     for lay in built:
         lm, infos[lay.name] = layout_model(pilot, model, lay, coverage.bases[lay.name],
-                                            environment_layer)
+                                            environment_layer,
+                                            conditional=truth == "conditional")
         models.append(lm)
     classes = _pilot_classes(pilot)
     global_permutations = max(n_permutations, math.ceil(4 / level) - 1)
     settings = SimulationSettings(alpha, level, n_permutations, global_permutations,
                                   pilot.settings.trend, tuple(pilot.settings.scale_breaks),
-                                  tuple(classes["scale_class"]), model.residuals)
-    layout_seqs = np.random.SeedSequence(seed).spawn(len(built))
-    tasks = [(i, child) for i, s in enumerate(layout_seqs) for child in s.spawn(n_simulations)]
+                                  tuple(classes["scale_class"]), model)
+    # common random numbers: replicate r draws the same landscape at every layout
+    replicates = np.random.SeedSequence(seed).spawn(n_simulations)
+    tasks = [(i, rep) for i in range(len(built)) for rep in replicates]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SpatialEVWarning)
         results = run_tasks(Simulator(models, settings), tasks, engine=engine,
                             scheduler=scheduler, n_workers=n_workers, progress=progress)
     sims = _simulation_frame(built, results, n_simulations)
-    power, fractions = _power_tables(pilot, built, sims, classes)
+    power, fractions = _power_tables(pilot, built, sims, classes, coverage)
+    stops = _stop_table(sims)
     env_source = next((i["environment_source"] for i in infos.values()
                        if "environment_source" in i), "no environmental table")
     settings_out = DesignSettings(
@@ -526,16 +614,18 @@ def evaluate_design(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *
         global_space_permutations=global_permutations, alpha=alpha, space_level=space_level,
         space_test_level=level, target_power=target, scheme=pilot.settings.chosen_scheme,
         scale_breaks=tuple(pilot.settings.scale_breaks), environment_source=env_source,
-        residual_model=f"pilot residual rows resampled with replacement, inflated by "
-                       f"{model.inflate:.4f}; spatially independent",
+        residual_model=_residual_text(model), truth=truth,
         pilot_seed=pilot.settings.seed, engine=engine,
         layout_diagnostics={k: {kk: vv for kk, vv in v.items() if kk != "environment_source"}
                             for k, v in infos.items()})
+    ceiling_notes = _ceiling_notes(power, stops)
+    for text in ceiling_notes:
+        warnings.warn(text, SpatialEVWarning, stacklevel=2)
     return DesignEvaluation(tuple(built), coverage, power, fractions, sims,
                             tuple(_recommend(power, coverage, target, classes, built)),
                             settings_out,
                             tuple([n for n in pilot.notes if n.startswith("The rebuilt pilot")]
-                                  + _notes(infos)))
+                                  + ceiling_notes + _notes(infos, truth)), stops)
 
 
 def _simulation_frame(built, results, n_sim) -> pd.DataFrame:
@@ -543,19 +633,52 @@ def _simulation_frame(built, results, n_sim) -> pd.DataFrame:
     for k, res in enumerate(results):
         lay = built[k // n_sim]
         row = {"layout": lay.name, "replicate": k % n_sim, **res["detected"],
-               "n_environment": res["n_environment"], "n_space": res["n_space"]}
+               "n_environment": res["n_environment"], "n_space": res["n_space"],
+               "space_stop": res["space_stop"], "environment_stop": res["environment_stop"]}
         row.update({f"estimate_{f}": v for f, v in zip(_FRACTIONS, res["estimate"])})
         row.update({f"truth_{f}": v for f, v in zip(_FRACTIONS, res["truth"])})
+        row.update({f"carried_{c}": v for c, v in res["carried"].items()})
+        row.update({f"aliased_{c}": v for c, v in res["aliased"].items()})
         rows.append(row)
     return pd.DataFrame(rows)
 
 
-def _power_tables(pilot: Analysis, built, sims, classes) -> tuple[pd.DataFrame, pd.DataFrame]:
+STOP_REASONS = ("no global significance", "p > alpha", "ceiling", "exhausted")
+
+
+def _stop_table(sims: pd.DataFrame) -> pd.DataFrame:
+    rows = []
+    for name, part in sims.groupby("layout", sort=False):
+        for what in ("space", "environment"):
+            counts = part[f"{what}_stop"].value_counts()
+            rows.append({"layout": name, "selection": what,
+                         **{r: float(counts.get(r, 0)) / len(part) for r in STOP_REASONS}})
+    return pd.DataFrame(rows)
+
+
+def _ceiling_notes(power: pd.DataFrame, stops: pd.DataFrame) -> list[str]:
+    """A warning per layout where the ceiling ended most spatial selections."""
+    out = []
+    pilot = power[(power["layout"] == "pilot") & power["pilot_significant"]]
+    rates = ", ".join(f"{r.objective}: {r.power:.2f}" for r in pilot.itertuples())
+    for r in stops[stops["selection"] == "space"].itertuples():
+        share = getattr(r, "ceiling")
+        if share > 0.5:
+            out.append(f"{r.layout}: the adjusted-R² ceiling stopped the spatial selection in "
+                       f"{share:.0%} of the simulations, so power there may be understated"
+                       + (f"; the pilot layout re-detects what the pilot found at rates "
+                          f"{rates}" if rates else "") + ".")
+    return out
+
+
+def _power_tables(pilot: Analysis, built, sims, classes,
+                  coverage: SpectralCoverage) -> tuple[pd.DataFrame, pd.DataFrame]:
     objectives = ["environment"] + [f"scale:{c}" for c in classes["scale_class"]]
     sig = {f"scale:{r.scale_class}": r.pilot_significant for r in classes.itertuples()}
     env_p = (pilot.fraction_tests or {}).get("environment_only")
     sig["environment"] = bool(pilot.selected_environment) and env_p is not None \
         and env_p <= pilot.settings.alpha
+    status = coverage.classes.set_index(["layout", "scale_class"])["status"]
     prow, frow = [], []
     pilot_fr = pilot.fractions or {}
     for lay in built:
@@ -564,9 +687,14 @@ def _power_tables(pilot: Analysis, built, sims, classes) -> tuple[pd.DataFrame, 
         for obj in objectives:
             p = float(part[obj].mean()) if obj in part else 0.0
             low, high = _wilson(p, m)
+            klass = obj[6:] if obj.startswith("scale:") else None
+            carried = (float(part[f"carried_{klass}"].mean())
+                       if klass and f"carried_{klass}" in part else np.nan)
             prow.append({"layout": lay.name, "objective": obj, "pilot_significant": sig[obj],
                          "power": p, "mc_se": math.sqrt(p * (1 - p) / m), "ci_low": low,
-                         "ci_high": high,
+                         "ci_high": high, "resolution": (status[(lay.name, klass)] if klass
+                                                         else "n/a"),
+                         "carried": carried,
                          "n_sites": lay.n_sites, "line_length": lay.line_length})
         for f in _FRACTIONS:
             est, tru = part[f"estimate_{f}"], part[f"truth_{f}"]
@@ -577,6 +705,15 @@ def _power_tables(pilot: Analysis, built, sims, classes) -> tuple[pd.DataFrame, 
     return pd.DataFrame(prow), pd.DataFrame(frow)
 
 
+def _residual_text(model) -> str:
+    text = (f"pilot residual rows (inflated by {model.inflate:.4f}) drawn per site from its "
+            "position; spatially independent")
+    if any(c.name == "unselected" for c in model.components):
+        text += ("; residual structure on the unselected vectors beyond chance simulated as a "
+                 "field over the pilot's wavelengths")
+    return text
+
+
 def _wilson(p: float, m: int, z: float = 1.959964) -> tuple[float, float]:
     """Wilson score 95 % interval of a proportion p from m simulations (Wilson 1927, J. Am.
     Stat. Assoc. 22:209–212); unlike ±2 SE it stays informative at p = 0 or 1."""
@@ -585,8 +722,16 @@ def _wilson(p: float, m: int, z: float = 1.959964) -> tuple[float, float]:
     return max(0.0, min(p, centre - half)), min(1.0, max(p, centre + half))
 
 
+def _line_text(length) -> str:
+    """", L map units of line" for a transect, "" otherwise (None or NaN from mixed tables)."""
+    if length is None or not isinstance(length, (int, float)) or not math.isfinite(length) \
+            or length <= 0:
+        return ""
+    return f", {length:.4g} map units of line"
+
+
 def _recommend(power, coverage, target, classes, built) -> list[str]:
-    cost = {b.name: (b.n_sites, b.line_length or 0.0) for b in built}
+    cost = {b.name: (b.n_sites, _finite(b.line_length)) for b in built}
     bounds = {f"scale:{r.scale_class}": (r.lower, r.upper) for r in classes.itertuples()}
     finest = {f"scale:{r.scale_class}": r.finest_selected for r in classes.itertuples()}
     out = []
@@ -595,20 +740,29 @@ def _recommend(power, coverage, target, classes, built) -> list[str]:
             continue
         if obj == "environment":
             label = "the environmental fraction"
+            usable = part
         else:
             lo, hi = bounds[obj]
             label = (f"the {obj[6:]} scale class ({lo:.4g}–"
                      f"{'∞' if not math.isfinite(hi) else f'{hi:.4g}'} map units)")
-        ok = part[part["power"] >= target]
+            usable = part[part["resolution"] == "resolved"]
+            aliased = part[(part["resolution"] != "resolved") & (part["power"] >= target)]
+            for r in aliased.itertuples():
+                out.append(f"{r.layout!r} reaches power {r.power:.2f} for {label} but does not "
+                           f"resolve it ({r.resolution}: its vectors in that band carry "
+                           f"{r.carried:.0%} of such structure); detections come from "
+                           f"vectors of other scales picking up aliased structure, so it is "
+                           f"not recommended for this class.")
+        ok = usable[usable["power"] >= target]
         if len(ok):
             best = min(ok.itertuples(), key=lambda r: cost[r.layout])
-            extra = f", {best.line_length:.4g} map units of line" if best.line_length else ""
             out.append(f"To detect {label} with power ≥ {target:g} you need {best.layout!r} "
-                       f"({best.n_sites} sites{extra}; estimated power {best.power:.2f}, "
-                       f"95 % interval {best.ci_low:.2f}–{best.ci_high:.2f}), the cheapest "
-                       f"candidate that reaches it.")
+                       f"({best.n_sites} sites{_line_text(best.line_length)}; estimated power "
+                       f"{best.power:.2f}, 95 % interval {best.ci_low:.2f}–{best.ci_high:.2f}),"
+                       f" the cheapest candidate that resolves it and reaches it.")
         else:
-            top = part.loc[part["power"].idxmax()]
+            pool = usable if len(usable) else part
+            top = pool.loc[pool["power"].idxmax()]
             hint = "more sites over the same extent, or stronger replication"
             wave = finest.get(obj)
             if obj != "environment" and wave is not None and math.isfinite(wave):
@@ -616,7 +770,8 @@ def _recommend(power, coverage, target, classes, built) -> list[str]:
                         f"this class matters (its pilot structure reaches wavelengths of "
                         f"{wave:.4g}; the finest resolvable wavelength is ≈ 2–4 sampling "
                         f"intervals), or more sites over the same extent")
-            out.append(f"To detect {label} with power ≥ {target:g}: none of the candidates "
+            which = "resolving candidates" if len(usable) else "candidates (none resolves it)"
+            out.append(f"To detect {label} with power ≥ {target:g}: none of the {which} "
                        f"(best {top['layout']!r}, power {top['power']:.2f}); consider {hint}.")
     if not out:
         out.append("The pilot detected no environmental fraction or scale class, so there is "
@@ -624,22 +779,26 @@ def _recommend(power, coverage, target, classes, built) -> list[str]:
     return out
 
 
-def _notes(infos) -> list[str]:
+def _finite(value) -> float:
+    return float(value) if isinstance(value, (int, float)) and math.isfinite(value) else 0.0
+
+
+def _notes(infos, truth: str = "unconditional") -> list[str]:
     notes = ["Simulations assume the pilot model is right (linear effects of the selected "
-             "variables and vectors), stationarity of the spatial structure over the layouts' "
-             "area, and spatially independent residuals; power is for this model's effect "
-             "sizes and would be lower for weaker effects.",
-             "Environment at new sites is interpolated or read from a layer, with error "
-             "that the simulation does not include; interpolation smooths away local "
-             "variation, which makes environmental power at new sites pessimistic."]
+             "variables, each scale class's structure a stationary field with the class's "
+             "wavelengths, species loadings and variance), stationarity over the layouts' "
+             "area, and spatially independent residuals beyond the simulated fields; power "
+             "is for this model's effect sizes and would be lower for weaker effects.",
+             ("Unconditional simulation: each simulated survey samples a new landscape with "
+              "the pilot's structure (a structure like this next season), the same landscape "
+              "at every layout." if truth == "unconditional" else
+              "Conditional simulation: the class structures are fixed at the pilot sites (the "
+              "same patches, in place) and simulated between them."),
+             "Environment at new sites is the interpolated pilot environment plus a simulated "
+             "local part with the pilot's interpolation error (from a layer: the layer's "
+             "values, without error)."]
     for name, info in infos.items():
         if info.get("constant_environment"):
             notes.append(f"{name}: variable(s) {info['constant_environment']} take a single "
                          "value at this layout and cannot be selected there.")
-        weak = {k: v for k, v in info.get("class_variance_ratio", {}).items() if v < 0.5}
-        if weak:
-            notes.append(f"{name}: the pilot's structure extended to these sites keeps only "
-                         + ", ".join(f"{v:.0%} of the {k} class's variance" for k, v in
-                                     weak.items())
-                         + " (sites outside the pilot's reach, or finer than its spacing).")
     return notes

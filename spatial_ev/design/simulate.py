@@ -1,18 +1,32 @@
-"""The pilot's fitted model as a data generator, and the analysis of one simulated survey.
+"""The pilot's fitted model as a generator of continuous landscapes, and one simulated survey.
 
-Used by :func:`spatial_ev.design.evaluate.evaluate_design` (see its module docstring for the model,
-the residual scheme, the environment at new sites and the permutation budget). The pilot is
-fitted jointly: transformed community ~ kept trend + selected environmental variables +
-selected spatial vectors (least squares, centred). At a layout's sites the signal is rebuilt
-from the trend at the new coordinates, the environment there (:func:`environment_at`) and the
-pilot vectors extended by :meth:`~spatial_ev.space.eigen.SpatialBasis.extend`.
+Used by :func:`spatial_ev.design.evaluate.evaluate_design` (see its module docstring). The
+pilot is fitted jointly: transformed community ~ kept trend + selected environmental variables +
+selected spatial vectors (least squares, centred). The truth of a simulated survey is defined
+in map units, not on the pilot's sites, so that any layout can be sampled from it:
+
+- each scale class with selected vectors becomes stationary Gaussian random fields
+  (:func:`draw_fields`, random Fourier features) with wavelengths in the class's band, the
+  class's species loadings and its variance among the pilot sites (shrunk for the chance fit
+  of its vectors); residual structure on the unselected vectors beyond chance is one more
+  field; what is left is spatially independent (pilot residual rows, chosen per site);
+- the environment at a site is the interpolated pilot environment plus a simulated local part
+  with the pilot's interpolation error (none on a pilot site);
+- the random numbers depend only on the replicate (fields) and on a site's position (local
+  environment, residual rows): every layout sees the same landscape, and two layouts sharing
+  a site see the same values there.
+
+Unconditional simulation (default) draws a new landscape like the pilot's each time;
+conditional simulation (``conditional=True`` in :func:`layout_model`) fixes the class
+structures at the pilot sites (simple kriging of each field on the pilot's fitted structure)
+— the same patches, in place.
 
 A simulated survey is analysed by the pipeline's own named steps
-(:mod:`spatial_ev.pipeline.steps`: trend, environment, space, partition, scale-class tests),
-so the simulated analysis is the analysis; only two things are the design's own: the space
-step judges the layout's one basis at the pilot's corrected level (next season's analysis
-will again compare schemes), and selected vectors are attributed to the pilot's scale
-classes by the structure they carry (:func:`_owners`).
+(:mod:`spatial_ev.pipeline.steps`: trend, environment, space, partition, scale-class tests);
+the design's own parts are the space step on the layout's one basis at the pilot's corrected
+level, and detection of a class by the layout's selected vectors whose own scale lies in the
+class's band (:func:`band_members`), tested jointly given the others and Holm-adjusted
+across classes (:func:`holm`).
 """
 
 from __future__ import annotations
@@ -23,6 +37,8 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import scipy.linalg
+from scipy import special
 from scipy.spatial import cKDTree
 
 from spatial_ev.design.layouts import CandidateLayout
@@ -43,12 +59,22 @@ from spatial_ev.stats.linear import explained_fraction
 
 __all__ = [
     "FRACTIONS",
+    "FieldComponent",
     "PilotModel",
     "SimulationSettings",
     "Simulator",
+    "band_members",
+    "band_wavelengths",
+    "class_band",
+    "draw_fields",
+    "draw_truth",
     "environment_at",
+    "field_covariance",
+    "holm",
     "layout_model",
     "pilot_model",
+    "site_uniforms",
+    "stop_category",
 ]
 
 FRACTIONS = ("environment_only", "shared", "space_only", "unexplained")
@@ -141,18 +167,178 @@ def _environment_from_layer(pilot: Analysis, new_xy, layer, indicators):
     return pd.DataFrame(cols), "from the environment layer (nearest feature)"
 
 
+# ------------------------------------------------------------------------------ random fields
+
+_FEATURES = 256          # random Fourier features per simulated field
+_QUADRATURE = 48         # wavelengths averaged in a field's covariance function
+_NUGGET = 1e-3           # relative nugget of the conditioning (kriging) system
+_CALIBRATION_SITES = 1500
+
+
+def band_wavelengths(band: tuple[float, float], u: np.ndarray) -> np.ndarray:
+    """Wavelengths log-uniform in ``band`` at the quantiles ``u`` (0–1).
+
+    Examples
+    --------
+    >>> band_wavelengths((10.0, 1000.0), np.array([0.0, 0.5, 1.0])).round(6).tolist()
+    [10.0, 100.0, 1000.0]
+    """
+    lo, hi = band
+    return np.exp(np.log(lo) + u * (np.log(hi) - np.log(lo)))
+
+
+def field_covariance(h: np.ndarray, band: tuple[float, float]) -> np.ndarray:
+    """Correlation at distance h of an isotropic field with wavelengths log-uniform in ``band``.
+
+    A plane wave cos(κ·x + φ) with random direction has correlation J0(κh) (average of
+    cos(κ h cos θ) over θ: Watson 1944, A Treatise on the Theory of Bessel Functions, §2.2
+    [memory]); the field's correlation is the average of J0(2πh/λ) over its wavelengths
+    (midpoint rule on log λ).
+
+    Examples
+    --------
+    >>> float(field_covariance(np.array([0.0]), (10.0, 20.0))[0])
+    1.0
+    """
+    lam = band_wavelengths(band, (np.arange(_QUADRATURE) + 0.5) / _QUADRATURE)
+    h = np.asarray(h, dtype=float)
+    return special.j0(2 * np.pi * h[..., None] / lam).mean(axis=-1)
+
+
+@dataclass(frozen=True)
+class FieldComponent:
+    """One family of simulated continuous fields: a scale class or the unselected structure.
+
+    Attributes
+    ----------
+    name : str
+        The scale class (``"broad"`` …) or ``"unselected"``.
+    band : tuple of float
+        Wavelengths (map units) of the field, drawn log-uniform between them.
+    loadings : ndarray, shape (r, p)
+        Species loadings of the r independent latent fields (standard deviation within the
+        pilot's extent times the direction in species space).
+    calibration : float
+        Factor giving a latent field unit expected variance among the pilot sites.
+    pilot_scores : ndarray, shape (n_pilot, r)
+        The latent fields' values at the pilot sites that the pilot's fit implies (used by
+        conditional simulation).
+    """
+
+    name: str
+    band: tuple[float, float]
+    loadings: np.ndarray = field(repr=False)
+    calibration: float
+    pilot_scores: np.ndarray = field(repr=False)
+
+
+def _unit_field_variance(xy: np.ndarray, band: tuple[float, float]) -> float:
+    """Expected sample variance among sites of a unit-variance field (1 − mean correlation)."""
+    if len(xy) > _CALIBRATION_SITES:
+        xy = xy[np.linspace(0, len(xy) - 1, _CALIBRATION_SITES).astype(int)]
+    d = np.sqrt(((xy[:, None, :] - xy[None, :, :]) ** 2).sum(-1))
+    n = len(xy)
+    return float(max(1.0 - field_covariance(d, band).sum() / n ** 2, 1e-6) * n / (n - 1))
+
+
+def _components(structure: np.ndarray, rescale: float) -> tuple[np.ndarray, np.ndarray]:
+    """Latent scores (unit variance at the pilot) and loadings of a centred n × p structure."""
+    n = structure.shape[0]
+    a, s, vt = np.linalg.svd(structure, full_matrices=False)
+    keep = s > max(s[0], 1e-300) * 1e-8 if s.size else np.zeros(0, bool)
+    a, s, vt = a[:, keep], s[keep], vt[keep]
+    scores = a * math.sqrt(n - 1)
+    loadings = (s / math.sqrt(n - 1))[:, None] * vt * math.sqrt(rescale)
+    return scores, loadings
+
+
+def draw_fields(components: tuple[FieldComponent, ...], rng: np.random.Generator,
+                xy: np.ndarray) -> list[np.ndarray]:
+    """Each component's latent fields at ``xy`` (n × r per component), one realisation.
+
+    Random Fourier features (Rahimi & Recht 2007, NIPS 20 [memory]): a field is
+    √(2/M) Σ cos(κ_m·x + φ_m) over M waves with wavelengths log-uniform in the band,
+    uniform directions and phases; the random numbers depend only on ``rng``, so every
+    layout evaluated with the same generator sees the same landscape.
+
+    Examples
+    --------
+    >>> fields = draw_fields(model.components, np.random.default_rng(1), xy)  # doctest: +SKIP
+    """
+    out = []
+    for comp in components:
+        r = comp.loadings.shape[0]
+        lam = band_wavelengths(comp.band, rng.random((r, _FEATURES)))
+        theta = rng.uniform(0, 2 * np.pi, (r, _FEATURES))
+        phase = rng.uniform(0, 2 * np.pi, (r, _FEATURES))
+        kx, ky = 2 * np.pi / lam * np.cos(theta), 2 * np.pi / lam * np.sin(theta)
+        arg = xy[:, 0, None, None] * kx + xy[:, 1, None, None] * ky + phase   # (n, r, M)
+        values = np.cos(arg).sum(axis=2) * math.sqrt(2.0 / _FEATURES) * comp.calibration
+        out.append(values)
+    return out
+
+
+def _kriging_weights(comp: FieldComponent, pilot_xy: np.ndarray, xy: np.ndarray) -> np.ndarray:
+    """Simple-kriging weights (layout × pilot) of a component's latent field."""
+    d_pp = np.sqrt(((pilot_xy[:, None] - pilot_xy[None]) ** 2).sum(-1))
+    d_xp = np.sqrt(((xy[:, None] - pilot_xy[None]) ** 2).sum(-1))
+    k_pp = field_covariance(d_pp, comp.band)
+    k_pp[np.diag_indices_from(k_pp)] += _NUGGET
+    return scipy.linalg.solve(k_pp, field_covariance(d_xp, comp.band).T, assume_a="pos").T
+
+
+# ------------------------------------------------------------------------------ site-keyed noise
+
+_MASK = np.uint64(0xFFFFFFFFFFFFFFFF)
+
+
+def _mix(z: np.ndarray) -> np.ndarray:
+    """splitmix64 finaliser (Steele, Lea & Flood 2014, OOPSLA [memory]), uint64 in and out."""
+    with np.errstate(over="ignore"):
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        return z ^ (z >> np.uint64(31))
+
+
+def site_uniforms(xy: np.ndarray, key: int, columns: int, resolution: float) -> np.ndarray:
+    """Uniform numbers (n × columns) that depend only on a site's position and ``key``.
+
+    Two layouts sharing a site get the same numbers there, so a superset of a layout sees the
+    same independent noise at the shared sites (common random numbers, site by site).
+    Positions are rounded to ``resolution`` map units.
+
+    Examples
+    --------
+    >>> u = site_uniforms(np.array([[0.0, 0.0], [5.0, 1.0]]), 7, 3, 1e-6)
+    >>> u.shape, bool(((u > 0) & (u < 1)).all())
+    ((2, 3), True)
+    """
+    q = np.round(np.asarray(xy, dtype=float) / resolution).astype(np.int64).view(np.uint64)
+    with np.errstate(over="ignore"):
+        h = _mix(np.uint64(key) ^ _mix(q[:, 0] + np.uint64(0x9E3779B97F4A7C15)))
+        h = _mix(h ^ _mix(q[:, 1] + np.uint64(0x632BE59BD9B4E019)))
+        cols = _mix(h[:, None] + np.arange(1, columns + 1, dtype=np.uint64)[None, :]
+                    * np.uint64(0x9E3779B97F4A7C15))
+    return ((cols >> np.uint64(11)).astype(np.float64) + 0.5) / 2.0 ** 53
+
+
+def _site_normals(xy, key, columns, resolution) -> np.ndarray:
+    u = site_uniforms(xy, key, 2 * columns, resolution)
+    return np.sqrt(-2 * np.log(u[:, :columns])) * np.cos(2 * np.pi * u[:, columns:])
+
+
 # ------------------------------------------------------------------------------ pilot model
 
 @dataclass(frozen=True)
 class PilotModel:
-    """The pilot's joint least-squares fit, used as the truth of the simulations.
+    """The pilot's joint least-squares fit, turned into a generator of continuous landscapes.
 
     Attributes
     ----------
     mean : ndarray, shape (p,)
         Mean of the transformed community.
     centre : ndarray, shape (2,)
-        Mean pilot coordinates (origin of the trend).
+        Mean pilot coordinates (origin of the trend and of the fields).
     coef : dict
         Block name (``trend``, ``environment``, ``space``) → coefficients (terms × p).
     x_mean : dict
@@ -161,10 +347,21 @@ class PilotModel:
         The selected environmental variables.
     space : tuple of str
         The selected spatial vectors.
+    components : tuple of FieldComponent
+        One per pilot scale class with selected vectors, and ``"unselected"`` for spatial
+        structure in the residuals beyond what chance puts on the unselected vectors.
     residuals : ndarray, shape (n_pilot, p)
-        Residual rows inflated by √((n − 1)/(n − 1 − m)).
+        Spatially independent residual rows (inflated by √((n − 1)/(n − 1 − m)), shrunk by
+        the share moved to the unselected-structure field).
     inflate : float
-        That factor.
+        That inflation factor.
+    environment_sd : dict
+        Variable → standard deviation of its local part (the pilot's leave-one-out
+        interpolation error, standardised units; 0 for category indicators).
+    spacing : float
+        Median nearest-neighbour distance of the pilot sites (map units).
+    resolution : float
+        Rounding of positions for site-keyed noise (map units).
     """
 
     mean: np.ndarray
@@ -175,57 +372,58 @@ class PilotModel:
     space: tuple[str, ...]
     residuals: np.ndarray = field(repr=False)
     inflate: float
+    components: tuple[FieldComponent, ...] = ()
+    environment_sd: dict = field(default_factory=dict)
+    spacing: float = 1.0
+    resolution: float = 1e-6
 
 
-@dataclass(frozen=True)
-class _LayoutModel:
-    """Arrays one layout's simulations need (picklable, shipped once per worker)."""
+def class_band(pilot: Analysis, name: str) -> tuple[float, float]:
+    """Wavelength band (map units) of a pilot scale class, infinite ends closed by the basis.
 
-    name: str
-    signal: np.ndarray          # (n, p): pilot mean + trend + environment + space
-    coords: pd.DataFrame        # (n, 2) x, y, indexed like the basis vectors
-    env: pd.DataFrame | None    # (n, e) candidate environmental variables at the sites
-    basis: SpatialBasis         # the layout's own spatial basis
-    env_true: np.ndarray | None  # generating environmental predictors
-    space_true: np.ndarray | None  # generating spatial predictors (trend + extended vectors)
-    class_parts: dict = field(default_factory=dict)  # class -> (n, p) its structure, centred
+    The class bounds, with the broad class's open upper end set to the pilot basis's broadest
+    vector scale and the fine class's zero lower end to its finest vector scale (no evidence
+    beyond the wavelengths the pilot's basis holds).
 
-
-@dataclass(frozen=True)
-class SimulationSettings:
-    """What every simulated analysis shares.
-
-    Attributes
-    ----------
-    alpha : float
-        Level of every test.
-    space_level : float
-        Level of the spatial global test (the pilot's corrected level by default).
-    n_permutations : int
-    global_permutations : int
-        Permutations of the spatial global test (enough to reach ``space_level``).
-    trend : {"test", "ignore"}
-        The pilot's trend rule.
-    breaks : tuple of float
-        The pilot's scale-class boundaries.
-    class_names : tuple of str
-        The pilot's scale classes, in order.
-    residuals : ndarray, shape (n_pilot, p)
-        Inflated residual rows, resampled whole.
+    Examples
+    --------
+    >>> class_band(pilot, "fine")  # doctest: +SKIP
+    (83.4, 120.0)
     """
+    fit = next((f for f in pilot.scale_fits if f.scale_class.name == name), None)
+    if fit is None:
+        raise InputError(f"the pilot has no scale class {name!r}; it has "
+                         f"{[f.scale_class.name for f in pilot.scale_fits]}")
+    s = pilot.basis.scale.to_numpy()
+    lo, hi = fit.scale_class.bounds
+    lo = lo if lo > 0 else float(s.min())
+    hi = hi if math.isfinite(hi) else float(s.max())
+    if hi <= lo * 1.0001:
+        hi = lo * 1.05
+    return float(lo), float(hi)
 
-    alpha: float
-    space_level: float
-    n_permutations: int
-    global_permutations: int
-    trend: str
-    breaks: tuple
-    class_names: tuple
-    residuals: np.ndarray = field(repr=False)
+
+def _loo_idw_sd(xy: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Per column: root mean square of leave-one-out inverse-distance interpolation errors."""
+    k = min(_IDW_NEIGHBOURS, len(xy) - 1)
+    d, idx = cKDTree(xy).query(xy, k=k + 1)
+    d, idx = d[:, 1:], idx[:, 1:]
+    w = 1.0 / np.maximum(d, 1e-12 * max(float(np.ptp(xy)), 1e-300)) ** _IDW_POWER
+    w /= w.sum(axis=1, keepdims=True)
+    pred = np.einsum("nk,nkc->nc", w, values[idx])
+    return np.sqrt(np.mean((values - pred) ** 2, axis=0))
 
 
 def pilot_model(pilot: Analysis) -> PilotModel:
-    """Joint least-squares fit of the transformed community on trend, environment, space.
+    """Joint least-squares fit of the transformed community, and the fields it implies.
+
+    The community is fitted on the kept trend + selected environment + selected vectors.
+    Each scale class's fitted structure (its vectors × their coefficients) becomes a family of
+    continuous fields in the class's wavelength band with the same species loadings (its
+    singular directions) and the same variance, shrunk by the class's adjusted/raw R² ratio
+    (a correction for the chance fit of its vectors). Residual spatial structure on the
+    unselected vectors beyond chance (k/(n − 1 − m) of the residual variation for k vectors)
+    becomes one more field over all the pilot's wavelengths; what remains is independent.
 
     Examples
     --------
@@ -266,18 +464,88 @@ def pilot_model(pilot: Analysis) -> PilotModel:
                           "cannot be estimated")
     inflate = math.sqrt((n - 1) / (n - 1 - m))
     cuts = np.cumsum([b.shape[1] for b in blocks])[:-1]
-    return PilotModel(mean=mean, centre=centre, coef=dict(zip(names, np.split(coef, cuts))),
+    coefs = dict(zip(names, np.split(coef, cuts)))
+    rel = xy - centre
+    components = []
+    if space_sel:
+        vec = pilot.basis.vectors[list(space_sel)].to_numpy()
+        detrended = Y - mean
+        for fit in pilot.scale_fits:
+            idx = [space_sel.index(v) for v in fit.scale_class.vectors]
+            if not idx:
+                continue
+            part = vec[:, idx] @ coefs["space"][idx]
+            part = part - part.mean(axis=0)
+            q = vec[:, idx] - vec[:, idx].mean(axis=0)
+            raw = float(np.sum((q @ np.linalg.pinv(q) @ detrended) ** 2)
+                        / np.sum(detrended ** 2))
+            shrink = min(1.0, max(fit.r2_adj or 0.0, 0.0) / raw) if raw > 0 else 0.0
+            band = class_band(pilot, fit.scale_class.name)
+            scores, loadings = _components(part, shrink)
+            if loadings.shape[0] and shrink > 0:
+                components.append(FieldComponent(
+                    fit.scale_class.name, band, loadings,
+                    1.0 / math.sqrt(_unit_field_variance(rel, band)), scores))
+    others = [c for c in pilot.basis.vectors.columns if c not in space_sel]
+    resid_total = float(np.sum(resid ** 2))
+    moved = 0.0
+    if others and resid_total > 0:
+        u = pilot.basis.vectors[others].to_numpy()
+        u = u - u.mean(axis=0)
+        on_unselected = u @ np.linalg.lstsq(u, resid, rcond=None)[0]
+        chance = len(others) / (n - 1 - m) * resid_total
+        moved = max(0.0, float(np.sum(on_unselected ** 2)) - chance)
+        if moved > 0:
+            s = pilot.basis.scale.to_numpy()
+            band = (float(s.min()), float(s.max()))
+            scores, loadings = _components(on_unselected, moved / np.sum(on_unselected ** 2))
+            components.append(FieldComponent("unselected", band, loadings[:3],
+                                             1.0 / math.sqrt(_unit_field_variance(rel, band)),
+                                             scores[:, :3]))
+    keep = math.sqrt(max(0.0, 1.0 - moved / resid_total)) if resid_total > 0 else 1.0
+    env_sd = {}
+    if pilot.environment is not None and pilot.environment.shape[1]:
+        indicators = {c for cols in pilot.survey.categorical.values() for c in cols}
+        sd = _loo_idw_sd(xy, pilot.environment.to_numpy(dtype=float))
+        env_sd = {c: (0.0 if c in indicators else float(v))
+                  for c, v in zip(pilot.environment.columns, sd)}
+    nn = cKDTree(xy).query(xy, k=2)[0][:, 1]
+    extent = max(float(np.ptp(xy, axis=0).max()), 1e-300)
+    return PilotModel(mean=mean, centre=centre, coef=coefs,
                       x_mean=dict(zip(names, np.split(X.mean(axis=0), cuts))),
-                      environment=env_sel, space=space_sel, residuals=resid * inflate,
-                      inflate=inflate)
+                      environment=env_sel, space=space_sel,
+                      residuals=resid * inflate * keep, inflate=inflate,
+                      components=tuple(components), environment_sd=env_sd,
+                      spacing=float(np.median(nn)), resolution=extent * 1e-9)
+
+
+@dataclass(frozen=True)
+class _LayoutModel:
+    """Arrays one layout's simulations need (picklable, shipped once per worker)."""
+
+    name: str
+    coords: pd.DataFrame          # (n, 2) x, y, indexed like the basis vectors
+    basis: SpatialBasis           # the layout's own spatial basis
+    fixed: np.ndarray             # (n, p): mean + trend (+ environment from a layer)
+    env_mean: pd.DataFrame | None  # (n, e) interpolated environment (standardised)
+    env_local_sd: np.ndarray | None  # (n, e) sd of the simulated local part
+    env_columns: tuple            # environmental columns analysed at this layout
+    env_coef: np.ndarray | None   # (selected env, p)
+    env_x_mean: np.ndarray | None
+    env_selected: tuple
+    trend_true: np.ndarray | None  # (n, 2) trend predictors
+    rel_xy: np.ndarray            # coordinates relative to the pilot centre
+    kriging: tuple = ()           # per component: (layout × pilot) kriging weights
+    pilot_rel_xy: np.ndarray | None = None  # pilot sites relative to the centre (conditional)
+    class_bands: dict = field(default_factory=dict)  # class -> (lower, upper) of the pilot
 
 
 def layout_model(pilot: Analysis, model: PilotModel, lay: CandidateLayout, basis: SpatialBasis,
-                 layer: Any) -> tuple[_LayoutModel, dict]:
-    """The generating signal and the analysis inputs at one layout's sites.
+                 layer: Any, *, conditional: bool = False) -> tuple[_LayoutModel, dict]:
+    """What one layout's simulations need: its fixed signal, environment and fields' setup.
 
     Returns the layout's model and diagnostics (environment source, variables constant at the
-    layout, ratio of each class's variance at the layout to that at the pilot sites).
+    layout, the share of sites with a simulated local environment).
 
     Examples
     --------
@@ -285,80 +553,131 @@ def layout_model(pilot: Analysis, model: PilotModel, lay: CandidateLayout, basis
     """
     xy = lay.coords[["x", "y"]].to_numpy()
     index = basis.vectors.index
-    signal = np.broadcast_to(model.mean, (len(xy), len(model.mean))).copy()
+    fixed = np.broadcast_to(model.mean, (len(xy), len(model.mean))).copy()
     info: dict[str, Any] = {}
-    space_parts = []
+    trend_true = None
     if "trend" in model.coef:
-        signal += (xy - model.centre - model.x_mean["trend"]) @ model.coef["trend"]
-        space_parts.append(xy - model.centre)
-    env, env_true = None, None
+        fixed += (xy - model.centre - model.x_mean["trend"]) @ model.coef["trend"]
+        trend_true = xy - model.centre
+    env_mean = env_sd = None
+    env_cols: tuple = ()
     if pilot.environment is not None and pilot.environment.shape[1]:
         full, info["environment_source"] = environment_at(pilot, xy, layer=layer)
         full.index = index
-        env = full
-        varying = env.columns[env.to_numpy().std(axis=0) > 1e-12]
-        if len(varying) < env.shape[1]:
-            info["constant_environment"] = [c for c in env.columns if c not in varying]
-        env = env[varying] if len(varying) else None
-        pilot_sd = pilot.environment.to_numpy().std(axis=0)
-        if env is not None:
-            kept = env.to_numpy().std(axis=0) / pilot_sd[[list(pilot.environment.columns)
-                                                         .index(c) for c in env.columns]]
-            info["environment_sd_ratio"] = dict(zip(env.columns, np.round(kept, 4)))
-    if model.environment:
-        e = full[list(model.environment)].to_numpy()
-        signal += (e - model.x_mean["environment"]) @ model.coef["environment"]
-        env_true = e
-    if model.space:
-        ext = pilot.basis.extend(xy)[list(model.space)].to_numpy()
-        if not np.isfinite(ext).all():
-            raise DesignError(f"layout {lay.name!r}: the pilot's spatial vectors cannot be "
-                              "extended to its sites (unstable vectors); use distance-based "
-                              "weighting in the pilot")
-        signal += (ext - model.x_mean["space"]) @ model.coef["space"]
-        space_parts.append(ext)
-        info["class_variance_ratio"] = _class_variance(pilot, model, ext)
-    space_true = np.hstack(space_parts) if space_parts else None
-    coords = pd.DataFrame(xy, index=index, columns=["x", "y"])
-    return _LayoutModel(lay.name, signal, coords, env, basis, env_true, space_true,
-                        _class_parts(pilot, model, xy)), info
+        env_mean = full
+        if layer is None:
+            d1 = cKDTree(pilot.survey.coords.to_numpy()).query(xy)[0]
+            reach = np.minimum(1.0, d1 / max(model.spacing, 1e-300))
+            sd = np.array([model.environment_sd.get(c, 0.0) for c in full.columns])
+            env_sd = reach[:, None] * sd[None, :]
+            info["environment_local_share"] = float(np.mean(reach > 0))
+            info["environment_source"] += ("; plus a simulated local part with the pilot's "
+                                           "leave-one-out interpolation error, growing to its "
+                                           "full size one pilot spacing from the pilot sites")
+        varying = full.columns[(full.to_numpy().std(axis=0) > 1e-12)
+                               | ((env_sd if env_sd is not None else 0 * full.to_numpy())
+                                  .max(axis=0) > 0)]
+        if len(varying) < full.shape[1]:
+            info["constant_environment"] = [c for c in full.columns if c not in varying]
+        env_cols = tuple(varying)
+    rel = xy - model.centre
+    kriging, pilot_rel = (), None
+    if conditional:
+        pilot_rel = pilot.survey.coords.to_numpy() - model.centre
+        kriging = tuple(_kriging_weights(c, pilot_rel, rel) for c in model.components)
+    bands = {f.scale_class.name: tuple(f.scale_class.bounds) for f in pilot.scale_fits}
+    return _LayoutModel(lay.name, pd.DataFrame(xy, index=index, columns=["x", "y"]), basis,
+                        fixed, env_mean, env_sd, env_cols,
+                        model.coef.get("environment"), model.x_mean.get("environment"),
+                        model.environment, trend_true, rel, kriging, pilot_rel, bands), info
 
 
-def _class_parts(pilot: Analysis, model: PilotModel, xy: np.ndarray) -> dict:
-    """Each scale class's generating structure at the layout's sites (centred, n × p)."""
-    names = list(model.space)
-    if not names:
-        return {}
-    ext = pilot.basis.extend(xy)[names].to_numpy()
-    out = {}
-    for fit in pilot.scale_fits:
-        idx = [names.index(v) for v in fit.scale_class.vectors]
-        if idx:
-            part = ext[:, idx] @ model.coef["space"][idx]
-            out[fit.scale_class.name] = part - part.mean(axis=0)
-    return out
+def draw_truth(lay: _LayoutModel, model: PilotModel, rng: np.random.Generator) -> dict:
+    """One simulated landscape at a layout's sites: community, environment, structures.
 
-
-def _class_variance(pilot: Analysis, model: PilotModel, ext: np.ndarray) -> dict:
-    """Variance of each class's fitted structure at the layout relative to the pilot sites."""
-    out = {}
-    names = list(model.space)
-    pv = pilot.basis.vectors[names].to_numpy()
-    for fit in pilot.scale_fits:
-        idx = [names.index(v) for v in fit.scale_class.vectors]
-        if not idx:
-            continue
-        b = model.coef["space"][idx]
-        at_pilot = (pv[:, idx] - pv[:, idx].mean(0)) @ b
-        at_layout = (ext[:, idx] - ext[:, idx].mean(0)) @ b
-        out[fit.scale_class.name] = float(np.mean(at_layout ** 2) / np.mean(at_pilot ** 2))
-    return out
+    Examples
+    --------
+    >>> truth = draw_truth(lm, model, np.random.default_rng(1))  # doctest: +SKIP
+    """
+    keys = rng.integers(0, 2 ** 63, size=2)
+    n = len(lay.rel_xy)
+    if lay.kriging:
+        both = draw_fields(model.components, rng, np.vstack([lay.rel_xy, lay.pilot_rel_xy]))
+        fields = []
+        for comp, values, weights in zip(model.components, both, lay.kriging):
+            at_layout, at_pilot = values[:n], values[n:]
+            target = comp.pilot_scores + at_pilot.mean(axis=0)
+            fields.append(at_layout + weights @ (target - at_pilot))
+    else:
+        fields = draw_fields(model.components, rng, lay.rel_xy)
+    Y = lay.fixed.copy()
+    env = None
+    if lay.env_mean is not None:
+        values = lay.env_mean.to_numpy().copy()
+        if lay.env_local_sd is not None:
+            values += lay.env_local_sd * _site_normals(lay.coords.to_numpy(), int(keys[0]),
+                                                       values.shape[1], model.resolution)
+        env = pd.DataFrame(values, index=lay.coords.index, columns=lay.env_mean.columns)
+    env_true = None
+    if lay.env_selected:
+        env_true = env[list(lay.env_selected)].to_numpy()
+        Y += (env_true - lay.env_x_mean) @ lay.env_coef
+    structures = {}
+    latent = []
+    for comp, values in zip(model.components, fields):
+        part = values @ comp.loadings
+        structures[comp.name] = part - part.mean(axis=0)
+        Y += part
+        latent.append(values)
+    rows = site_uniforms(lay.coords.to_numpy(), int(keys[1]), 1, model.resolution)[:, 0]
+    Y += model.residuals[np.minimum((rows * len(model.residuals)).astype(int),
+                                    len(model.residuals) - 1)]
+    space_parts = ([lay.trend_true] if lay.trend_true is not None else []) + latent
+    return {"Y": Y, "environment": env, "env_true": env_true,
+            "space_true": np.hstack(space_parts) if space_parts else None,
+            "structures": structures}
 
 
 # ------------------------------------------------------------------------------ simulation
 
+@dataclass(frozen=True)
+class SimulationSettings:
+    """What every simulated analysis shares.
+
+    Attributes
+    ----------
+    alpha : float
+        Level of every test.
+    space_level : float
+        Level of the spatial global test (the pilot's corrected level by default).
+    n_permutations : int
+    global_permutations : int
+        Permutations of the spatial global test (enough to reach ``space_level``).
+    trend : {"test", "ignore"}
+        The pilot's trend rule.
+    breaks : tuple of float
+        The pilot's scale-class boundaries.
+    class_names : tuple of str
+        The pilot's scale classes, in order.
+    model : PilotModel
+        The generator of the simulated landscapes.
+    """
+
+    alpha: float
+    space_level: float
+    n_permutations: int
+    global_permutations: int
+    trend: str
+    breaks: tuple
+    class_names: tuple
+    model: PilotModel = field(repr=False)
+
+
 class Simulator:
     """One simulated survey and its analysis; task = (layout position, SeedSequence).
+
+    The task's sequence is the replicate's: every layout gets the same one, so layouts are
+    compared on the same landscapes (common random numbers).
 
     Examples
     --------
@@ -379,22 +698,106 @@ class Simulator:
             return _simulate(self.models[position], self.settings, seq)
 
 
+def stop_category(selection: Any) -> str:
+    """Why a selection ended, as one of four categories.
+
+    ``"no global significance"`` (the global test failed or could not run), ``"p > alpha"``
+    (the best remaining candidate was not significant), ``"ceiling"`` (the adjusted-R²
+    ceiling of the double stopping rule), ``"exhausted"`` (candidates, degrees of freedom or
+    a cap ran out).
+
+    Examples
+    --------
+    >>> stop_category(None)
+    'no global significance'
+    """
+    if selection is None:
+        return "no global significance"
+    reason = str(selection.stop_reason)
+    if "not significant" in reason:
+        return "p > alpha"
+    if "adjusted R²" in reason:
+        return "ceiling"
+    return "exhausted"
+
+
+def holm(p_values: dict) -> dict:
+    """Holm's step-down adjustment of a dict of p-values (None stays None).
+
+    Holm 1979, Scand. J. Stat. 6:65–70: the i-th smallest of k p-values is multiplied by
+    k − i + 1, made monotone, capped at 1.
+
+    Examples
+    --------
+    >>> holm({"a": 0.01, "b": 0.04, "c": None})
+    {'a': 0.02, 'b': 0.04, 'c': None}
+    """
+    names = [k for k, v in p_values.items() if v is not None]
+    if not names:
+        return dict(p_values)
+    p = np.array([p_values[k] for k in names], dtype=float)
+    order = np.argsort(p, kind="stable")
+    adj = np.minimum(1.0, np.maximum.accumulate(p[order] * (len(p) - np.arange(len(p)))))
+    out = dict(p_values)
+    for i, j in enumerate(order):
+        out[names[j]] = float(adj[i])
+    return out
+
+
+def band_members(scale: pd.Series, selected, bands: dict) -> dict:
+    """Selected vectors by the pilot class band their own scale falls in (lower < s ≤ upper).
+
+    Examples
+    --------
+    >>> band_members(pd.Series({"a": 90.0, "b": 20.0}), ["a", "b"],
+    ...              {"broad": (50.0, np.inf), "fine": (0.0, 50.0)})
+    {'broad': ['a'], 'fine': ['b']}
+    """
+    s = scale.reindex(list(selected)).to_numpy(dtype=float)
+    return {name: [v for v, x in zip(selected, s) if lo < x <= hi]
+            for name, (lo, hi) in bands.items()}
+
+
+def _carried(basis: SpatialBasis, bands: dict, structures: dict) -> dict:
+    """Share of each class's true structure on the layout's in-band and other vectors."""
+    u = basis.vectors.to_numpy()
+    s = basis.scale.to_numpy()
+    out = {}
+    for name, part in structures.items():
+        if name not in bands:
+            continue
+        total = float(np.sum(part ** 2))
+        lo, hi = bands[name]
+        inside = (s > lo) & (s <= hi)
+        proj = u.T @ part
+        share = np.sum(proj ** 2, axis=1) / total if total > 0 else np.zeros(len(s))
+        out[name] = (float(share[inside].sum()), float(share[~inside].sum()))
+    return out
+
+
 def _simulate(lay: _LayoutModel, s: SimulationSettings, seq: np.random.SeedSequence) -> dict:
-    """Draw one survey at the layout and analyse it with the pipeline's steps."""
-    rng_rows, *streams = [np.random.default_rng(c) for c in seq.spawn(6)]
-    n = lay.signal.shape[0]
-    Y = lay.signal + s.residuals[rng_rows.integers(0, s.residuals.shape[0], size=n)]
-    Y = Y - Y.mean(axis=0)
+    """Draw one landscape at the layout and analyse it with the pipeline's steps."""
+    # children by explicit spawn keys, not seq.spawn(): spawn() counts its calls, and every
+    # layout must get the same children of the replicate's sequence
+    def child(*key):
+        return np.random.SeedSequence(seq.entropy, spawn_key=tuple(seq.spawn_key) + key)
+
+    streams = [np.random.default_rng(child(1, j)) for j in range(5)]
+    truth = draw_truth(lay, s.model, np.random.default_rng(child(0)))
+    Y = truth["Y"] - truth["Y"].mean(axis=0)
+    env_table = truth["environment"]
+    if env_table is not None:
+        env_table = env_table[list(lay.env_columns)] if lay.env_columns else None
     alpha, options = s.alpha, StepOptions(n_permutations=s.n_permutations)
     trend = trend_step(Y, lay.coords, mode=s.trend, alpha=alpha, seed=streams[0],
                        options=options)
-    environment = environment_step(Y, lay.env, alpha=alpha, seed=streams[1], options=options)
+    environment = environment_step(Y, env_table, alpha=alpha, seed=streams[1], options=options)
     space = space_step(Y, basis=lay.basis, level=s.space_level,
                        global_permutations=s.global_permutations, alpha=alpha,
                        conditioning=trend.covariables, seed=streams[2], options=options)
     # without candidate environmental variables at this layout (none in the pilot, or all
     # constant here) the environment's fractions are zero by construction
-    candidates = lay.env if lay.env is not None else pd.DataFrame(index=lay.coords.index)
+    candidates = env_table if env_table is not None else pd.DataFrame(index=lay.coords.index)
     partition = partition_step(Y, candidates, environment.selection,
                                space_group(space.basis, space.selection, trend.covariables),
                                space_p=space.global_p, alpha=alpha, seed=streams[3],
@@ -403,46 +806,35 @@ def _simulate(lay: _LayoutModel, s: SimulationSettings, seq: np.random.SeedSeque
     space_sel = space.selection.selected if space.selection is not None else ()
     env_p = partition.fraction_tests["environment_only"]
     detected = {"environment": bool(env_sel) and env_p is not None and env_p <= alpha}
-    owners = _owners(lay, lay.basis.vectors, space_sel)
-    members = {name: [v for v, o in zip(space_sel, owners) if o == name]
-               for name in s.class_names}
-    p_values = scale_class_p_values(Y, lay.basis.vectors, members,
-                                    conditioning=trend.covariables, seed=streams[4],
-                                    options=options)
+    bands = {name: lay.class_bands[name] for name in s.class_names}
+    members = band_members(lay.basis.scale, space_sel, bands)
+    p_values = holm(scale_class_p_values(Y, lay.basis.vectors, members,
+                                         conditioning=trend.covariables, seed=streams[4],
+                                         options=options))
     for name in s.class_names:
         detected[f"scale:{name}"] = p_values[name] is not None and p_values[name] <= alpha
+    carried = _carried(lay.basis, bands, truth["structures"])
     return {"detected": detected,
             "estimate": [float(partition.fractions[f]) for f in FRACTIONS],
-            "truth": [float(v) for v in _truth(lay, Y)], "n_environment": len(env_sel),
-            "n_space": len(space_sel)}
+            "truth": [float(v) for v in _truth(truth, Y)], "n_environment": len(env_sel),
+            "n_space": len(space_sel),
+            "space_stop": stop_category(space.selection),
+            "environment_stop": stop_category(environment.selection),
+            "carried": {k: v[0] for k, v in carried.items()},
+            "aliased": {k: v[1] for k, v in carried.items()}}
 
 
-def _truth(lay: _LayoutModel, Y: np.ndarray) -> list[float]:
+def _truth(truth: dict, Y: np.ndarray) -> list[float]:
     """The partition with the generating predictors (NaN when a group is constant here)."""
+    env_true, space_true = truth["env_true"], truth["space_true"]
     try:
-        if lay.env_true is not None and lay.space_true is not None:
-            tr = partition_variation(Y, {"environment": lay.env_true, "space": lay.space_true},
+        if env_true is not None and space_true is not None:
+            tr = partition_variation(Y, {"environment": env_true, "space": space_true},
                                      n_permutations=0).fractions["r2_adj"]
             return [tr["environment_only"], tr["environment_and_space"], tr["space_only"],
                     tr["unexplained"]]
-        e = explained_fraction(Y, lay.env_true).r2_adj if lay.env_true is not None else 0.0
-        w = explained_fraction(Y, lay.space_true).r2_adj if lay.space_true is not None else 0.0
+        e = explained_fraction(Y, env_true).r2_adj if env_true is not None else 0.0
+        w = explained_fraction(Y, space_true).r2_adj if space_true is not None else 0.0
         return [e, 0.0, w, 1.0 - e - w]
     except InputError:  # a generating group constant at this layout: no oracle value
         return [np.nan] * 4
-
-
-def _owners(lay: _LayoutModel, vec: pd.DataFrame, selected) -> list:
-    """The pilot scale class whose generating structure each selected vector carries most of.
-
-    Share of class c carried by unit vector u: ‖F_cᵀu‖² with F_c the class's structure at
-    the layout's sites. Attribution by structure, not by the vector's nominal scale, because
-    scale estimates differ between bases (a denser layout labels the same wave finer).
-    """
-    if not selected or not lay.class_parts:
-        return [None] * len(selected)
-    u = vec[list(selected)].to_numpy()
-    u = u / np.linalg.norm(u, axis=0)
-    names = list(lay.class_parts)
-    shares = np.stack([np.sum((u.T @ lay.class_parts[c]) ** 2, axis=1) for c in names])
-    return [names[i] for i in shares.argmax(axis=0)]

@@ -9,6 +9,7 @@ target power), :func:`layout_map_figure` (the candidate layouts over the pilot s
     coverage.csv         one row per (layout, pilot scale class)
     power.csv            one row per (layout, objective)
     fractions.csv        bias and spread of each fraction's estimate per layout
+    selection_stops.csv  why simulated selections stopped, per layout
     layouts.csv          one row per layout: cost, basis, scale range
     figures/             coverage, power and layout maps as PNG and SVG
     design_report.html   self-contained page with a "how to read / limits" section
@@ -43,8 +44,8 @@ from spatial_ev.report.folder import atomic_folder
 from spatial_ev.report.html import figure_uri
 from spatial_ev.report.layers import write_layers, write_table
 
-__all__ = ["coverage_figure", "power_figure", "layout_map_figure", "render_design_report",
-           "write_design_folder", "layer_name"]
+__all__ = ["HEADERS", "coverage_figure", "power_figure", "layout_map_figure",
+           "render_design_report", "write_design_folder", "layer_name", "plain_header"]
 
 
 def _check_evaluation(evaluation: Any) -> DesignEvaluation:
@@ -98,7 +99,8 @@ def coverage_figure(layouts: pd.DataFrame, classes: pd.DataFrame,
     fig = Figure(figsize=(8.0, 1.6 + 0.55 * len(names)), layout="constrained")
     ax = fig.add_subplot()
     ax.set_xscale("log")
-    first = classes.drop_duplicates("scale_class")
+    # class tints as in the run report's scalogram: BAND_COLOURS by class, finest first
+    first = classes.drop_duplicates("scale_class").sort_values("lower")
     for i, row in enumerate(first.itertuples()):
         a, b = max(row.lower, lo), min(row.upper, hi)
         if b <= a:
@@ -131,7 +133,7 @@ def coverage_figure(layouts: pd.DataFrame, classes: pd.DataFrame,
               loc="upper left", bbox_to_anchor=(0.0, -0.18), ncols=3, fontsize=7.5)
     ax.set_title(title)
     fig.supxlabel("Ticks: the layout's spatial vectors (positive Moran's I). Bar under each "
-                  "class: resolved = at least as many vectors as the pilot selected there. "
+                  "class: resolved = its band holds the largest share of such structure. "
                   "* class significant in the pilot.", fontsize=7.5, color=st.MUTED,
                   ha="left", x=0.01)
     return fig
@@ -278,22 +280,32 @@ margin:.4rem 0;border-left:4px solid #0072b2}
 <img alt="candidate layouts" src="{{ figures.design_layouts }}">
 <h2 id="coverage">Spectral coverage: which scales each layout resolves</h2>
 <p>Each layout's spatial basis uses the pilot's weighting scheme ({{ scheme }}; distance-based
-where that graph cannot be built). A pilot scale class is <b>resolved</b> when the layout has
-at least as many vectors with scales inside the class as the pilot selected there,
-<b>partly</b> when it has fewer, <b>not resolved</b> when it has none. As a rule of thumb the
-finest wavelength a layout resolves is 2–4 sampling intervals and the broadest about twice its
-extent.</p>
+where that graph cannot be built). For each pilot scale class, a field with the class's
+wavelengths is sampled at the layout's sites: "carried" is the share of its variation on the
+layout's vectors whose scale lies in the class's band, "aliased" the share on its other vectors
+(broader or finer ones that pick it up). A class is <b>resolved</b> when its own band holds the
+largest share, <b>partly</b> when it holds at least a quarter of what the basis captures but
+another band holds more, <b>not resolved</b> otherwise (or when no vector lies in the band). A
+layout is never recommended for a class it does not resolve. The finest scale listed is the
+5 % quantile of the layout's vector scales; the broadest is twice the long side of its
+extent. As a rule of thumb the finest wavelength a layout resolves is 2–4 sampling
+intervals.</p>
 <img alt="spectral coverage" src="{{ figures.design_coverage }}">
 {{ tables.coverage }}
 <h2 id="power">Simulated power</h2>
 <p>{{ n_simulations }} simulated surveys per layout, {{ n_permutations }} permutations per
-test, seed {{ seed }}. Power = share of simulations in which the analysis detected the
-objective (environmental fraction: selected and its unique fraction significant; scale class:
-at least one selected vector carrying mostly that class's structure, and the partial test of
-those vectors significant at
-α = {{ alpha }}; spatial global test at {{ space_level }}).</p>
+test, seed {{ seed }}; {{ truth }}. Power = share of simulations in which the analysis detected
+the objective (environmental fraction: selected and its unique fraction significant; scale
+class: the layout's selected vectors whose own scale lies in the class's band, tested jointly
+given the other selected vectors, significant at α = {{ alpha }} after Holm's adjustment
+across classes; spatial global test at {{ space_level }}). Replicate r draws the same
+landscape at every layout, so layouts are compared on the same simulated surveys.</p>
 <img alt="simulated power" src="{{ figures.design_power }}">
 {{ tables.power }}
+<h3>Why selection stopped</h3>
+<p>Share of the simulations whose forward selection ended for each reason; when the
+adjusted-R² ceiling ends most spatial selections, power may be understated.</p>
+{{ tables.stops }}
 <h2 id="fractions">Fractions: bias and spread of the estimates</h2>
 <p>"truth" is the mean adjusted-R² partition with the generating predictors at the layout's
 sites; bias is the mean of (estimate − truth) per simulation; sd is the spread of the
@@ -301,16 +313,14 @@ estimate. "pilot" is the pilot analysis's own estimate.</p>
 {{ tables.fractions }}
 <h2 id="limits">How to read this report, and its limits</h2>
 <ul>
-<li>The simulation assumes the pilot model is right: the selected environmental variables and
-spatial vectors, with linear effects, are the real structure. Power is for this model's
-effect sizes; weaker real effects need more sampling.</li>
+<li>The simulation assumes the pilot model is right: the selected environmental variables,
+with linear effects, and each scale class's structure, as a stationary random field with the
+class's wavelengths, species loadings and (selection-corrected) variance. Power is for this
+model's effect sizes; weaker real effects need more sampling.</li>
 <li>Stationarity: the structure seen in the pilot area is assumed to hold wherever a layout
-samples; the pilot's vectors are extended to new points ({{ extension }}), which shrinks
-structure between and beyond the pilot sites.</li>
-<li>Residuals are assumed spatially independent: {{ residual_model }}. Spatially structured
-residuals would make real tests liberal and this power optimistic.</li>
-<li>Environment at new sites: {{ environment_source }}. Its error is not simulated;
-interpolation removes local variation, so environmental power at new sites is pessimistic.</li>
+samples.</li>
+<li>Residuals: {{ residual_model }}.</li>
+<li>Environment at new sites: {{ environment_source }}.</li>
 <li>Costs are the number of sites (and line length for transects); travel and processing
 costs are not modelled.</li>
 <li>Spatial-eigenvector fractions can be inflated whatever the design (Gilbert &amp; Bennett
@@ -323,8 +333,32 @@ costs are not modelled.</li>
 """
 
 
+#: plain column headers of the HTML tables (CSV files keep the machine names)
+HEADERS = {"n_sites": "sites", "line_length": "line length", "n_vectors": "vectors",
+           "finest_scale": "finest scale", "broadest_scale": "broadest scale",
+           "scale_class": "scale class", "pilot_significant": "significant in pilot",
+           "pilot_vectors": "vectors selected in pilot", "layout_vectors": "vectors in band",
+           "mc_se": "Monte Carlo SE", "ci_low": "95 % low", "ci_high": "95 % high",
+           "mean_estimate": "mean estimate", "sd": "SD", "environment_only": "environment only",
+           "space_only": "space only"}
+
+
+def plain_header(name: str) -> str:
+    """A table column's reader-facing header: no underscores, no machine abbreviations.
+
+    Examples
+    --------
+    >>> plain_header("mc_se"), plain_header("space_stop")
+    ('Monte Carlo SE', 'space stop')
+    """
+    return HEADERS.get(str(name), str(name).replace("_", " "))
+
+
 def _html_table(frame: pd.DataFrame) -> str:
     out = frame.copy()
+    out.columns = [plain_header(c) for c in out.columns]
+    if "fraction" in out.columns:
+        out["fraction"] = out["fraction"].map(plain_header)
     for c in out.columns:
         if pd.api.types.is_float_dtype(out[c]):
             out[c] = out[c].map(lambda v: "–" if v is None or not np.isfinite(v)
@@ -364,13 +398,16 @@ def render_design_report(evaluation: DesignEvaluation, *, figures: dict[str, Fig
         tables={"layouts": _markup(_html_table(layouts)),
                 "coverage": _markup(_html_table(ev.coverage.classes)),
                 "power": _markup(_html_table(ev.power)),
-                "fractions": _markup(_html_table(ev.fractions))},
+                "fractions": _markup(_html_table(ev.fractions)),
+                "stops": _markup(_html_table(ev.stops))},
+        truth=("unconditional simulation: a new landscape like the pilot's each time"
+               if s.truth == "unconditional" else
+               "conditional simulation: the pilot's patches fixed in place"),
         n_simulations=s.n_simulations, n_permutations=s.n_permutations, seed=s.seed,
         alpha=s.alpha,
         space_level=f"{s.space_test_level:.4g} ({s.space_level}"
                     + (f", {s.global_space_permutations} permutations)"
                        if s.global_space_permutations else ")"),
-        extension="Nyström add-a-point extension of the pilot basis",
         residual_model=s.residual_model, environment_source=s.environment_source,
         notes=ev.notes, version=__version__)
 
@@ -437,6 +474,7 @@ def write_design_folder(evaluation: DesignEvaluation, out: str | os.PathLike, *,
         write_table(tmp / "coverage.csv", ev.coverage.classes, index=False)
         write_table(tmp / "power.csv", ev.power, index=False)
         write_table(tmp / "fractions.csv", ev.fractions, index=False)
+        write_table(tmp / "selection_stops.csv", ev.stops, index=False)
         write_table(tmp / "layouts.csv", ev.coverage.layouts)
         figures = _figures(ev, unit, pilot_xy)
         (tmp / "figures").mkdir()

@@ -184,10 +184,16 @@ class TestAnalyseOptions:
         import spatial_ev.pipeline.steps as module
 
         monkeypatch.setattr(module, "DENSE_LIMIT", 50)  # treat the 64-site survey as large
-        res = analyse(small_survey(), spatial_weighting="single", schemes="distance",
+        survey = small_survey()
+        res = analyse(survey, spatial_weighting="single", schemes="distance",
                       n_permutations=99, seed=778)
-        assert res.settings.max_vectors == 200
-        assert any("broadest spatial eigenvectors" in note for note in res.notes)
+        count = module.large_survey_candidates(survey.coords)
+        # 64 sites: the design's count (at most n // 2) is below the budget, so it decides
+        assert count.n_vectors == count.design_vectors <= 32
+        assert res.settings.max_vectors == count.n_vectors
+        assert res.basis.n_vectors <= count.n_vectors
+        assert any(f"{count.n_vectors} per scheme were candidates" in note
+                   for note in res.notes)
 
     def test_environment_group_fallback(self):
         # Double stopping can stop before the first variable although the global test was

@@ -12,6 +12,7 @@ from scipy import stats
 
 from spatial_ev.errors import DroppedVariablesWarning, InputError
 from spatial_ev.inference.permutation import permutation_test
+from spatial_ev.pipeline.steps import large_survey_candidates
 from spatial_ev.selection.forward import ForwardSelection, GrowingBasis, forward_selection
 from spatial_ev.selection.weighting import compare_weighting_schemes
 
@@ -307,6 +308,43 @@ class TestSequentialSteps:
             forward_selection(y, X, sequential_steps="yes")
         with pytest.raises(InputError, match=r"`decision_risk` must be"):
             forward_selection(y, X, sequential_steps=True, decision_risk=0.0)
+
+
+class TestLargeSurveyCandidates:
+    """Candidate counts above the dense-solver limit (spatial_ev.pipeline.steps)."""
+
+    def test_grid_count_is_weyls_lattice_count(self):
+        # Square of side L with Neumann modes cos(iπx/L)cos(jπy/L): wavelength ≥ s iff
+        # i² + j² ≤ (2L/s)²; counting the lattice points is the oracle for Weyl's π·L²/s²
+        # [derived: Weyl's law for the Laplacian on the square]
+        gx, gy = np.meshgrid(np.arange(100.0), np.arange(100.0))
+        count = large_survey_candidates(pd.DataFrame({"x": gx.ravel(), "y": gy.ravel()}))
+        assert count.spacing == 1.0 and count.finest_scale == 3.0
+        i, j = np.meshgrid(np.arange(200), np.arange(200))
+        lattice = np.count_nonzero(i ** 2 + j ** 2 <= (2 * 99 / 3.0) ** 2)
+        assert abs(count.design_vectors - lattice) <= 0.03 * lattice
+        # budget: 2 million values over 10,000 sites, never fewer than 200 vectors
+        assert count.budget_vectors == 200 and count.n_vectors == 200
+        assert "200 per scheme were candidates" in count.reason
+        assert "Finer scales were not examined" in count.reason
+
+    def test_transect_and_budget(self):
+        # transect: modes cos(kπx/L) have wavelength 2L/k ≥ s iff k ≤ 2L/s [derived], capped
+        # at n // 2 (about the positively autocorrelated vectors of a transect, REFERENCES)
+        x = np.arange(3001.0) * 2.0
+        count = large_survey_candidates(pd.DataFrame({"x": x, "y": np.zeros_like(x)}))
+        assert count.finest_scale == 6.0
+        assert count.design_vectors == min(int(np.ceil(2 * 6000 / 6.0)), 3001 // 2) == 1500
+        assert count.budget_vectors == 2_000_000 // 3001 == count.n_vectors
+        wide = np.random.default_rng(5).uniform(0, 100, size=(4000, 2))
+        irregular = large_survey_candidates(pd.DataFrame(wide, columns=["x", "y"]))
+        assert irregular.budget_vectors == 500 == irregular.n_vectors < irregular.design_vectors
+
+    def test_bad_input(self):
+        with pytest.raises(InputError, match=r"columns \['x', 'y'\]"):
+            large_survey_candidates(np.zeros((5, 2)))
+        with pytest.raises(InputError, match=r"all the same point"):
+            large_survey_candidates(pd.DataFrame({"x": [1.0] * 4, "y": [2.0] * 4}))
 
 
 class TestForwardSelectionValidation:

@@ -28,8 +28,11 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
+import math
+
 import numpy as np
 import pandas as pd
+import scipy.spatial
 
 from spatial_ev._validation import check_option, check_real, check_rng
 from spatial_ev.errors import InputError
@@ -57,11 +60,20 @@ from spatial_ev.selection.weighting import (
     compare_weighting_schemes,
 )
 from spatial_ev.space.eigen import DENSE_LIMIT, SpatialBasis, distance_eigenvectors
-from spatial_ev.space.scales import classify_scales, default_scale_breaks, scalogram
+from spatial_ev.space.scales import (
+    classify_scales,
+    default_scale_breaks,
+    extent_wavelength,
+    scalogram,
+)
 from spatial_ev.stats.canonical import redundancy_analysis
 
 __all__ = [
+    "CANDIDATE_CELLS",
+    "CandidateCount",
+    "FINEST_SPACINGS",
     "LARGE_SURVEY_VECTORS",
+    "large_survey_candidates",
     "TREND_OPTIONS",
     "EnvironmentStep",
     "PartitionStep",
@@ -80,7 +92,13 @@ __all__ = [
 ]
 
 TREND_OPTIONS = ("test", "ignore")
-LARGE_SURVEY_VECTORS = 200  # broadest vectors kept per scheme above the dense-solver limit
+LARGE_SURVEY_VECTORS = 200  # fewest broad vectors offered per scheme above the dense limit
+#: values (sites × vectors) of one scheme's candidate table above the dense limit (16 MB):
+#: 666 vectors at 3,001 sites, 400 at 5,000, the floor of 200 from 10,000 sites on
+CANDIDATE_CELLS = 2_000_000
+#: finest resolvable wavelength in median nearest-neighbour spacings (≈ 2–4 sampling
+#: intervals; REFERENCES "Sampling design" [derived from the transect eigenfunctions])
+FINEST_SPACINGS = 3.0
 
 
 def _level(alpha: float) -> float:
@@ -369,6 +387,9 @@ class SpaceStep:
     max_vectors : int or None
         The cap on vectors per scheme that was applied.
     notes : tuple of str
+    candidates : CandidateCount or None
+        How the number of candidate vectors was set above the dense-solver limit (None when
+        every vector was a candidate or ``max_vectors`` was given).
     """
 
     basis: SpatialBasis = field(repr=False)
@@ -378,6 +399,7 @@ class SpaceStep:
     global_p: float | None
     max_vectors: int | None = None
     notes: tuple[str, ...] = ()
+    candidates: CandidateCount | None = None
 
 
 def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
@@ -392,8 +414,9 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
     at the Šidák-corrected level; forward selection runs under each significant scheme and the
     best adjusted R² is chosen (:func:`~spatial_ev.selection.weighting.
     compare_weighting_schemes`). Above :data:`~spatial_ev.space.eigen.DENSE_LIMIT` sites only
-    the :data:`LARGE_SURVEY_VECTORS` broadest vectors are computed unless ``max_vectors`` says
-    otherwise.
+    the broadest vectors are computed (Lanczos), as many as :func:`large_survey_candidates`
+    sets from the layout (down to its finest resolvable scale, within a stated budget) unless
+    ``max_vectors`` says otherwise; a note says how many and why.
 
     With ``basis``: its global test (``global_permutations`` permutations) is judged at
     ``level``; when significant, forward selection (level α, double stopping) runs without a
@@ -444,11 +467,11 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
                          f"{type(survey).__name__}")
     notes = []
     options.say(f"comparing {len(schemes)} spatial weighting scheme(s)")
+    candidates = None
     if max_vectors is None and survey.n_sites > DENSE_LIMIT:
-        max_vectors = LARGE_SURVEY_VECTORS
-        notes.append(f"With {survey.n_sites} sites only the {max_vectors} broadest spatial "
-                     f"eigenvectors of each scheme were computed (Lanczos); finer scales "
-                     f"were not examined. Raise `max_vectors` to look at finer scales.")
+        candidates = large_survey_candidates(survey.coords)
+        max_vectors = candidates.n_vectors
+        notes.append(candidates.reason)
     weighting = compare_weighting_schemes(Y, survey, schemes=schemes, alpha=alpha, seed=seed,
                                           conditioning=conditioning, max_vectors=max_vectors,
                                           progress=options.progress, n_workers=options.n_workers,
@@ -466,7 +489,100 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
     elif len(table) and np.isfinite(table["global_p"]).any():
         global_p = float(table["global_p"].min())
     return SpaceStep(chosen_basis, weighting.selection, weighting, weighting.best or "none",
-                     global_p, max_vectors, tuple(notes))
+                     global_p, max_vectors, tuple(notes), candidates)
+
+
+@dataclass(frozen=True)
+class CandidateCount:
+    """How many spatial vectors per scheme are candidates on a large survey, and why.
+
+    Attributes
+    ----------
+    n_vectors : int
+        Candidates per scheme: ``min(design_vectors, budget_vectors)``.
+    design_vectors : int
+        Vectors down to the finest scale the layout resolves (Weyl's law for its convex
+        hull: π·area/s² in two dimensions, 2·length/s on a line), at most ``n_sites // 2``
+        (about the number of positively autocorrelated vectors).
+    budget_vectors : int
+        The computing budget: :data:`CANDIDATE_CELLS` table values per scheme, never fewer
+        than :data:`LARGE_SURVEY_VECTORS`.
+    finest_scale : float
+        Finest resolvable wavelength s = :data:`FINEST_SPACINGS` × ``spacing`` (map units).
+    spacing : float
+        Median distance from a site to its nearest neighbour (map units).
+    reason : str
+        Plain-language note of the above.
+    """
+
+    n_vectors: int
+    design_vectors: int
+    budget_vectors: int
+    finest_scale: float
+    spacing: float
+    reason: str
+
+
+def large_survey_candidates(coords: pd.DataFrame) -> CandidateCount:
+    """Number of candidate spatial vectors per scheme for a survey above the dense limit.
+
+    The design sets the target: every vector down to the finest wavelength the layout
+    resolves, ≈ :data:`FINEST_SPACINGS` sampling intervals (the median nearest-neighbour
+    distance), counted by Weyl's law for the convex hull. A budget of
+    :data:`CANDIDATE_CELLS` values per scheme's candidate table (sites × vectors; Lanczos
+    time and memory grow with it) caps it, never below :data:`LARGE_SURVEY_VECTORS`.
+
+    Parameters
+    ----------
+    coords : DataFrame with columns ``x``, ``y``
+        Site coordinates in map units (at least 3 distinct sites).
+
+    Returns
+    -------
+    CandidateCount
+
+    Examples
+    --------
+    >>> gx, gy = np.meshgrid(np.arange(100.0), np.arange(100.0))
+    >>> count = large_survey_candidates(pd.DataFrame({"x": gx.ravel(), "y": gy.ravel()}))
+    >>> count.spacing, count.design_vectors, count.budget_vectors, count.n_vectors
+    (1.0, 3422, 200, 200)
+    """
+    if not isinstance(coords, pd.DataFrame) or list(coords.columns) != ["x", "y"]:
+        raise InputError("`coords` must be a DataFrame with columns ['x', 'y'] (map units); "
+                         f"got {type(coords).__name__}")
+    xy = coords.to_numpy(dtype=float)
+    n = xy.shape[0]
+    if n < 3 or not np.isfinite(xy).all():
+        raise InputError(f"`coords` must hold at least 3 sites with finite coordinates; got "
+                         f"{n} rows" + ("" if np.isfinite(xy).all() else " with NaN/inf"))
+    distance = scipy.spatial.cKDTree(xy).query(xy, k=2)[0][:, 1]
+    spacing = float(np.median(distance[distance > 0])) if (distance > 0).any() else 0.0
+    if spacing <= 0:
+        raise InputError("`coords` are all the same point; a layout needs distinct sites")
+    finest = FINEST_SPACINGS * spacing
+    try:
+        area = float(scipy.spatial.ConvexHull(xy - xy.mean(axis=0)).volume)
+    except scipy.spatial.QhullError:
+        area = 0.0
+    if area > 0:
+        weyl, how = math.pi * area / finest ** 2, "π × hull area / s²"
+    else:
+        weyl, how = extent_wavelength(xy) / finest, "2 × transect length / s"
+    design = max(1, min(int(math.ceil(weyl)), n // 2))
+    budget = max(LARGE_SURVEY_VECTORS, CANDIDATE_CELLS // n)
+    k = min(design, budget)
+    why = ("all of them" if design <= budget else
+           f"the broadest {k}: a budget of {CANDIDATE_CELLS / 1e6:g} million table values "
+           f"(sites × vectors) per scheme, at least {LARGE_SURVEY_VECTORS}, keeps the "
+           f"eigen-decompositions and tests affordable")
+    reason = (f"With {n} sites the spatial vectors were computed by Lanczos. The layout "
+              f"resolves structures down to about {finest:.4g} map units ({FINEST_SPACINGS:g} "
+              f"× the median nearest-neighbour spacing, {spacing:.4g}), about {design} vectors "
+              f"({how}); {k} per scheme were candidates, {why}. Finer scales were "
+              f"{'not ' if design > budget else ''}examined"
+              + ("; raise `max_vectors` to look at them." if design > budget else "."))
+    return CandidateCount(k, design, budget, finest, spacing, reason)
 
 
 def _one_basis(Y, basis, *, level, global_permutations, alpha, conditioning, seed, options):

@@ -122,6 +122,27 @@ class TestRun:
         assert main(args) == 2
         assert "at least 19" in capsys.readouterr().err
 
+    def test_options_refused_before_the_files_are_read(self, small_survey_files, tmp_path,
+                                                       capsys):
+        # the species file does not exist: an option error must be what the user hears first
+        missing = dict(small_survey_files, species=tmp_path / "not-there.csv")
+        for extra, said in ((["--weighting", "gabriel"], "--weighting 'gabriel' is not"),
+                            (["--alpha", "0.9"], "--alpha must be"),
+                            (["--scale-breaks", "-3"], "--scale-breaks must be > 0")):
+            assert main(run_args(missing, tmp_path / "o", *extra)) == 2
+            err = capsys.readouterr().err.strip().splitlines()
+            assert len(err) == 1 and said in err[0], err
+
+    def test_scale_breaks_outside_the_basis(self, small_survey_files, tmp_path, capsys):
+        # only the analysis knows the basis's scales: said in option words, nothing written
+        out = tmp_path / "o"
+        assert main(run_args(small_survey_files, out, "--scale-breaks", "1e9")) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1
+        assert "--scale-breaks 1e+09 lie(s) outside the scales of the spatial basis" in err[0]
+        assert "metre); give boundaries between them" in err[0]
+        assert not out.exists() and leftovers(tmp_path) == []
+
 
 class TestDemo:
     def test_demo_writes_inputs_and_truth(self, tmp_path, capsys):

@@ -28,7 +28,7 @@ __all__ = ["add_survey_options", "read_options", "survey_from_args", "PARAMETER_
            "option_names", "in_option_words"]
 
 _ANALYSIS_PARAMETERS = {"schemes": "--weighting", "spatial_weighting": "--weighting",
-                        "n_permutations": "--permutations"}
+                        "n_permutations": "--permutations", "n_workers": "--workers"}
 
 # command -> {library parameter: option}, for the parameters whose option has another name
 # (a parameter called like its option, e.g. `alpha` / --alpha, is taken from the parser)

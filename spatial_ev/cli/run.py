@@ -239,6 +239,22 @@ def _check_out_folder(args: argparse.Namespace) -> None:
                          f"pass --overwrite")
 
 
+def _check_breaks_within_basis(breaks, result) -> None:
+    """A scale-class boundary outside the scales of the chosen basis leaves a class with no
+    vector; only the analysis knows those scales, so this is said after it, before writing."""
+    if not breaks:
+        return
+    scales = result.basis.scale
+    low, high = float(scales.min()), float(scales.max())
+    outside = [b for b in breaks if not low < b < high]
+    if outside:
+        unit = getattr(result.survey, "distance_unit", None) or "map units"
+        raise InputError(f"--scale-breaks {' '.join(f'{b:g}' for b in outside)} lie(s) outside "
+                         f"the scales of the spatial basis ({low:.4g} to {high:.4g} {unit}); "
+                         f"give boundaries between them, or leave --scale-breaks out for three "
+                         f"classes of equal size")
+
+
 def check_survey_for_run(survey) -> None:
     """Refuse a survey the analysis cannot take (fewer than :data:`ANALYSIS_MIN_SITES` sites);
     ``check`` applies it too, so that it never passes what ``run`` refuses.
@@ -270,6 +286,7 @@ def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=Non
                          scheduler=args.scheduler, progress=progress,
                          environment_test=args.environment_test, max_vectors=args.max_vectors,
                          n_workers=args.workers)
+        _check_breaks_within_basis(args.scale_breaks, result)
         progress("writing the run folder")
         params = {"command_line": sys.argv[1:] if sys.argv else [],
                   "read_options": reading or {}}

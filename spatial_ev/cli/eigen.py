@@ -82,6 +82,11 @@ def execute(args: argparse.Namespace) -> int:
     from spatial_ev.report.folder import atomic_folder
     from spatial_ev.report.layers import write_layers, write_table
 
+    if args.max_distance is not None and args.graph != "distance_based" \
+            and args.weighting not in ("linear", "concave_down"):
+        raise InputError(f"--max-distance applies to --weighting linear or concave_down (the "
+                         f"weightings that fall to 0 at that distance); got --weighting "
+                         f"{args.weighting}; drop it")
     survey = survey_from_args(args)
     common = dict(max_vectors=args.max_vectors, finest_scale=args.finest_scale,
                   sign=args.autocorrelation)

@@ -237,7 +237,22 @@ def run_one(n: int, mode: str, n_permutations: int) -> dict:
            "summary": json.dumps(record, sort_keys=True)}
     if clock is not None:
         out["stages"] = dict(clock.totals)
+    out["comparison_s"] = _comparison_seconds(stages, start + wall)
     return out
+
+
+_AFTER_COMPARISON = ("partitioning", "testing the environment-only", "fitting the scale",
+                     "local contributions")
+
+
+def _comparison_seconds(stages: list[tuple[float, str]], end: float) -> float:
+    """Wall time of the weighting-scheme comparison, from the progress messages: from
+    "comparing ... scheme(s)" to the first message of a later step."""
+    begin = next((t for t, m in stages if m.startswith("comparing")), None)
+    if begin is None:
+        return float("nan")
+    return next((t for t, m in stages if t > begin and m.startswith(_AFTER_COMPARISON)),
+                end) - begin
 
 
 def _subprocess(n: int, mode: str, n_permutations: int) -> dict:
@@ -278,6 +293,8 @@ def main() -> None:
             print(f"{n:>7,d} sites  {mode:<10s}  wall {r['wall_s']:8.1f} s  "
                   f"CPU {r['cpu_s']:8.1f} s  peak {peak}  load {r['load_average']:.1f}  "
                   f"chosen {r['chosen']} ({r['n_selected']} of {r['n_vectors']} vectors)")
+            print(f"{'':>16s}weighting-scheme comparison {r['comparison_s']:.1f} s "
+                  f"({r['comparison_s'] / r['wall_s']:.0%} of the wall time)")
             if "stages" in r:
                 shares = r["stages"]
                 named = sum(shares.values())

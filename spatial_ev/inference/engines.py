@@ -171,12 +171,26 @@ _cache: OrderedDict = OrderedDict()
 _cache_lock = threading.Lock()
 
 
+def _one_blas_thread_for_good():
+    """Keep this (worker) process at one BLAS thread: for the libraries loaded now (scipy's
+    own BLAS is loaded first, so that it is among them) and, through the environment, for any
+    loaded later."""
+    for name in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "OMP_NUM_THREADS",
+                 "BLIS_NUM_THREADS"):
+        os.environ[name] = "1"
+    try:
+        import scipy.linalg  # noqa: F401  (scipy may carry a BLAS of its own)
+    except ImportError:  # pragma: no cover - scipy is a dependency
+        pass
+    return threadpool_limits(limits=1, user_api="blas")
+
+
 def _initialise_worker() -> None:
     """Initializer of a local worker process: one BLAS thread, nested pools run inline."""
     global _in_worker, _initialisations, _worker_limiter
     _in_worker = True
     _initialisations += 1
-    _worker_limiter = threadpool_limits(limits=1, user_api="blas")
+    _worker_limiter = _one_blas_thread_for_good()
 
 
 def _cached_function(token: str, payload: bytes | None, path: str | None) -> Callable:
@@ -259,7 +273,7 @@ def _call(function, task):
             return _as_task(function, task)
     if not _dask_limited:
         _dask_limited = True
-        _worker_limiter = threadpool_limits(limits=1, user_api="blas")
+        _worker_limiter = _one_blas_thread_for_good()
     return _as_task(function, task)
 
 

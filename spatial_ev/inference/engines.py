@@ -18,7 +18,9 @@ Engines (:data:`ENGINES`):
     paid once per session. The function (with the arrays it holds) is pickled once per call and
     loaded once per worker: small functions travel with the tasks and are unpickled only by the
     first task a worker runs (a per-worker cache keyed by a token), large ones are written once
-    to a temporary file that each worker reads once.
+    to a temporary file that each worker reads once. Worker processes import the main module
+    of the program, so a script that uses this engine must start its work under
+    ``if __name__ == "__main__":`` (the ``spatial-ev`` command does).
 ``"dask"``
     A ``dask.distributed`` cluster: a scheduler address, an existing Client, or a LocalCluster
     of single-thread worker processes kept for the session. The function is scattered once to

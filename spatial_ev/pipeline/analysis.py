@@ -331,7 +331,8 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         worker processes, one BLAS thread each; the weighting schemes are compared in
         parallel, one task each) or ``"dask"`` (likewise on a dask.distributed cluster, with a
         scheduler address or Client, or a temporary local cluster). The result does not
-        depend on the engine or the number of workers.
+        depend on the engine or the number of workers. A script using ``"processes"`` must
+        run under ``if __name__ == "__main__":`` (the workers import the main module).
     progress : callable, optional
         Called with a short message at each stage and test.
     environment_test : {"spectral", "permutation"}

@@ -133,3 +133,41 @@ class TestBiasOfAdjustedFractions:
             raw.append(explained_fraction(y, v).r2)
         truth = 1 - studies.true_fractions()["unexplained"]
         assert np.mean(raw) - truth > 0.05
+
+
+@pytest.fixture(scope="module")
+def sequential():
+    # the same data and seed analysed with full-count and with sequential step tests (999
+    # permutations; the sequential rule needs several looks to stop early)
+    return {("null", "grid"): studies.sequential_study("null", "grid", 300, seed=2026120221),
+            ("no_global", "irregular"): studies.sequential_study("no_global", "irregular",
+                                                                 300, seed=2026120222),
+            ("broad", "10"): studies.sequential_study("broad", "10", 150, seed=2026120223)}
+
+
+@pytest.mark.slow
+class TestSequentialStepDecisions:
+    def test_type_one_error_of_selection_keeps_the_level(self, sequential):
+        # global test first (Blanchet, Legendre & Borcard 2008): selecting ≥ 1 vector under
+        # no structure stays at most α with sequential steps too
+        r = sequential[("null", "grid")]
+        _, hi = binomial_interval(300)
+        assert r["selected_sequential"] <= hi
+        assert abs(r["selected_sequential"] - r["selected_fixed"]) <= 0.01
+
+    def test_step_decisions_agree_with_the_full_count(self, sequential):
+        # every replicate runs a step test: a non-significant step stops at its h-th
+        # exceedance (Besag & Clifford 1991, Biometrika 78:301-304) and takes the full
+        # count's decision; an early significant stop differs with probability ≤ ε = 0.001
+        # when p ≥ α (Gandy 2009, JASA 104:1504-1511) [derived bound: ≤ 300·ε expected]
+        r = sequential[("no_global", "irregular")]
+        assert r["differ"] <= 0.01
+        expected = studies.no_global_expected(int(r["m"]))
+        assert abs(r["selected_sequential"] - expected) <= 0.08
+        assert r["permutations_sequential"] < 0.8 * r["permutations_fixed"] == 0.8 * 999
+
+    def test_power_kept_with_fewer_permutations(self, sequential):
+        r = sequential[("broad", "10")]
+        assert r["selected_sequential"] >= r["selected_fixed"] - 0.01
+        assert abs(r["size_sequential"] - r["size_fixed"]) <= 0.05
+        assert r["permutations_sequential"] < 0.7 * 999

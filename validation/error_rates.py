@@ -48,6 +48,15 @@ What is simulated (all seeded; level α = 0.05):
   Methods Ecol. Evol. 6:1169–1178) with two weightings W, on the same data: the truncated
   distance-based W of the MEM, and the dense distance-decay W = exp(−d/t) (t = truncation
   distance, 100 m on the grid, 149 m on the irregular layout) that ``analyse`` uses.
+* Sequential step decisions (:func:`sequential_study`): the same data and seed analysed twice,
+  forward selection with the full count of permutations per step and with sequential step
+  decisions (``sequential_steps=True``: a step stops at its h-th exceedance, Besag & Clifford
+  1991, or early as significant with risk ε = 0.001, Gandy 2009); global tests always draw
+  the full count; 999 permutations. Settings: ``null`` (no structure, layouts above, global
+  test + double stop), ``no_global`` (no structure, ``global_test="skip"``, no ceiling, one
+  variable: every replicate runs a step test), ``broad`` (the power design above, grid 6 × 6
+  and 10 × 10). Reported: rate of ≥ 1 selected vector under each rule, share of replicates
+  whose selected sets differ, mean permutations per step test.
 * Environment-only fraction [a] with autocorrelated tables (:func:`fraction_spectral_study`):
   as above, the community also carries effects of the 3 broadest MEM, and the environment is
   tested given those 3 vectors.
@@ -199,6 +208,91 @@ def power_study(kind: str, side: int, replicates: int, *, permutations: int = 99
         selected += len(sel.selected) > 0
     return {"power": detected / replicates, "selected": selected / replicates,
             "n": len(xy), "m": vectors.shape[1]}
+
+
+# ------------------------------------------------------------------------------ sequential steps
+
+SEQUENTIAL_SETTINGS = ("null", "no_global", "broad")
+
+
+@one_blas_thread
+def sequential_study(setting: str, where: str, replicates: int, *, permutations: int = 999,
+                     seed: int = 20261205) -> dict[str, float | int]:
+    """Forward selection with the full count and with sequential step decisions on the same
+    data and seed (module notes). ``where``: a layout name ("grid", "irregular") for "null"
+    and "no_global", a grid side ("6", "10") for "broad"."""
+    if setting not in SEQUENTIAL_SETTINGS:
+        raise ValueError(f"unknown setting {setting!r}")
+    rng = np.random.default_rng(seed)
+    xy = layout(where) if setting != "broad" else square_grid(int(where),
+                                                              POWER_EXTENT / (int(where) - 1))
+    n = len(xy)
+    vectors = distance_eigenvectors(xy).vectors
+    signal = POWER_EFFECT * structure("broad", xy)[:, None] if setting == "broad" else 0.0
+    options = ({"global_test": "skip", "r2_adj_limit": np.inf, "max_variables": 1}
+               if setting == "no_global" else {})
+    hits = {"fixed": 0, "sequential": 0}
+    size = {"fixed": 0, "sequential": 0}
+    steps = {"fixed": 0, "sequential": 0}
+    drawn = {"fixed": 0, "sequential": 0}
+    differ = 0
+    for _ in range(replicates):
+        y = signal + rng.normal(size=(n, N_SPECIES))
+        stream = int(rng.integers(2 ** 63))
+        result = {}
+        for rule in ("fixed", "sequential"):
+            sel = forward_selection(y, vectors, alpha=ALPHA, n_permutations=permutations,
+                                    seed=stream, engine="local",
+                                    sequential_steps=rule == "sequential", **options)
+            result[rule] = sel.selected
+            hits[rule] += len(sel.selected) > 0
+            size[rule] += len(sel.selected)
+            steps[rule] += int(np.isfinite(sel.steps["p_value"].to_numpy(float)).sum())
+            drawn[rule] += sel.step_permutations
+        differ += result["fixed"] != result["sequential"]
+    out: dict[str, float | int] = {
+        "n": n, "m": vectors.shape[1], "differ": differ / replicates}
+    for rule in ("fixed", "sequential"):
+        out[f"selected_{rule}"] = hits[rule] / replicates
+        out[f"size_{rule}"] = size[rule] / replicates
+        out[f"permutations_{rule}"] = drawn[rule] / max(steps[rule], 1)
+        out[f"steps_{rule}"] = steps[rule]
+    return out
+
+
+def sequential_rows(replicates: int, *, seed: int, progress=lambda m: None) -> list[Row]:
+    """Rows of the sequential-decision study (fixed count vs sequential, same data)."""
+    rows = []
+    interval = binomial_interval(replicates)
+    cases = [("null", "grid"), ("null", "irregular"), ("no_global", "grid"),
+             ("no_global", "irregular"), ("broad", "6"), ("broad", "10")]
+    for setting, where in cases:
+        progress(f"sequential step decisions: {setting}, {where}")
+        r = sequential_study(setting, where, replicates, seed=seed + 5)
+        name = where if setting != "broad" else f"grid {where}×{where}"
+        what = {"null": "type I: forward selection, global test + double stop (≥ 1 selected)",
+                "no_global": "selection without global test, one variable (≥ 1 selected)",
+                "broad": f"power: broad structure, a = {POWER_EFFECT} (≥ 1 selected)"}[setting]
+        expected = {"null": "≤ 0.05",
+                    "no_global": f"≈ 1 − (1 − α)^{int(r['m'])} = "
+                                 f"{no_global_expected(int(r['m'])):.3f}",
+                    "broad": "same as fixed"}[setting]
+        band = interval if setting == "null" else _observed_interval(
+            r["selected_fixed"], replicates)
+        note = (f"selections differ in {r['differ']:.4f} of replicates; permutations per "
+                f"step test {r['permutations_fixed']:.0f} → {r['permutations_sequential']:.0f}"
+                f" ({int(r['steps_sequential'])} step tests); mean vectors selected "
+                f"{r['size_fixed']:.3f} → {r['size_sequential']:.3f}")
+        rows += [Row(f"{what}, full count", name, int(r["n"]), replicates, r["selected_fixed"],
+                     band, expected),
+                 Row(f"{what}, sequential steps ({note})", name, int(r["n"]), replicates,
+                     r["selected_sequential"], band, expected)]
+    return rows
+
+
+def _observed_interval(rate: float, replicates: int) -> tuple[float, float]:
+    lo, hi = stats.binom.interval(0.99, replicates, rate)
+    return float(lo / replicates), float(hi / replicates)
 
 
 # ------------------------------------------------------------------------------ bias
@@ -455,6 +549,31 @@ def to_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
     return "\n".join(lines)
 
 
+SEQUENTIAL_MARK = "## Sequential step decisions"
+
+
+def sequential_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
+    """The section of the sequential-decision study (replaced on each rerun)."""
+    lines = [SEQUENTIAL_MARK, "",
+             f"Generated by `{command}` in {seconds:.0f} s; level α = {ALPHA:g}, 999 "
+             "permutations per test, decision risk ε = 0.001. Each replicate is analysed twice "
+             "with the same data and seed: every step test drawing the full count, and step "
+             "tests stopping once \"p ≤ α?\" is settled (non-significant steps at their h-th "
+             "exceedance, Besag & Clifford 1991, Biometrika 78:301–304; clearly significant "
+             "steps at an early look with risk ≤ ε, Gandy 2009, JASA 104:1504–1511). Global "
+             "tests always draw the full count. 99% interval: binomial around α (type I rows) "
+             "or around the full-count rate (other rows).", "",
+             "| study | layout | n | replicates | rate | 99% interval | expected |",
+             "|---|---|---:|---:|---:|---|---|"]
+    for r in rows:
+        lines.append(f"| {r.study} | {r.layout} | {r.n} | {r.replicates} | {r.rate:.4f} | "
+                     f"[{r.interval[0]:.4f}, {r.interval[1]:.4f}] | {r.expected} |")
+    lines += ["", "A non-significant step stops at its h-th exceedance and always takes the "
+              "decision the full count would take; only an early significant stop can differ, "
+              "with probability at most ε when the step's p over all permutations is ≥ α.", ""]
+    return "\n".join(lines)
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--replicates", type=int, default=2000)
@@ -462,8 +581,26 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--seed", type=int, default=20261202)
     parser.add_argument("--out", type=Path,
                         default=Path(__file__).resolve().parent / "error_rates.md")
+    parser.add_argument("--sequential-only", action="store_true",
+                        help="rerun only the sequential-decision study and replace its "
+                             "section of --out (999 permutations per test)")
     args = parser.parse_args(argv)
     start = time.perf_counter()
+    if args.sequential_only:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            rows = sequential_rows(args.replicates, seed=args.seed,
+                                   progress=lambda m: print(m, file=sys.stderr, flush=True))
+        seconds = time.perf_counter() - start
+        command = (f"python validation/error_rates.py --sequential-only --replicates "
+                   f"{args.replicates} --seed {args.seed}")
+        old = args.out.read_text(encoding="utf-8") if args.out.exists() else ""
+        head = old.split(SEQUENTIAL_MARK)[0].rstrip("\n")
+        args.out.write_text(head + "\n\n" + sequential_markdown(rows, seconds=seconds,
+                                                                command=command),
+                            encoding="utf-8")
+        print(f"wrote {args.out} ({seconds:.0f} s)", file=sys.stderr)
+        return 0
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         rows = run_all(args.replicates, permutations=args.permutations, seed=args.seed,
@@ -471,7 +608,10 @@ def main(argv: list[str] | None = None) -> int:
     seconds = time.perf_counter() - start
     command = (f"python validation/error_rates.py --replicates {args.replicates} "
                f"--permutations {args.permutations} --seed {args.seed}")
-    args.out.write_text(to_markdown(rows, seconds=seconds, command=command), encoding="utf-8")
+    old = args.out.read_text(encoding="utf-8") if args.out.exists() else ""
+    kept = (SEQUENTIAL_MARK + old.split(SEQUENTIAL_MARK, 1)[1]) if SEQUENTIAL_MARK in old else ""
+    args.out.write_text(to_markdown(rows, seconds=seconds, command=command)
+                        + ("\n" + kept if kept else ""), encoding="utf-8")
     print(f"wrote {args.out} ({seconds:.0f} s)", file=sys.stderr)
     return 0
 

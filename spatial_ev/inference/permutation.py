@@ -32,6 +32,10 @@ SS_residual, which is cheaper. Tasks (``chunk_size`` permutations each) run on
 :func:`spatial_ev.inference.engines.run_tasks`: locally one thread per core, each drawing its own
 permutations and calling single-threaded BLAS.
 
+Callers that grow a model themselves (forward selection) test on their own orthonormal bases
+with :func:`orthonormal_permutation_test`, which factorises nothing and can stop once the
+decision "p ≤ α?" is settled (:func:`spatial_ev.inference.null.sequential_decision`).
+
 Reproducibility. Permutations are drawn in fixed blocks of 128 from
 ``SeedSequence(entropy, spawn_key=(block,))``, where ``entropy`` is drawn once from the seed.
 The same seed therefore gives the same permutations -- and the same null distribution up to

@@ -303,3 +303,20 @@ class TestPowerOnDemoModel:
                    - fr.loc[("pilot", "environment_only"), "pilot"]) < 0.05
         assert (ev.fractions["sd"] > 0).all()
         assert math.isfinite(fr.loc[("thin:every=4", "space_only"), "bias"])
+
+
+@pytest.mark.slow
+class TestDemoDoneWhen:
+    def test_augmenting_keeps_and_thinning_loses_the_fine_class(self, demo_pilot):
+        # on the demo pilot: 40 sites added in the largest gaps detect the fine class at
+        # least as often as the pilot (within 2 SE, common random numbers), and thinning by
+        # 2 loses it (not resolved, never detected, never recommended for it)
+        ev = evaluate_design(demo_pilot, ["augment:add=40", "thin:every=2"], n_simulations=30,
+                             n_permutations=99, seed=11)
+        p = ev.power.set_index(["layout", "objective"])
+        a, b = p.loc[("augment:add=40", "scale:fine")], p.loc[("pilot", "scale:fine")]
+        assert a["power"] >= b["power"] - 2 * np.hypot(a["mc_se"], b["mc_se"])
+        thin = p.loc[("thin:every=2", "scale:fine")]
+        assert thin["resolution"] == "not resolved" and thin["power"] == 0
+        fine = [r for r in ev.recommendations if "fine scale class" in r]
+        assert fine and not any("'thin:every=2'" in r and "you need" in r for r in fine)

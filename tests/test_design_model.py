@@ -13,6 +13,7 @@ from spatial_ev.design.evaluate import layout_basis
 from spatial_ev.design.layouts import CandidateLayout
 from spatial_ev.design.simulate import (
     band_members,
+    band_spectrum,
     draw_fields,
     draw_truth,
     environment_at,
@@ -22,6 +23,7 @@ from spatial_ev.design.simulate import (
     pilot_model,
     site_uniforms,
     stop_category,
+    vector_spectrum,
 )
 from spatial_ev.errors import InputError
 from spatial_ev.input.survey import Survey
@@ -130,8 +132,8 @@ class TestPilotModel:
             assert np.allclose(rebuilt, factor * structure, atol=1e-9)
             # latent fields have unit variance among the pilot sites
             assert np.allclose(comp.pilot_scores.var(axis=0, ddof=1), 1.0)
-            lo, hi = comp.band
-            assert 0 < lo < hi < np.inf
+            lam, w = comp.spectrum
+            assert np.all(lam > 0) and w.sum() == pytest.approx(1.0) and np.all(w >= 0)
         n, m = X.shape[0], X.shape[1] - 1
         resid = (Y - X @ coef) * np.sqrt((n - 1) / (n - 1 - m))
         # the independent residual rows are the fit's, inflated, and shrunk by the share moved
@@ -203,25 +205,27 @@ class TestFields:
         from scipy.integrate import quad
         from scipy.special import j0
 
-        band = (40.0, 160.0)
+        spectrum = band_spectrum((40.0, 160.0))
         for h in (0.0, 10.0, 35.0, 90.0):
             exact = quad(lambda s: j0(2 * np.pi * h / np.exp(s)), np.log(40), np.log(160))[0] \
                 / np.log(4)
-            assert field_covariance(np.array([h]), band)[0] == pytest.approx(exact, abs=2e-3)
+            assert field_covariance(np.array([h]), spectrum)[0] == pytest.approx(exact,
+                                                                                 abs=2e-3)
 
     def test_draws_have_that_covariance(self):
         # Monte Carlo: over 4000 realisations the correlation of the field at two points h
         # apart matches field_covariance within 3 standard errors (SE ≈ (1 − r²)/√N)
         from spatial_ev.design.simulate import FieldComponent
 
-        comp = FieldComponent("x", (40.0, 160.0), np.ones((1, 1)), 1.0, np.zeros((1, 1)))
+        comp = FieldComponent("x", band_spectrum((40.0, 160.0)), np.ones((1, 1)), 1.0,
+                              np.zeros((1, 1)))
         xy = np.array([[0.0, 0.0], [25.0, 0.0], [0.0, 60.0]])
         rng = np.random.default_rng(20261202)
         draws = np.array([draw_fields((comp,), rng, xy)[0][:, 0] for _ in range(4000)])
         assert draws.var(axis=0).mean() == pytest.approx(1.0, abs=0.08)
         for j, h in ((1, 25.0), (2, 60.0)):
             r = np.corrcoef(draws[:, 0], draws[:, j])[0, 1]
-            expected = field_covariance(np.array([h]), comp.band)[0]
+            expected = field_covariance(np.array([h]), comp.spectrum)[0]
             assert abs(r - expected) < 3 * (1 - expected ** 2) / np.sqrt(4000) + 0.01
 
     def test_common_random_numbers_site_by_site(self):
@@ -229,7 +233,8 @@ class TestFields:
         # the same field value and the same site-keyed noise whatever the other sites
         from spatial_ev.design.simulate import FieldComponent
 
-        comp = FieldComponent("x", (40.0, 160.0), np.ones((2, 3)), 1.3, np.zeros((1, 2)))
+        comp = FieldComponent("x", band_spectrum((40.0, 160.0)), np.ones((2, 3)), 1.3,
+                              np.zeros((1, 2)))
         a = np.array([[5.0, 5.0], [100.0, 20.0]])
         b = np.array([[300.0, 1.0], [7.0, 9.0], [5.0, 5.0]])
         fa = draw_fields((comp,), np.random.default_rng(3), a)[0]
@@ -243,6 +248,19 @@ class TestFields:
 
         many = site_uniforms(np.random.default_rng(0).uniform(0, 1e3, (5000, 2)), 5, 1, 1e-6)
         assert stats.kstest(many[:, 0], "uniform").pvalue > 0.001
+
+
+    def test_vector_spectrum_finds_a_known_wave(self):
+        # a plane wave of 40 m at 30° sampled on an irregular layout, centred and normed: its
+        # spectrum peaks at 40 m (within one grid step, 64 points over 10–400 m)
+        rng = np.random.default_rng(4)
+        xy = rng.uniform(0, 300, (150, 2))
+        k = 2 * np.pi / 40.0 * np.array([np.cos(0.52), np.sin(0.52)])
+        u = np.cos(xy @ k)[:, None]
+        u -= u.mean(0)
+        u /= np.linalg.norm(u)
+        lam, w = vector_spectrum(xy, u, np.array([1.0]), (10.0, 400.0))
+        assert lam[w.argmax()] == pytest.approx(40.0, rel=np.log(40) / 64 * 1.1)
 
 
 class TestDetectionPieces:

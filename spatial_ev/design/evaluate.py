@@ -219,12 +219,13 @@ def _status(count: int, name: str, shares: dict) -> str:
     return "resolved" if shares[name] >= max(shares.values()) else "partly"
 
 
-def band_shares(basis: Any, coords: Any, band: tuple[float, float],
-                vector_bands: dict, *, seed: int = 0) -> dict:
+def band_shares(basis: Any, coords: Any, spectrum: tuple, vector_bands: dict, *,
+                seed: int = 0) -> dict:
     """Expected share of a band-limited field carried by a basis's vectors of each scale band.
 
-    A stationary field with wavelengths log-uniform in ``band`` (as the simulated truth of a
-    scale class) is sampled at the layout's sites; the share of its variation among the sites
+    A stationary field with the wavelength ``spectrum`` (``(wavelengths, weights)``, as the
+    simulated truth of a scale class, :func:`~spatial_ev.design.simulate.class_spectrum`) is
+    sampled at the layout's sites; the share of its variation among the sites
     that lies on the basis's vectors whose scale falls in each of ``vector_bands`` (name →
     (lower, upper], map units) is estimated from 512 random waves, a fixed sample so tables
     repeat. What no vector carries (structure finer than the layout's positive-I vectors)
@@ -233,16 +234,18 @@ def band_shares(basis: Any, coords: Any, band: tuple[float, float],
     Examples
     --------
     >>> basis, _, _ = layout_basis(xy, "distance")  # doctest: +SKIP
-    >>> band_shares(basis, xy, (40.0, 80.0), {"fine": (0, 80.0), "broad": (80.0, np.inf)})
+    >>> band_shares(basis, xy, band_spectrum((40.0, 80.0)),
+    ...             {"fine": (0, 80.0), "broad": (80.0, np.inf)})
     ... # doctest: +SKIP
     {'fine': 0.61, 'broad': 0.12}
     """
-    from spatial_ev.design.simulate import band_wavelengths
+    from spatial_ev.design.simulate import spectrum_wavelengths
 
     xy = np.asarray(coords, dtype=float)
     xy = xy - xy.mean(axis=0)
     rng = np.random.default_rng(seed)
-    lam = band_wavelengths(band, rng.random(_COVERAGE_FEATURES))
+    lam = spectrum_wavelengths(spectrum, rng.random(_COVERAGE_FEATURES),
+                               rng.random(_COVERAGE_FEATURES))
     theta = rng.uniform(0, 2 * np.pi, _COVERAGE_FEATURES)
     phase = rng.uniform(0, 2 * np.pi, _COVERAGE_FEATURES)
     waves = np.cos(xy @ (2 * np.pi / lam * np.vstack([np.cos(theta), np.sin(theta)])) + phase)
@@ -285,11 +288,12 @@ def spectral_coverage(pilot: Analysis, layouts: Sequence[CandidateLayout | str],
 
 
 def _coverage(pilot: Analysis, built: list[CandidateLayout]) -> SpectralCoverage:
-    from spatial_ev.design.simulate import class_band
+    from spatial_ev.design.simulate import pilot_model
     from spatial_ev.space.scales import resolvable_scales
 
     classes = _pilot_classes(pilot)
     bands = {r.scale_class: (r.lower, r.upper) for r in classes.itertuples()}
+    spectra = _class_spectra(pilot, pilot_model)
     scheme = pilot.settings.chosen_scheme
     rows, crow, bases = [], [], {}
     for lay in built:
@@ -305,7 +309,7 @@ def _coverage(pilot: Analysis, built: list[CandidateLayout]) -> SpectralCoverage
                      "note": "; ".join(t for t in (lay.note, note) if t)})
         for c in classes.itertuples():
             count = int(np.count_nonzero((scale > c.lower) & (scale <= c.upper)))
-            shares = band_shares(basis, xy, class_band(pilot, c.scale_class), bands)
+            shares = band_shares(basis, xy, spectra[c.scale_class], bands)
             carried = shares[c.scale_class]
             aliased = sum(shares.values()) - carried
             crow.append({"layout": lay.name, "scale_class": c.scale_class, "lower": c.lower,
@@ -314,6 +318,25 @@ def _coverage(pilot: Analysis, built: list[CandidateLayout]) -> SpectralCoverage
                          "carried": carried, "aliased": aliased,
                          "status": _status(count, c.scale_class, shares)})
     return SpectralCoverage(pd.DataFrame(rows).set_index("layout"), pd.DataFrame(crow), bases)
+
+
+def _class_spectra(pilot: Analysis, pilot_model) -> dict:
+    """Each class's spectrum as the simulated truth uses it (vectors weighted by the joint
+    fit's coefficients when the pilot model can be fitted)."""
+    from spatial_ev.design.simulate import class_spectrum
+
+    try:
+        model = pilot_model(pilot)
+    except DesignError:
+        model = None
+    names = list(pilot.selected_space)
+    out = {}
+    for fit in pilot.scale_fits:
+        coef = None
+        if model is not None and "space" in model.coef and fit.scale_class.vectors:
+            coef = model.coef["space"][[names.index(v) for v in fit.scale_class.vectors]]
+        out[fit.scale_class.name] = class_spectrum(pilot, fit.scale_class.name, coef)
+    return out
 
 
 def _check_pilot_layouts(pilot, layouts, area, seed) -> tuple[Analysis, list[CandidateLayout]]:
@@ -480,7 +503,8 @@ class DesignEvaluation:
         """JSON-ready record (``design.json``)."""
         def clean(frame: pd.DataFrame) -> list[dict]:
             out = []
-            for rec in frame.reset_index().to_dict(orient="records"):
+            plain = isinstance(frame.index, pd.RangeIndex)  # row numbers are not data
+            for rec in frame.reset_index(drop=plain).to_dict(orient="records"):
                 out.append({str(k): (None if isinstance(v, float) and not math.isfinite(v)
                                      else (round(v, 10) if isinstance(v, float) else
                                            (v.item() if hasattr(v, "item") else v)))

@@ -12,10 +12,10 @@ Generating model (all parameters in :data:`PARAMETERS`; numpy only; one seed):
   each year (phase 0, 2π/3, 4π/3) — a fine-scale structure that changes position between
   surveys, i.e. a space–time interaction;
 * ``decline``: in the last survey only, at the sites within 90 m of a centre on the mudflat,
-  three quarters of the taxa drop to about 2 % of their expected count (log expected count
-  − 4) — a cluster of sites that lose species;
+  38 of the 40 taxa drop to about 0.25 % of their expected count (log expected count − 6) —
+  a cluster of sites that lose most of their species;
 * log expected count of taxon j at site i in year t = intercept_j + a_j·shore_i + b_j·broad_i
-  + c_j·moving_it − 4·decline_ijt + an overdispersion deviation N(0, 0.3²) drawn anew for every
+  + c_j·moving_it − 6·decline_ijt + an overdispersion deviation N(0, 0.3²) drawn anew for every
   site, taxon and year; counts are Poisson draws.
 
 :func:`generate_resurvey` with ``moving=False, decline=False`` gives the no-change variant
@@ -48,7 +48,7 @@ PARAMETERS: dict[str, Any] = {
     "moving": {"wavelength_m": 180.0, "direction_deg": 30.0,
                "phase_per_year_rad": 2.0943951023931953},
     "decline": {"centre_offset_m": [420.0, 220.0], "radius_m": 90.0,
-                "fraction_of_taxa": 0.9, "log_drop": 5.0},
+                "fraction_of_taxa": 0.95, "log_drop": 6.0},
     "overdispersion_sd": 0.3,
 }
 

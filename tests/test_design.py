@@ -144,6 +144,7 @@ class TestSpectralCoverage:
         # vectors; a band-limited field puts nothing on vectors of a band it has no part in
         # only if those vectors are orthogonal to it, so only the sum is checked
         from spatial_ev.design.evaluate import band_shares
+        from spatial_ev.design.simulate import band_spectrum
 
         rng = np.random.default_rng(20261202)
         xy = rng.uniform(0, 100, (30, 2))
@@ -151,7 +152,7 @@ class TestSpectralCoverage:
         basis = SimpleNamespace(vectors=pd.DataFrame(q[:, 1:]),
                                 scale=pd.Series(np.geomspace(200, 5, 29)))
         bands = {"broad": (50.0, np.inf), "medium": (20.0, 50.0), "fine": (0.0, 20.0)}
-        shares = band_shares(basis, xy, (20.0, 60.0), bands)
+        shares = band_shares(basis, xy, band_spectrum((20.0, 60.0)), bands)
         assert sum(shares.values()) == pytest.approx(1.0, abs=1e-12)
 
     def test_layout_table(self, grid_pilot):

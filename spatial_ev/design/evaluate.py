@@ -223,9 +223,9 @@ def band_shares(basis: Any, coords: Any, spectrum: tuple, vector_bands: dict, *,
                 seed: int = 0) -> dict:
     """Expected share of a band-limited field carried by a basis's vectors of each scale band.
 
-    A stationary field with the wavelength ``spectrum`` (``(wavelengths, weights)``, as the
-    simulated truth of a scale class, :func:`~spatial_ev.design.simulate.class_spectrum`) is
-    sampled at the layout's sites; the share of its variation among the sites
+    A stationary field with the wavelength ``spectrum`` (``(wavelengths, weights)``; for
+    coverage, log-uniform over a class's band, :func:`~spatial_ev.design.simulate.
+    band_spectrum`) is sampled at the layout's sites; the share of its variation among the sites
     that lies on the basis's vectors whose scale falls in each of ``vector_bands`` (name →
     (lower, upper], map units) is estimated from 512 random waves, a fixed sample so tables
     repeat. What no vector carries (structure finer than the layout's positive-I vectors)
@@ -288,12 +288,14 @@ def spectral_coverage(pilot: Analysis, layouts: Sequence[CandidateLayout | str],
 
 
 def _coverage(pilot: Analysis, built: list[CandidateLayout]) -> SpectralCoverage:
-    from spatial_ev.design.simulate import pilot_model
+    from spatial_ev.design.simulate import band_spectrum, class_band
     from spatial_ev.space.scales import resolvable_scales
 
     classes = _pilot_classes(pilot)
     bands = {r.scale_class: (r.lower, r.upper) for r in classes.itertuples()}
-    spectra = _class_spectra(pilot, pilot_model)
+    # geometry only: a field spread evenly (log scale) over each class's band
+    spectra = {r.scale_class: band_spectrum(class_band(pilot, r.scale_class))
+               for r in classes.itertuples()}
     scheme = pilot.settings.chosen_scheme
     rows, crow, bases = [], [], {}
     for lay in built:
@@ -318,25 +320,6 @@ def _coverage(pilot: Analysis, built: list[CandidateLayout]) -> SpectralCoverage
                          "carried": carried, "aliased": aliased,
                          "status": _status(count, c.scale_class, shares)})
     return SpectralCoverage(pd.DataFrame(rows).set_index("layout"), pd.DataFrame(crow), bases)
-
-
-def _class_spectra(pilot: Analysis, pilot_model) -> dict:
-    """Each class's spectrum as the simulated truth uses it (vectors weighted by the joint
-    fit's coefficients when the pilot model can be fitted)."""
-    from spatial_ev.design.simulate import class_spectrum
-
-    try:
-        model = pilot_model(pilot)
-    except DesignError:
-        model = None
-    names = list(pilot.selected_space)
-    out = {}
-    for fit in pilot.scale_fits:
-        coef = None
-        if model is not None and "space" in model.coef and fit.scale_class.vectors:
-            coef = model.coef["space"][[names.index(v) for v in fit.scale_class.vectors]]
-        out[fit.scale_class.name] = class_spectrum(pilot, fit.scale_class.name, coef)
-    return out
 
 
 def _check_pilot_layouts(pilot, layouts, area, seed) -> tuple[Analysis, list[CandidateLayout]]:

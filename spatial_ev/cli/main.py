@@ -22,7 +22,7 @@ from collections.abc import Callable, Sequence
 from typing import NamedTuple
 
 from spatial_ev import __version__
-from spatial_ev.cli import check, design, eigen, run
+from spatial_ev.cli import check, design, eigen, repeated, run
 from spatial_ev.cli.common import in_option_words, option_names
 from spatial_ev.errors import SpatialEVError, SpatialEVWarning
 
@@ -48,6 +48,7 @@ COMMANDS: dict[str, Command] = {
                     "run the whole analysis on the shipped demo survey"),
     "design": Command(design.configure, design.execute,
                       "evaluate candidate sampling layouts against a pilot analysis"),
+    "change": Command(repeated.configure, repeated.execute, repeated.HELP),
 }
 
 

@@ -1,7 +1,8 @@
 """``spatial-ev check``: validate survey files and describe what ``run`` would analyse.
 
 Reads the files with the same options as ``run`` and applies the rules ``run`` applies to
-them (e.g. the minimum number of sites), prints a description (sites, species,
+them (e.g. the minimum number of sites), reads and checks a river network given with
+``--network`` (describing it: edges, flow direction, snap distances), prints a description (sites, species,
 variables with their indicator columns, CRS and projection, extent, nearest-neighbour
 spacing, what was dropped and why) and writes nothing. Warnings (dropped species, projected
 degrees, ...) go to standard error; bad input ends with one line and exit status 2.
@@ -13,6 +14,12 @@ import argparse
 import sys
 
 from spatial_ev.cli.common import add_survey_options, survey_from_args
+from spatial_ev.cli.network import (
+    add_network_options,
+    check_network_options,
+    directional_scheme_count,
+    network_from_args,
+)
 from spatial_ev.cli.run import check_survey_for_run
 
 __all__ = ["configure", "execute"]
@@ -28,6 +35,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     True
     """
     add_survey_options(parser, species="optional", environment=True)
+    add_network_options(parser)
 
 
 def execute(args: argparse.Namespace) -> int:
@@ -39,9 +47,17 @@ def execute(args: argparse.Namespace) -> int:
     >>> main(["check", "--sites", "data_demo/sites.gpkg"])  # doctest: +SKIP
     0
     """
+    check_network_options(args)
     survey = survey_from_args(args)
     check_survey_for_run(survey)  # every rule `run` applies to the files
+    network = network_from_args(args, survey)
     print(survey.describe(), file=sys.stdout)
+    if network is not None:
+        print(network.describe(), file=sys.stdout)
+    if network is not None or args.bearing is not None:
+        print(f"directional schemes: `run` would add {directional_scheme_count(args)} to the "
+              f"comparison of weighting schemes (each counts in the Šidák-corrected level)",
+              file=sys.stdout)
     if survey.species is None:
         print("note: without --species only the spatial layout can be checked; "
               "`run` needs a species table", file=sys.stdout)

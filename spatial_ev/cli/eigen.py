@@ -5,7 +5,13 @@ Output folder (written whole or not at all):
 * ``spatial_vectors.csv`` — sites × vectors (``sv001`` …), indexed by site id;
 * ``vector_properties.csv`` — one row per vector: eigenvalue, Moran's I, scale (map units);
 * ``spatial_vectors.gpkg`` — layer ``spatial_vectors``: the site geometries with one column
-  per vector, in the survey's working CRS, ready to map.
+  per vector, in the survey's working CRS, ready to map; with ``--network`` also the layers
+  ``river_network`` (the lines, oriented with the flow) and ``spatial_vectors_along_network``
+  (the vectors' values at points spaced along the channels).
+
+With ``--network`` the basis is the river network's AEM (``aem001`` …) or, with
+``--network-basis distance``, the distance-based eigenvectors of along-network distances; with
+``--bearing`` the AEM of the sites' Delaunay graph oriented along the bearing.
 
 A summary (number of vectors, range of Moran's I and scales) is printed.
 """
@@ -16,6 +22,7 @@ import argparse
 import sys
 
 from spatial_ev.cli.common import add_survey_options, survey_from_args
+from spatial_ev.cli.network import add_network_options, check_network_options, network_from_args
 
 __all__ = ["configure", "execute"]
 
@@ -59,6 +66,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     basis.add_argument("--autocorrelation", choices=("positive", "negative", "all"),
                        default="positive",
                        help="keep vectors with positive Moran's I (default), negative, or all")
+    add_network_options(parser, one_basis=True)
     out = parser.add_argument_group("output")
     out.add_argument("--out", required=True, metavar="DIR", help="output folder to create")
     out.add_argument("--overwrite", action="store_true",
@@ -87,10 +95,17 @@ def execute(args: argparse.Namespace) -> int:
         raise InputError(f"--max-distance applies to --weighting linear or concave_down (the "
                          f"weightings that fall to 0 at that distance); got --weighting "
                          f"{args.weighting}; drop it")
+    check_network_options(args)
+    directional = args.network is not None or args.bearing is not None
+    if directional:
+        _refuse_straight_line_options(args)
     survey = survey_from_args(args)
     common = dict(max_vectors=args.max_vectors, finest_scale=args.finest_scale,
                   sign=args.autocorrelation)
-    if args.graph == "distance_based":
+    network = network_from_args(args, survey)
+    if directional:
+        basis = _directional_basis(args, survey, network)
+    elif args.graph == "distance_based":
         for name in ("exponent", "neighbours", "max_distance"):
             if getattr(args, name) is not None:
                 raise InputError(f"--{name.replace('_', '-')} applies to neighbour graphs, not to "
@@ -108,12 +123,81 @@ def execute(args: argparse.Namespace) -> int:
                          "--finest-scale or choose --autocorrelation all")
     layer = gpd.GeoDataFrame(basis.vectors, geometry=survey.sites.geometry.reindex(
         basis.vectors.index), crs=survey.crs)
+    layers = {"spatial_vectors": layer}
+    if network is not None:
+        layers.update(_network_layers(basis, network, survey.crs))
     with atomic_folder(args.out, overwrite=args.overwrite) as folder:
         write_table(folder / "spatial_vectors.csv", basis.vectors)
         write_table(folder / "vector_properties.csv", basis.to_frame())
-        write_layers(folder / "spatial_vectors.gpkg", {"spatial_vectors": layer})
+        write_layers(folder / "spatial_vectors.gpkg", layers)
     _print_summary(basis, survey, args.out)
     return 0
+
+
+def _refuse_straight_line_options(args: argparse.Namespace) -> None:
+    from spatial_ev.errors import InputError
+
+    what = "--network" if args.network is not None else "--bearing"
+    if args.network is not None and args.bearing is not None:
+        raise InputError("give --network (a river network) or --bearing (a current's "
+                         "direction), not both: eigen builds one basis")
+    if args.graph != "distance_based":
+        raise InputError(f"--graph {args.graph} does not apply with {what}"
+                         + (": the network is the graph; drop --graph" if args.network
+                            else ": a bearing orients the sites' Delaunay graph; drop --graph"))
+    if args.weighting != "binary":
+        raise InputError(f"--weighting is the edge weighting of straight-line graphs; with "
+                         f"{what} use --edge-weighting")
+    for name in ("neighbours", "finest_scale", "exponent"):
+        if getattr(args, name) is not None:
+            raise InputError(f"--{name.replace('_', '-')} does not apply with {what}; drop it"
+                             + (" (give the exponent as --edge-weighting concave_down:A)"
+                                if name == "exponent" else ""))
+    if args.threshold is not None and not (args.network is not None
+                                           and args.network_basis == "distance"):
+        raise InputError(f"--threshold applies with {what} only to --network-basis distance; "
+                         f"drop it")
+
+
+def _directional_basis(args: argparse.Namespace, survey, network):
+    from spatial_ev.space.directional import (
+        aem_eigenvectors,
+        bearing_graph,
+        network_distance_eigenvectors,
+    )
+    from spatial_ev.space.graphs import neighbour_graph
+
+    name, _, exp_text = args.edge_weighting.partition(":")
+    exponent = float(exp_text) if exp_text else None
+    orientation = "against_flow" if args.against_flow else "with_flow"
+    if network is not None and args.network_basis == "distance":
+        return network_distance_eigenvectors(network, threshold=args.threshold,
+                                             sign=args.autocorrelation,
+                                             max_vectors=args.max_vectors)
+    graph = network if network is not None else bearing_graph(
+        neighbour_graph(survey, "delaunay"), bearing=args.bearing)
+    return aem_eigenvectors(graph, orientation=orientation, weighting=name, exponent=exponent,
+                            weight_by=args.weight_by, max_distance=args.max_distance,
+                            sign=args.autocorrelation, max_vectors=args.max_vectors)
+
+
+def _network_layers(basis, network, crs) -> dict:
+    import geopandas as gpd
+
+    from spatial_ev.space.directional import points_along_network
+
+    edges = network.edges
+    lines = gpd.GeoDataFrame(
+        {"upstream_node": edges["upstream_node"].to_numpy(),
+         "downstream_node": edges["downstream_node"].to_numpy(),
+         "length": edges["length"].to_numpy(dtype=float)},
+        geometry=edges.geometry.to_numpy(), crs=crs)
+    points = points_along_network(network, spacing=network.total_length / 2000)
+    values = basis.extend(points)
+    along = gpd.GeoDataFrame(
+        values.assign(edge=points["edge"].to_numpy(), offset=points["offset"].to_numpy()),
+        geometry=gpd.points_from_xy(points["x"], points["y"]), crs=crs)
+    return {"river_network": lines, "spatial_vectors_along_network": along}
 
 
 def _print_summary(basis, survey, out) -> None:

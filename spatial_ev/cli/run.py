@@ -18,6 +18,13 @@ from pathlib import Path
 from typing import Any
 
 from spatial_ev.cli.common import add_survey_options, read_options, survey_from_args
+from spatial_ev.cli.network import (
+    add_network_options,
+    check_network_options,
+    directional_arguments,
+    directional_scheme_count,
+    network_from_args,
+)
 from spatial_ev.errors import InputError
 
 __all__ = ["configure_run", "execute_run", "configure_demo", "execute_demo", "load_config",
@@ -29,7 +36,9 @@ ANALYSIS_MIN_SITES = 10
 
 _SCHEMES_HELP = ("spatial weighting: 'compare' (default: every standard scheme, judged at a "
                  "Šidák-corrected level) or one scheme, 'distance' or '<graph>/<weighting>' "
-                 "such as 'gabriel/linear'")
+                 "such as 'gabriel/linear'; with --network also 'river_aem/<weighting>', "
+                 "'river_aem_against/<weighting>' or 'river_distance', with --bearing "
+                 "'bearing_<DEG>/<weighting>'")
 
 
 def _analysis_options(parser: argparse.ArgumentParser) -> None:
@@ -93,6 +102,7 @@ def configure_run(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--out", metavar="DIR", default=None,
                         help="run folder to create (required, here or in the config file)")
     _analysis_options(parser)
+    add_network_options(parser)
     parser.set_defaults(_run_parser=parser)  # load_config needs the option table
 
 
@@ -141,7 +151,8 @@ def load_config(path: str, parser: argparse.ArgumentParser,
                              f"{', '.join(sorted(k.replace('_', '-') for k in known))}")
         if getattr(args, dest) != parser.get_default(dest):
             continue  # given on the command line: it wins
-        if dest in ("sites", "species", "environment", "out") and isinstance(value, str):
+        if dest in ("sites", "species", "environment", "out", "network") \
+                and isinstance(value, str):
             value = str((file.parent / value)) if not Path(value).is_absolute() else value
         action = known[dest]
         if action.type is not None and not isinstance(value, list):
@@ -214,10 +225,18 @@ def check_analysis_options(args: argparse.Namespace) -> None:
         if len(set(breaks)) != len(breaks):
             raise InputError(f"--scale-breaks lists a boundary twice; give each once; got "
                              f"{' '.join(f'{b:g}' for b in breaks)}")
+    if hasattr(args, "network"):
+        check_network_options(args)
+    directional = args.weighting.startswith(("river_", "bearing_"))
+    if directional and getattr(args, "network", None) is None \
+            and getattr(args, "bearing", None) is None:
+        raise InputError(f"--weighting {args.weighting} is a directional scheme: add "
+                         f"--network FILE (river_...) or --bearing DEG (bearing_...)")
     if args.weighting == "compare":
-        n_schemes = len(DEFAULT_SCHEMES)
+        n_schemes = len(DEFAULT_SCHEMES) + directional_scheme_count(args)
     else:
-        check_schemes([args.weighting])
+        if not directional:
+            check_schemes([args.weighting])
         n_schemes = 1
     level = sidak_level(alpha, n_schemes)
     if 1.0 / (args.permutations + 1) > level:
@@ -275,6 +294,9 @@ def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=Non
     from spatial_ev.report.run_folder import write_run_folder
 
     check_survey_for_run(survey)
+    network = network_from_args(args, survey)
+    if network is not None and inputs is None:      # hashed into the manifest
+        inputs = {**survey.sources, "network": args.network}
     weighting = "compare" if args.weighting == "compare" else "single"
     schemes = None if weighting == "compare" else [args.weighting]
     progress = _Progress(args.quiet)
@@ -285,11 +307,17 @@ def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=Non
                          scale_breaks=args.scale_breaks, trend=args.trend, engine=args.engine,
                          scheduler=args.scheduler, progress=progress,
                          environment_test=args.environment_test, max_vectors=args.max_vectors,
-                         n_workers=args.workers)
+                         n_workers=args.workers, **directional_arguments(args, network))
         _check_breaks_within_basis(args.scale_breaks, result)
         progress("writing the run folder")
         params = {"command_line": sys.argv[1:] if sys.argv else [],
                   "read_options": reading or {}}
+        if network is not None:
+            params["network_options"] = {
+                "file": args.network, "layer": args.network_layer, "crs": args.network_crs,
+                "flow": args.flow, "outlet": args.outlet, "snap_tolerance": args.snap_tolerance,
+                "join_tolerance": args.join_tolerance,
+                "separate_catchments": args.separate_catchments}
         write_run_folder(result, out, overwrite=args.overwrite, inputs=inputs,
                          parameters=params, title=title, before_commit=before_commit)
     finally:

@@ -44,6 +44,7 @@ from spatial_ev.inference.engines import ENGINES, default_workers
 from spatial_ev.inference.lcbd import BetaDiversity, beta_diversity
 from spatial_ev.inference.permutation import PermutationTest
 from spatial_ev.inference.spectral import SpectralRandomisationTest
+from spatial_ev.input.network import RiverNetwork
 from spatial_ev.input.survey import Survey
 from spatial_ev.pipeline.options import StepOptions
 from spatial_ev.pipeline.scale_classes import ScaleClassFit
@@ -104,6 +105,10 @@ class AnalysisSettings:
     environment_test : {"spectral", "permutation"}
     max_vectors : int or None
         Cap on vectors per scheme (set automatically above the dense-solver limit).
+    directional : dict or None
+        Directional schemes' settings when a river network or a bearing was given:
+        ``network`` (its source or None), ``bearing``, ``orientations``, ``edge_weightings``,
+        ``weight_by``.
 
     Examples
     --------
@@ -126,6 +131,7 @@ class AnalysisSettings:
     crs: str
     environment_test: str
     max_vectors: int | None
+    directional: dict | None = None
 
     def __getitem__(self, name: str) -> Any:
         """Read-only lookup by name (``settings["alpha"]``), as for the recorded parameters."""
@@ -195,6 +201,8 @@ class Analysis:
     environment_only_spectral : SpectralRandomisationTest or None
         The same randomisation for the environment-only fraction [a]: the selected
         environmental variables given the spatial group (None without a two-group partition).
+    network : RiverNetwork or None
+        The river network given to the analysis (drawn under the maps).
     """
 
     survey: Survey
@@ -219,6 +227,7 @@ class Analysis:
     environment_spectral: SpectralRandomisationTest | None = field(default=None, repr=False)
     environment_only_spectral: SpectralRandomisationTest | None = field(default=None,
                                                                        repr=False)
+    network: RiverNetwork | None = field(default=None, repr=False)
 
     @property
     def selected_environment(self) -> tuple[str, ...]:
@@ -290,6 +299,23 @@ def _check_analysis(survey, transformation, spatial_weighting, schemes, alpha, n
     return alpha, n_permutations, int(seed), schemes, scale_breaks
 
 
+def _check_directional(network, bearing, orientations, edge_weightings, weight_by
+                       ) -> dict | None:
+    if network is not None and not isinstance(network, RiverNetwork):
+        raise InputError(f"`network` must be a RiverNetwork (from read_river_network) or None; "
+                         f"got {type(network).__name__}")
+    if bearing is not None:
+        bearing = check_real("bearing", bearing)
+    if network is None and bearing is None:
+        return None
+    if isinstance(orientations, str) or isinstance(edge_weightings, str):
+        raise InputError("`orientations` and `edge_weightings` must be sequences of names, "
+                         "e.g. ('with_flow',) and ('binary', 'linear')")
+    return {"network": None if network is None else network.source, "bearing": bearing,
+            "orientations": list(orientations), "edge_weightings": list(edge_weightings),
+            "weight_by": weight_by}
+
+
 def analyse(survey: Survey, *, transformation: str = "hellinger",
             spatial_weighting: str = "compare", schemes: Sequence[str] | str | None = None,
             alpha: float = 0.05, n_permutations: int = 999, seed: int | None = None,
@@ -297,7 +323,10 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
             engine: str = "local", scheduler: Any = None,
             progress: Callable[[str], None] | None = None,
             environment_test: str = "spectral", max_vectors: int | None = None,
-            n_workers: int | None = None) -> Analysis:
+            n_workers: int | None = None, network: RiverNetwork | None = None,
+            bearing: float | None = None, orientations: Sequence[str] = ("with_flow",),
+            edge_weightings: Sequence[str] = ("binary", "linear"),
+            weight_by: str = "edge_length") -> Analysis:
     """Run the whole spatial-structure analysis of a survey.
 
     Parameters
@@ -352,6 +381,26 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         (recorded in the notes).
     n_workers : int, optional
         Threads or worker processes of every parallel part (default: one per core).
+    network : RiverNetwork, optional
+        The survey's river network (:func:`spatial_ev.input.network.read_river_network` with
+        this survey). Its directional bases join the comparison (``"river_aem/<weighting>"``
+        for each edge weighting, ``"river_aem_against/<weighting>"`` with
+        ``orientations`` including ``"against_flow"``, and ``"river_distance"``, the
+        distance-based eigenvectors of along-network distances), each counting in the Šidák
+        correction; with ``spatial_weighting="single"`` one of these names may be the scheme.
+        Scales are then lengths along the network, and a network basis's scale classes are
+        predicted at points along the channels instead of an open grid.
+    bearing : float, optional
+        Direction of a current or wind (degrees clockwise from grid north): AEM of the
+        survey's Delaunay graph oriented along it (``"bearing_<deg>/<weighting>"``) join the
+        comparison; their maps show the sites only.
+    orientations : sequence of {"with_flow", "against_flow"}
+        Orientations of the directional AEM (default with the flow only).
+    edge_weightings : sequence of str
+        Edge weightings of the directional AEM (``"binary"``, ``"linear"``,
+        ``"concave_down:<α>"``, ``"concave_up:<β>"``; default binary and linear).
+    weight_by : {"edge_length", "network_distance"}
+        What a river AEM's non-binary edge weighting is a function of.
 
     Returns
     -------
@@ -369,6 +418,8 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
     alpha, n_permutations, seed, schemes, scale_breaks = _check_analysis(
         survey, transformation, spatial_weighting, schemes, alpha, n_permutations, seed,
         scale_breaks, trend, engine, environment_test)
+    directional = _check_directional(network, bearing, orientations, edge_weightings,
+                                     weight_by)
     if max_vectors is not None:
         max_vectors = check_int("max_vectors", max_vectors, low=1)
     if n_workers is not None:
@@ -399,7 +450,10 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
                                                  options=options)
         space = space_step(Y, survey, schemes=schemes, alpha=alpha,
                            conditioning=trend_.covariables, max_vectors=max_vectors,
-                           seed=streams["space"], options=options)
+                           seed=streams["space"], options=options, network=network,
+                           bearing=bearing, orientations=orientations,
+                           edge_weightings=edge_weightings, weight_by=weight_by,
+                           add_directional=spatial_weighting == "compare")
         spatial = space_group(space.basis, space.selection, trend_.covariables)
         partition = partition_step(Y, env, environment.selection, spatial,
                                    space_p=space.global_p, alpha=alpha,
@@ -427,7 +481,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         schemes=tuple(schemes), chosen_scheme=space.chosen, alpha=alpha,
         n_permutations=n_permutations, seed=seed, scale_breaks=scales.breaks, engine=engine,
         crs=survey.summary()["crs"], environment_test=environment_test,
-        max_vectors=space.max_vectors)
+        max_vectors=space.max_vectors, directional=directional)
     return Analysis(
         survey=survey, settings=settings, response=Y, environment=env, trend=trend_.test,
         trend_kept=trend_.kept, environment_selection=environment.selection,
@@ -439,4 +493,5 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         warnings=tuple(f"{w.category.__name__}: {w.message}" for w in caught
                        if issubclass(w.category, SpatialEVWarning)),
         environment_spectral=None if spectral is None else spectral.test,
-        environment_only_spectral=None if only_spectral is None else only_spectral.test)
+        environment_only_spectral=None if only_spectral is None else only_spectral.test,
+        network=network)

@@ -197,7 +197,8 @@ def fit_scale_classes(Yd: pd.DataFrame, basis: SpatialBasis, classes: Sequence[S
     trend : DataFrame, optional
         The kept trend (conditioning of the class tests).
     grid : DataFrame
-        Prediction points (``x``, ``y``); may be empty.
+        Prediction points (``x``, ``y``; points along a river network also ``edge`` and
+        ``offset``, kept in the grid scores); may be empty.
     seed : int or numpy.random.Generator, optional
         Streams of the class tests (:func:`scale_class_p_values`).
     options : StepOptions
@@ -217,7 +218,9 @@ def fit_scale_classes(Yd: pd.DataFrame, basis: SpatialBasis, classes: Sequence[S
     selected = [v for c in classes for v in c.vectors]
     p_values = scale_class_p_values(Yd, basis.vectors, {c.name: c.vectors for c in classes},
                                   conditioning=trend, seed=seed, options=options)
-    grid_vectors = basis.extend(grid[["x", "y"]].to_numpy()) if len(grid) and selected else None
+    # points along a river network carry their edge and offset: the basis uses them as given
+    where = grid if {"edge", "offset"} <= set(grid.columns) else grid[["x", "y"]].to_numpy()
+    grid_vectors = basis.extend(where) if len(grid) and selected else None
     fits = []
     for klass in classes:
         if not klass.vectors:
@@ -240,7 +243,8 @@ def fit_scale_classes(Yd: pd.DataFrame, basis: SpatialBasis, classes: Sequence[S
         if grid_vectors is not None:
             gv = grid_vectors[names].to_numpy() - basis.vectors[names].to_numpy().mean(axis=0)
             values = (gv @ coef) @ axes_v * flip
-            grid_scores = pd.concat([grid[["x", "y"]].reset_index(drop=True),
+            place = [c for c in ("x", "y", "edge", "offset") if c in grid.columns]
+            grid_scores = pd.concat([grid[place].reset_index(drop=True),
                                      pd.DataFrame(values, columns=cols)], axis=1)
             grid_scores.index = grid.index
         eig = rda.canonical_eigenvalues.to_numpy()

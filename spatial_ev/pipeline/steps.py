@@ -20,7 +20,11 @@ Steps
 - :func:`partition_step` — the two-group partition (Borcard et al. 1992, Peres-Neto et al.
   2006) with the tests of the testable fractions.
 - :func:`scale_class_step` — scale classes of the selected vectors, their tests, fits and
-  scalogram (:mod:`spatial_ev.pipeline.scale_classes`).
+  scalogram (:mod:`spatial_ev.pipeline.scale_classes`); a river-network basis is predicted
+  at points along the network (:func:`network_prediction_points`).
+
+Directional schemes (river networks, a current's bearing) join the comparison through
+:func:`directional_candidates`.
 """
 
 from __future__ import annotations
@@ -45,6 +49,7 @@ from spatial_ev.inference.spectral import (
     distance_decay_weights,
     spectral_randomisation_test,
 )
+from spatial_ev.input.network import RiverNetwork
 from spatial_ev.input.survey import Survey
 from spatial_ev.pipeline.options import DEFAULT_OPTIONS, StepOptions
 from spatial_ev.pipeline.scale_classes import (
@@ -59,7 +64,17 @@ from spatial_ev.selection.weighting import (
     WeightingComparison,
     compare_weighting_schemes,
 )
+from spatial_ev.space.directional import (
+    EDGE_WEIGHTINGS,
+    ORIENTATIONS,
+    WEIGHT_BY,
+    NetworkBasis,
+    bearing_schemes,
+    points_along_network,
+    river_schemes,
+)
 from spatial_ev.space.eigen import DENSE_LIMIT, SpatialBasis, distance_eigenvectors
+from spatial_ev.space.graphs import neighbour_graph
 from spatial_ev.space.scales import (
     classify_scales,
     default_scale_breaks,
@@ -71,6 +86,10 @@ from spatial_ev.stats.canonical import redundancy_analysis
 __all__ = [
     "CANDIDATE_CELLS",
     "CandidateCount",
+    "DIRECTIONAL_PREFIXES",
+    "NETWORK_POINTS",
+    "directional_candidates",
+    "network_prediction_points",
     "FINEST_SPACINGS",
     "LARGE_SURVEY_VECTORS",
     "large_survey_candidates",
@@ -99,6 +118,11 @@ CANDIDATE_CELLS = 2_000_000
 #: finest resolvable wavelength in median nearest-neighbour spacings (≈ 2–4 sampling
 #: intervals; REFERENCES "Sampling design" [derived from the transect eigenfunctions])
 FINEST_SPACINGS = 3.0
+#: scale-class predictions of a river-network basis: points spaced total length / this number
+#: along the channels (instead of the open grid of straight-line bases)
+NETWORK_POINTS = 2000
+#: name prefixes of directional schemes (river-network and bearing bases)
+DIRECTIONAL_PREFIXES = ("river_", "bearing_")
 
 
 def _level(alpha: float) -> float:
@@ -407,7 +431,10 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
                level: float | None = None, global_permutations: int | None = None,
                alpha: float = 0.05, conditioning: pd.DataFrame | None = None,
                max_vectors: int | None = None, seed: int | np.random.Generator | None = None,
-               options: StepOptions = DEFAULT_OPTIONS) -> SpaceStep:
+               options: StepOptions = DEFAULT_OPTIONS, network: RiverNetwork | None = None,
+               bearing: float | None = None, orientations: Sequence[str] = ("with_flow",),
+               edge_weightings: Sequence[str] = ("binary", "linear"),
+               weight_by: str = "edge_length", add_directional: bool = True) -> SpaceStep:
     """Select spatial eigenvectors: compare schemes, or judge one given basis.
 
     With ``schemes`` (and ``survey``): every scheme's basis is built and its global test judged
@@ -422,6 +449,11 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
     ``level``; when significant, forward selection (level α, double stopping) runs without a
     second global test. The design simulator uses this path with each layout's basis at the
     pilot's corrected level, standing for next season's comparison of schemes.
+
+    With a river ``network`` or a ``bearing``, the directional bases of
+    :func:`directional_candidates` join the straight-line ``schemes`` (each counts in the
+    Šidák correction); with ``add_directional=False`` only the schemes named in ``schemes``
+    are built (a directional name such as ``"river_aem/binary"`` then names that one basis).
 
     Parameters
     ----------
@@ -441,6 +473,15 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
     max_vectors : int, optional
     seed : int or numpy.random.Generator, optional
     options : StepOptions
+    network : RiverNetwork, optional
+        The survey's river network (its sites in the survey's order).
+    bearing : float, optional
+        Direction of a current or wind, degrees clockwise from grid north.
+    orientations, edge_weightings, weight_by
+        The directional schemes built (see :func:`directional_candidates`).
+    add_directional : bool
+        Add every directional scheme to ``schemes`` (True, a comparison) or build only those
+        ``schemes`` names.
 
     Returns
     -------
@@ -472,6 +513,15 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
         candidates = large_survey_candidates(survey.coords)
         max_vectors = candidates.n_vectors
         notes.append(candidates.reason)
+    if network is not None or bearing is not None:
+        schemes, said = _with_directional(survey, list(schemes), network=network,
+                                          bearing=bearing, orientations=orientations,
+                                          edge_weightings=edge_weightings,
+                                          weight_by=weight_by, add=add_directional,
+                                          max_vectors=max_vectors)
+        notes.extend(said)
+    else:
+        _refuse_directional_names(schemes)
     weighting = compare_weighting_schemes(Y, survey, schemes=schemes, alpha=alpha, seed=seed,
                                           conditioning=conditioning, max_vectors=max_vectors,
                                           progress=options.progress, n_workers=options.n_workers,
@@ -490,6 +540,197 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
         global_p = float(table["global_p"].min())
     return SpaceStep(chosen_basis, weighting.selection, weighting, weighting.best or "none",
                      global_p, max_vectors, tuple(notes), candidates)
+
+
+def _is_directional(name: str) -> bool:
+    return isinstance(name, str) and name.startswith(DIRECTIONAL_PREFIXES)
+
+
+def _refuse_directional_names(schemes) -> None:
+    names = [n for n in (schemes or ()) if _is_directional(n)]
+    if names:
+        raise InputError(f"scheme {names[0]!r} is a directional scheme: it needs a river "
+                         f"network (`network`) or a current's direction (`bearing`); give one, "
+                         f"or name a straight-line scheme such as 'distance'")
+
+
+def directional_candidates(survey: Survey, *, network: RiverNetwork | None = None,
+                           bearing: float | None = None,
+                           orientations: Sequence[str] = ("with_flow",),
+                           edge_weightings: Sequence[str] = ("binary", "linear"),
+                           weight_by: str = "edge_length", max_vectors: int | None = None,
+                           names: Sequence[str] | None = None) -> dict[str, SpatialBasis]:
+    """The directional spatial bases of a survey, named as weighting schemes.
+
+    With a river ``network``: the AEM of the network for each orientation and edge weighting
+    (``"river_aem/<weighting>"``, ``"river_aem_against/<weighting>"``) and the distance-based
+    eigenvectors of along-network distances (``"river_distance"``), as
+    :func:`~spatial_ev.space.directional.river_schemes` builds them. With a ``bearing``: the
+    AEM of the survey's Delaunay graph oriented along it (``"bearing_<deg>/<weighting>"``,
+    :func:`~spatial_ev.space.directional.bearing_schemes`).
+
+    Parameters
+    ----------
+    survey : Survey
+    network : RiverNetwork, optional
+        Built for this survey (same sites in the same order).
+    bearing : float, optional
+        Degrees clockwise from grid north.
+    orientations : sequence of {"with_flow", "against_flow"}
+    edge_weightings : sequence of str
+        ``"binary"``, ``"linear"``, ``"concave_down:<α>"``, ``"concave_up:<β>"``.
+    weight_by : {"edge_length", "network_distance"}
+        What the river AEM's non-binary weightings are a function of.
+    max_vectors : int, optional
+        Keep at most this many broad vectors per basis.
+    names : sequence of str, optional
+        Build only these schemes (each must be one the other arguments offer).
+
+    Returns
+    -------
+    dict of str to SpatialBasis
+
+    Examples
+    --------
+    >>> net = read_river_network("data_demo/river/network.gpkg", survey,
+    ...                          snap_tolerance=30)  # doctest: +SKIP
+    >>> sorted(directional_candidates(survey, network=net))  # doctest: +SKIP
+    ['river_aem/binary', 'river_aem/linear', 'river_distance']
+    """
+    if not isinstance(survey, Survey):
+        raise InputError(f"`survey` must be a Survey; got {type(survey).__name__}")
+    if network is None and bearing is None:
+        raise InputError("give a river `network` or a `bearing` (degrees) for directional "
+                         "schemes; got neither")
+    if isinstance(orientations, str) or isinstance(edge_weightings, str):
+        raise InputError("`orientations` and `edge_weightings` must be sequences of names, "
+                         "e.g. ('with_flow',) and ('binary', 'linear')")
+    for o in orientations:
+        check_option("orientations", o, ORIENTATIONS)
+    for w in edge_weightings:
+        check_option("edge_weightings", str(w).partition(":")[0], EDGE_WEIGHTINGS)
+    check_option("weight_by", weight_by, WEIGHT_BY)
+    wanted = None if names is None else set(names)
+    out: dict[str, SpatialBasis] = {}
+    if network is not None:
+        if not isinstance(network, RiverNetwork):
+            raise InputError(f"`network` must be a RiverNetwork (read_river_network); got "
+                             f"{type(network).__name__}")
+        ids = survey.coords.index
+        if len(network.site_ids) != len(ids) or not network.site_ids.equals(ids):
+            raise InputError("`network` was built for other sites than the survey's (ids or "
+                             "order differ); read it with this survey: "
+                             "read_river_network(path, survey, ...)")
+        aem = {f"{'river_aem' if o == 'with_flow' else 'river_aem_against'}/{w}": (o, w)
+               for o in orientations for w in edge_weightings}
+        keep = aem if wanted is None else {k: v for k, v in aem.items() if k in wanted}
+        for name, (o, w) in keep.items():      # a handful of schemes
+            out.update(river_schemes(network, orientations=(o,), weightings=(w,),
+                                     weight_by=weight_by, network_distance=False,
+                                     max_vectors=max_vectors))
+        if wanted is None or "river_distance" in wanted:
+            out.update(river_schemes(network, orientations=(), weightings=(),
+                                     network_distance=True, max_vectors=max_vectors))
+    if bearing is not None:
+        graph = neighbour_graph(survey, "delaunay")
+        built = bearing_schemes(graph, bearing=bearing, orientations=tuple(orientations),
+                                weightings=tuple(edge_weightings), max_vectors=max_vectors)
+        out.update(built if wanted is None else
+                   {k: v for k, v in built.items() if k in wanted})
+    if wanted is not None:
+        offered = _offered_names(network, bearing, orientations, edge_weightings)
+        missing = [n for n in names if n not in out]
+        if missing:
+            raise InputError(f"scheme {missing[0]!r} is not one of the directional schemes "
+                             f"these options offer ({', '.join(offered)}); check the name, "
+                             f"the orientations and the edge weightings")
+    return out
+
+
+def _offered_names(network, bearing, orientations, weightings) -> list[str]:
+    out = []
+    if network is not None:
+        out += [f"{'river_aem' if o == 'with_flow' else 'river_aem_against'}/{w}"
+                for o in orientations for w in weightings] + ["river_distance"]
+    if bearing is not None:
+        label = f"bearing_{float(bearing) % 360:g}"
+        out += [f"{label if o == 'with_flow' else label + '_against'}/{w}"
+                for o in orientations for w in weightings]
+    return out
+
+
+def _with_directional(survey, schemes, *, network, bearing, orientations, edge_weightings,
+                      weight_by, add, max_vectors) -> tuple[dict, tuple[str, ...]]:
+    """The schemes mapping with the directional bases, and the notes saying so."""
+    named = [n for n in schemes if _is_directional(n)]
+    if add:
+        bases = directional_candidates(survey, network=network, bearing=bearing,
+                                       orientations=orientations,
+                                       edge_weightings=edge_weightings, weight_by=weight_by,
+                                       max_vectors=max_vectors)
+        straight = [n for n in schemes if not _is_directional(n)]
+        mapping = {**bases, **{n: n for n in straight}}
+    else:
+        bases = directional_candidates(survey, network=network, bearing=bearing,
+                                       orientations=orientations,
+                                       edge_weightings=edge_weightings, weight_by=weight_by,
+                                       max_vectors=max_vectors, names=named) if named else {}
+        mapping = {n: bases.get(n, n) for n in schemes}
+    notes = []
+    if bases:
+        straight = [n for n in mapping if n not in bases]
+        notes.append(
+            f"Directional schemes compared: {', '.join(bases)}"
+            + (f", beside the straight-line schemes {', '.join(straight)}" if straight else "")
+            + f"; each counts in the Šidák-corrected level ({len(mapping)} schemes). AEM "
+            f"(asymmetric eigenvector maps; Blanchet, Legendre & Borcard 2008, Ecological "
+            f"Modelling 215:325–336) describe a process travelling one way "
+            + ("along the river network with the flow" if network is not None else
+               f"along the bearing {float(bearing) % 360:g}°")
+            + ("; against-flow AEM the opposite way" if "against_flow" in orientations
+               else "") + ".")
+    if network is not None and any(n.startswith("river_") for n in bases):
+        s = network.summary()
+        notes.append(
+            f"River network from {network.source}: {s['n_edges']} edges, total length "
+            f"{s['total_length']:.6g} {network.distance_unit}, flow direction "
+            + ("from the digitised lines" if network.direction == "digitised"
+               else "towards the declared outlet(s)")
+            + f", sites snapped within {network.snap_tolerance:g} {network.distance_unit} "
+            f"(largest {s['snap_distance']['max']:.4g}, site "
+            f"{s['snap_distance']['farthest_site']}). Scales of the river-network bases are "
+            f"lengths along the network (equivalent wavelengths measured along the "
+            f"channels), not straight-line distances.")
+    return mapping, tuple(notes)
+
+
+def network_prediction_points(basis: SpatialBasis, survey: Survey) -> tuple[pd.DataFrame,
+                                                                              str | None]:
+    """Where a basis's scale classes are predicted, and a note when it is not the open grid.
+
+    A river-network basis: :data:`NETWORK_POINTS` points spaced evenly along the network
+    (:func:`~spatial_ev.space.directional.points_along_network`, columns ``x``, ``y``,
+    ``edge``, ``offset``); a bearing basis: no points (its vectors are defined at the sites
+    only); any other basis: the open grid of
+    :func:`~spatial_ev.pipeline.scale_classes.prediction_grid`.
+
+    Examples
+    --------
+    >>> points, note = network_prediction_points(step.basis, survey)  # doctest: +SKIP
+    """
+    if not isinstance(basis, NetworkBasis):
+        return prediction_grid(survey), None
+    net = None if basis.directional is None else basis.directional.network
+    if net is None:
+        empty = pd.DataFrame(columns=["x", "y"], dtype=float)
+        return empty, ("The chosen basis is oriented along a bearing: its vectors are defined "
+                       "at the sampled sites only, so the scale classes are mapped at the "
+                       "sites without predictions between them.")
+    spacing = net.total_length / NETWORK_POINTS
+    points = points_along_network(net, spacing=spacing)
+    return points, (f"Scale classes are predicted at {len(points)} points spaced about "
+                    f"{spacing:.4g} {net.distance_unit} along the river network (not on an "
+                    f"open grid: the structure is defined along the channels only).")
 
 
 @dataclass(frozen=True)
@@ -800,9 +1041,11 @@ def scale_class_step(Y: pd.DataFrame, basis: SpatialBasis, selection: ForwardSel
     selected = list(selection.selected) if selection else []
     detrended = residualise(Y, trend)
     classes = classify_scales(basis.scale, selected, breaks=breaks)
+    grid, note = network_prediction_points(basis, survey)
     fits = fit_scale_classes(detrended, basis, classes, trend=trend,
-                             grid=prediction_grid(survey), seed=seed, options=options)
+                             grid=grid, seed=seed, options=options)
     scal = scalogram(detrended, basis.vectors, scales=basis.scale)
     scal["moran_i"] = basis.moran_i.reindex(scal.index).to_numpy()
     scal["selected"] = scal.index.isin(selected)
-    return ScaleStep(fits, tuple(float(b) for b in breaks), scal)
+    notes = (note,) if note is not None and selected else ()
+    return ScaleStep(fits, tuple(float(b) for b in breaks), scal, notes)

@@ -22,6 +22,9 @@ REFERENCES: dict[str, str] = {
     "Bauman et al. 2018b": "Bauman, D., Drouet, T., Dray, S. & Vleminckx, J. (2018b). "
                            "Disentangling good from bad practices in the selection of spatial "
                            "or phylogenetic eigenvectors. Ecography 41: 1638–1649.",
+    "Blanchet, Legendre & Borcard 2008": "Blanchet, F. G., Legendre, P. & Borcard, D. (2008). "
+                                  "Modelling directional spatial processes in ecological "
+                                  "data. Ecological Modelling 215: 325–336.",
     "Blanchet et al. 2008": "Blanchet, F. G., Legendre, P. & Borcard, D. (2008). Forward "
                             "selection of explanatory variables. Ecology 89: 2623–2632.",
     "Borcard & Legendre 2002": "Borcard, D. & Legendre, P. (2002). All-scale spatial analysis "
@@ -200,7 +203,27 @@ def methods_paragraphs(context: Mapping, cite: Citations, unit: str) -> list[str
             "all": "vectors of both signs of Moran's I were kept"}.get(basis.get("sign"), "")
     sign = f"; {sign}" if sign else ""
     n_vectors = basis.get("n_vectors", "?")
-    if basis.get("family") == "distance":
+    if basis.get("family") == "network":
+        method = basis.get("method")
+        weighting = str(basis.get("weighting", "?")).replace("_", " ")
+        if method == "network_distance_based":
+            space.append(f"Spatial predictors were {n_vectors} distance-based spatial "
+                         f"eigenvectors of along-network distances (shortest paths along the "
+                         f"channels){cite('Borcard & Legendre 2002', 'Dray et al. 2006')}, "
+                         f"truncated at {distance(basis.get('threshold'), unit)}{sign}; their "
+                         f"scales are lengths along the network.")
+        else:
+            along = ("along the river network, " + ("against the flow" if basis.get(
+                "orientation") == "against_flow" else "with the flow")
+                if method == "aem_river" else "along the declared bearing")
+            space.append(f"Spatial predictors were {n_vectors} asymmetric eigenvector maps "
+                         f"(AEM){cite('Blanchet, Legendre & Borcard 2008')}, built from the edges "
+                         f"that lie upstream of each site ({along}) with {weighting} edge "
+                         f"weights{sign}; they describe a process travelling one way. Moran's "
+                         f"I{cite('Moran 1950')} is computed on the network neighbours"
+                         + ("; scales are lengths along the network." if method == "aem_river"
+                            else "."))
+    elif basis.get("family") == "distance":
         refs_text = cite("Borcard & Legendre 2002", "Dray et al. 2006")
         space.append(f"Spatial predictors were {n_vectors} distance-based spatial eigenvectors "
                      f"(distance-based MEM){refs_text}, with distances truncated at "

@@ -22,6 +22,16 @@ _TREND = {True: "covariable", False: "none"}
 
 
 def _scheme_parts(name: str) -> dict[str, Any]:
+    if name == "river_distance":
+        return {"family": "network", "method": "network_distance_based",
+                "weighting": "truncated", "orientation": None}
+    if name.startswith(("river_aem", "bearing_")):
+        prefix, _, weighting = name.partition("/")
+        against = prefix.endswith("_against")
+        return {"family": "network",
+                "method": "aem_river" if prefix.startswith("river_") else "aem_bearing",
+                "weighting": weighting,
+                "orientation": "against_flow" if against else "with_flow"}
     if name == "distance":
         return {"family": "distance", "method": "distance_based", "weighting": "truncated"}
     if name == "none":
@@ -52,6 +62,30 @@ def _environment_test(analysis: Analysis) -> dict | None:
     return {"method": "moran_spectral_randomisation", "weighting": "distance_decay",
             "n_randomisations": test.n_randomisations, "r2_adj": test.r2_adj,
             "p": test.p_value, "environment_only_p": None if only is None else only.p_value}
+
+
+def _network_edges(analysis: Analysis) -> gpd.GeoDataFrame | None:
+    """The river network's edges (lines with the flow) when the analysis had one."""
+    net = getattr(analysis, "network", None)
+    if net is None:
+        return None
+    e = net.edges
+    return gpd.GeoDataFrame(
+        {"upstream_node": e["upstream_node"].to_numpy(),
+         "downstream_node": e["downstream_node"].to_numpy(),
+         "length": e["length"].to_numpy(dtype=float),
+         "feature": e["feature"].to_numpy()},
+        geometry=e.geometry.to_numpy(), crs=analysis.survey.sites.crs,
+        index=pd.RangeIndex(len(e), name="edge"))
+
+
+def _along(grid_scores: pd.DataFrame | None, crs: Any) -> gpd.GeoDataFrame | None:
+    """Scores predicted at points along a river network (those carry an ``edge`` column)."""
+    if grid_scores is None or grid_scores.empty or "edge" not in grid_scores.columns:
+        return None
+    return gpd.GeoDataFrame(grid_scores.drop(columns=["x", "y"]),
+                            geometry=gpd.points_from_xy(grid_scores["x"], grid_scores["y"]),
+                            crs=crs)
 
 
 def _site_frame(analysis: Analysis, values: pd.DataFrame) -> gpd.GeoDataFrame:
@@ -107,7 +141,10 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
     methods = {
         "transformation": settings.transformation,
         "trend": _TREND[a.trend_kept],
-        "basis": {**_scheme_parts(chosen), "threshold": basis.threshold,
+        "basis": {**_scheme_parts(chosen),
+                  **({"method": basis.method} if basis.method.startswith(("aem_", "network_"))
+                     else {}),
+                  "threshold": basis.threshold,
                   "n_vectors": basis.n_vectors, "sign": "positive"},
         "schemes_compared": list(a.weighting.table.index),
         "corrected_alpha": a.weighting.alpha_corrected if a.weighting.n_schemes > 1 else None,
@@ -159,6 +196,11 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
     else:
         reasons["weighting"] = f"one scheme was named ({chosen}); nothing was compared"
 
+    edges = _network_edges(a)
+    if edges is not None:
+        data["network"] = {"n_edges": int(len(edges)),
+                           "total_length": float(edges["length"].sum()),
+                           "direction": a.network.direction, "source": a.network.source}
     scale_maps = []
     for fit in a.scale_fits:
         if fit.site_scores is None:
@@ -169,9 +211,16 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
                  "sites": _site_frame(a, fit.site_scores[["axis_1"]].rename(
                      columns={"axis_1": "fitted"})),
                  "column": "fitted"}
-        surface = _surface(fit.grid_scores, "axis_1")
-        if surface is not None:
-            entry["surface"] = surface
+        along = _along(fit.grid_scores, survey.sites.crs)
+        if along is not None:
+            entry["along"] = along
+            entry["along_column"] = "axis_1"
+        else:
+            surface = _surface(fit.grid_scores, "axis_1")
+            if surface is not None:
+                entry["surface"] = surface
+        if edges is not None:
+            entry["network"] = edges
         scale_maps.append(entry)
     if not scale_maps:
         reasons["scale_maps"] = ("no spatial vector was selected, so there is no spatial "
@@ -179,7 +228,10 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
 
     lcbd_frame = a.beta.to_frame()
     lcbd = {"sites": _site_frame(a, lcbd_frame), "column": "lcbd",
-            "p_column": "p" if "p" in lcbd_frame else None, "alpha": settings.alpha}
+            "p_column": "p" if "p" in lcbd_frame else None,
+            "alpha": settings.alpha}
+    if edges is not None:
+        lcbd["network"] = edges
 
     rda = a.ordination
     triplot = {"eigenvalues": None, "total_variance": rda.total_variance, "n_labels": 10}
@@ -230,6 +282,11 @@ def map_layers(analysis: Analysis) -> dict[str, gpd.GeoDataFrame]:
     """GeoPackage layers: one per scale class (site scores, original geometry), the LCBD layer,
     and one grid layer per scale class with the structure predicted at unsampled points.
 
+    With a river network: the network's edges (layer ``river_network``, lines with the flow)
+    and, for a network basis, one layer per scale class of the structure predicted at points
+    along the channels (``scale_<class>_along_network``, with each point's ``edge`` and
+    ``offset`` from the edge's upstream end) instead of a grid.
+
     Examples
     --------
     >>> sorted(map_layers(result))[:2]  # doctest: +SKIP
@@ -243,10 +300,16 @@ def map_layers(analysis: Analysis) -> dict[str, gpd.GeoDataFrame]:
             continue
         key = fit.scale_class.name.replace(" ", "_")
         layers[f"scale_{key}"] = _site_frame(a, fit.site_scores)
-        if fit.grid_scores is not None and not fit.grid_scores.empty:
+        along = _along(fit.grid_scores, crs)
+        if along is not None:
+            layers[f"scale_{key}_along_network"] = along
+        elif fit.grid_scores is not None and not fit.grid_scores.empty:
             g = fit.grid_scores
             layers[f"scale_{key}_grid"] = gpd.GeoDataFrame(
                 g.drop(columns=["x", "y"]), geometry=gpd.points_from_xy(g["x"], g["y"]),
                 crs=crs)
     layers["lcbd"] = _site_frame(a, a.beta.to_frame())
+    edges = _network_edges(a)
+    if edges is not None:
+        layers["river_network"] = edges
     return layers

@@ -74,10 +74,13 @@ that breaks the contract raises :class:`spatial_ev.errors.InputError` naming the
     ``vectors`` (list of str), ``r2_adj`` (float or None), ``p`` (float or None), ``sites``
     (GeoDataFrame in the working CRS), ``column`` (name of the fitted-score column), and
     *(optional)* ``surface`` (Mapping ``x``, ``y``, ``values`` — see
-    :func:`spatial_ev.report.maps.site_map_figure`).
+    :func:`spatial_ev.report.maps.site_map_figure`), *(optional)* ``network``
+    (GeoDataFrame of the river network's lines, drawn under the sites) and *(optional)*
+    ``along`` (GeoDataFrame of points along the network) with ``along_column`` (the fitted
+    score predicted there; instead of ``surface``).
 ``lcbd`` : Mapping or None
     ``sites`` (GeoDataFrame), ``column`` (str), *(optional)* ``p_column`` (str: permutation
-    p-value per site) and ``alpha``.
+    p-value per site), ``alpha`` and ``network`` (as for ``scale_maps``).
 ``triplot`` : Mapping or None
     ``eigenvalues`` (Series by axis name), ``total_variance`` (float), ``n_labels``
     *(optional, int)*, and ``scaling_1`` / ``scaling_2`` (each a Mapping ``sites``,
@@ -228,7 +231,8 @@ def build_figures(context: Mapping[str, Any]) -> dict[str, Figure]:
             name = _class_name(entry)
             out[f"scale_map_{i}"] = maps.site_map_figure(
                 entry["sites"], column=entry["column"], palette="diverging",
-                surface=entry.get("surface"), unit=unit,
+                surface=entry.get("surface"), unit=unit, network=entry.get("network"),
+                along=entry.get("along"), along_column=entry.get("along_column"),
                 title=f"{name} scale ({distance(lo, unit)} – {distance(hi, unit)})",
                 value_label="fitted score (centred)")
     lc = context["lcbd"]
@@ -243,7 +247,7 @@ def build_figures(context: Mapping[str, Any]) -> dict[str, Figure]:
                 sites, column=lc["column"], palette="sequential", unit=unit,
                 title="Local contribution to beta diversity",
                 value_label="LCBD (share of total)", highlight=highlight,
-                highlight_label=label)
+                highlight_label=label, network=lc.get("network"))
     tp = context["triplot"]
     if tp is not None:
         for scaling in (1, 2):

@@ -1,4 +1,5 @@
-"""Map figures: a value at each site (points or polygons), optionally over a gridded surface.
+"""Map figures: a value at each site (points or polygons), optionally over a gridded surface
+or over a river network with values predicted along its channels.
 
 Maps are drawn in the working (projected) coordinate system with equal aspect, axis labels
 in map units, a scale bar with a round length ("2 km"), a grid-north arrow and a colour bar.
@@ -121,6 +122,36 @@ def _check_surface(surface: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray] | 
     return x, y, z
 
 
+def _check_network(network: Any) -> gpd.GeoDataFrame | None:
+    if network is None:
+        return None
+    if not isinstance(network, gpd.GeoDataFrame) or len(network) == 0:
+        raise InputError(f"`network` must be a non-empty GeoDataFrame of lines (a river "
+                         f"network's edges); got {type(network).__name__}")
+    kinds = set(network.geometry.geom_type.dropna())
+    if not kinds <= {"LineString", "MultiLineString"}:
+        raise InputError(f"`network` geometries must be lines; got {sorted(kinds)}")
+    return network
+
+
+def _check_along(along: Any, column: str | None
+                 ) -> tuple[np.ndarray, np.ndarray] | tuple[None, None]:
+    if along is None:
+        return None, None
+    if not isinstance(along, gpd.GeoDataFrame) or len(along) == 0:
+        raise InputError(f"`along` must be a non-empty GeoDataFrame of points; got "
+                         f"{type(along).__name__}")
+    if not isinstance(column, str) or column not in along.columns:
+        raise InputError(f"`along_column` must name a numeric column of `along`; got "
+                         f"{column!r}")
+    values = np.asarray(along[column], dtype=np.float64)
+    if not np.isfinite(values).all():
+        raise InputError(f"`along[{column!r}]` has missing values; predictions along the "
+                         f"network must be finite")
+    xy = np.column_stack([along.geometry.x.to_numpy(), along.geometry.y.to_numpy()])
+    return xy, values
+
+
 def _clip_to_hull(grid: tuple[np.ndarray, np.ndarray, np.ndarray], sites: gpd.GeoDataFrame
                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     x, y, z = grid
@@ -172,7 +203,10 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
                     surface: Mapping[str, Any] | None = None, unit: str = "m",
                     title: str | None = None, value_label: str | None = None,
                     north_arrow: str = "grid", highlight: str | None = None,
-                    highlight_label: str = "highlighted", clip: str = "hull") -> Figure:
+                    highlight_label: str = "highlighted", clip: str = "hull",
+                    network: gpd.GeoDataFrame | None = None,
+                    along: gpd.GeoDataFrame | None = None,
+                    along_column: str | None = None) -> Figure:
     """Map one value per site, optionally over a gridded prediction surface.
 
     Points are drawn as dots, polygons filled; both take the value's colour. With
@@ -206,11 +240,19 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     clip : ``"hull"`` hides surface cells outside the convex hull of the sites (an
         interpolation says nothing beyond the surveyed area); ``"none"`` draws the surface as
         given (NaN cells are always hidden).
+    network : GeoDataFrame of lines (a river network's edges), drawn in grey under
+        everything else, or None.
+    along : GeoDataFrame of points along ``network`` carrying a value (predictions along the
+        channels), drawn as a coloured band over the lines with the sites' colour scale;
+        needs ``along_column``. Used instead of a ``surface`` for network bases.
+    along_column : name of the numeric column of ``along``.
+
 
     Returns
     -------
     Figure with the map axes first and the colour bar second; the scale bar patches carry
-    ``gid="scale-bar"`` and its label ``gid="scale-bar-label"``.
+    ``gid="scale-bar"`` and its label ``gid="scale-bar-label"``; the network lines
+    ``gid="network"`` and the values along it ``gid="along-network"``.
 
     Examples
     --------
@@ -224,6 +266,11 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     """
     sites, values = _check_sites(sites, column)
     grid = _check_surface(surface)
+    lines = _check_network(network)
+    along_xy, along_values = _check_along(along, along_column)
+    if grid is not None and along_xy is not None:
+        raise InputError("give `surface` (an open grid) or `along` (values along a network), "
+                         "not both")
     marked = _check_highlight(sites, highlight)
     check_option("palette", palette, _PALETTES)
     check_option("north_arrow", north_arrow, ("grid", "none"))
@@ -234,6 +281,8 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
 
     all_values = values if grid is None else np.concatenate([values,
                                                              grid[2][np.isfinite(grid[2])]])
+    if along_values is not None:
+        all_values = np.concatenate([all_values, along_values])
     if palette == "diverging":
         vmax = float(np.max(np.abs(all_values))) or 1.0
         norm, cmap = Normalize(-vmax, vmax), st.DIVERGING
@@ -244,6 +293,33 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     fig = Figure(figsize=(6.8, 5.6), layout="constrained")
     ax = fig.add_subplot()
     xmin, ymin, xmax, ymax = sites.total_bounds
+    if lines is not None:
+        lx0, ly0, lx1, ly1 = lines.total_bounds
+        xmin, ymin, xmax, ymax = min(xmin, lx0), min(ymin, ly0), max(xmax, lx1), max(ymax, ly1)
+        from matplotlib.collections import LineCollection
+
+        parts = [np.asarray(g.coords)[:, :2] for g in lines.geometry.explode(index_parts=False)
+                 if g is not None and not g.is_empty]
+        wide = 5.5 if along_xy is not None else 2.2
+        ax.add_collection(LineCollection(parts, colors=st.UNEXPLAINED, linewidths=wide,
+                                         capstyle="round", joinstyle="round", zorder=1,
+                                         gid="network"))
+        ax.add_collection(LineCollection(parts, colors=st.MUTED, linewidths=0.7, zorder=1.1,
+                                         gid="network"))
+        if {"upstream_node", "downstream_node"} <= set(lines.columns):
+            # outlets: downstream ends that no edge leaves
+            ends = ~lines["downstream_node"].isin(lines["upstream_node"]).to_numpy()
+            tips = np.array([np.asarray(g.coords)[-1, :2] for g in lines.geometry[ends]])
+            if len(tips):
+                ax.scatter(tips[:, 0], tips[:, 1], marker="v", s=70, facecolor=st.INK,
+                           edgecolor="white", linewidth=0.8, zorder=5, gid="outlet",
+                           label="outlet (flow ends)")
+                ax.legend(loc="upper left", fontsize=7.5, framealpha=0.85, frameon=True)
+    if along_xy is not None:
+        order = np.argsort(np.abs(along_values), kind="stable")  # strongest values on top
+        ax.scatter(along_xy[order, 0], along_xy[order, 1], c=along_values[order], cmap=cmap,
+                   norm=norm, s=16.0, marker="o", linewidth=0, zorder=2, gid="along-network",
+                   rasterized=True)
     if grid is not None:
         gx, gy, gz = grid
         ax.pcolormesh(gx, gy, np.ma.masked_invalid(gz), cmap=cmap, norm=norm,
@@ -254,7 +330,7 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     if set(sites.geometry.geom_type) == {"Point"}:
         # many sites: smaller dots without outlines (outlines would hide the colours), and
         # rasterised in vector output so an SVG of 100,000 sites stays light
-        size = float(np.clip(4000.0 / len(sites), 2.0, 60.0))
+        size = float(np.clip(4000.0 / len(sites), 2.0, 60.0 if along_xy is None else 26.0))
         ax.scatter(sites.geometry.x, sites.geometry.y, c=values, cmap=cmap, norm=norm, s=size,
                    edgecolor=st.INK, linewidth=0.35 if len(sites) <= 2000 else 0.0, zorder=3,
                    gid="sites", rasterized=len(sites) > 5000)

@@ -3,8 +3,9 @@
 :func:`summary_record` turns an :class:`~spatial_ev.pipeline.analysis.Analysis` into the
 plain-JSON dictionary a run folder writes as ``summary.json`` (its keys are the public contract
 of ``DESIGN.md``, plus the trend, the spectral test, scale-class bounds, weighting schemes,
-LCBD, resolvable scales, notes and warnings). Floats are rounded to ``digits`` significant
-digits; non-finite values become ``null``.
+LCBD, resolvable scales, notes and warnings; a run with a river network or a bearing adds
+``network``, ``bearing`` and the basis's ``scheme`` and ``scale_measure``). Floats are
+rounded to ``digits`` significant digits; non-finite values become ``null``.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from spatial_ev import __version__
 from spatial_ev._validation import check_int
 from spatial_ev.errors import InputError
 from spatial_ev.pipeline.analysis import Analysis
+from spatial_ev.space.directional import NetworkBasis
 
 __all__ = ["summary_record"]
 
@@ -82,13 +84,14 @@ def summary_record(analysis: Analysis, *, digits: int = 10) -> dict[str, Any]:
         env_test = {"r2_adj": r(g.r2_adj), "p": r(g.p_value)}
     space_test = _space_global(a)
     spectral, only = a.environment_spectral, a.environment_only_spectral
-    return {
+    method = a.basis.method if isinstance(a.basis, NetworkBasis) else settings.chosen_scheme
+    record = {
         "n_sites": int(survey.n_sites),
         "n_species": int(survey.n_species),
         "transformation": settings.transformation,
         "crs": settings.crs,
         "distance_unit": survey.distance_unit,
-        "spatial_basis": {"method": settings.chosen_scheme,
+        "spatial_basis": {"method": method,
                           "threshold": r(a.basis.threshold),
                           "n_vectors": int(a.basis.n_vectors)},
         "global_tests": {
@@ -135,3 +138,23 @@ def summary_record(analysis: Analysis, *, digits: int = 10) -> dict[str, Any]:
         "warnings": list(a.warnings),
         "version": __version__,
     }
+    directional = getattr(settings, "directional", None)
+    if directional is not None:        # only directional runs carry these keys
+        basis = record["spatial_basis"]
+        basis["scheme"] = settings.chosen_scheme
+        basis["scale_measure"] = "along_network" if method in ("aem_river",
+                                                               "network_distance_based") \
+            else "straight_line"
+        net = getattr(a, "network", None)
+        record["network"] = None if net is None else _network_record(net, r)
+        record["bearing"] = r(directional.get("bearing"))
+    return record
+
+
+def _network_record(net: Any, r: Callable[[Any], float | None]) -> dict[str, Any]:
+    s = net.summary()
+    return {"source": s["source"], "direction": s["direction"], "n_edges": s["n_edges"],
+            "n_components": s["n_components"], "total_length": r(s["total_length"]),
+            "snap_tolerance": r(s["snap_tolerance"]),
+            "snap_distance_max": r(s["snap_distance"]["max"]),
+            "farthest_site": s["snap_distance"]["farthest_site"]}

@@ -21,6 +21,7 @@ __all__ = [
     "DroppedSpeciesWarning",
     "DroppedVariablesWarning",
     "DroppedSitesWarning",
+    "EmptySitesWarning",
     "ThreeDimensionalCoordinatesWarning",
     "DisconnectedGraphWarning",
     "StandardisedCountsWarning",
@@ -67,6 +68,10 @@ class DroppedVariablesWarning(SpatialEVWarning):
 
 class DroppedSitesWarning(SpatialEVWarning):
     """Sites were removed on the user's explicit request (e.g. incomplete environment)."""
+
+
+class EmptySitesWarning(DroppedSitesWarning):
+    """Sites without any species (an all-zero row) were removed on the user's request."""
 
 
 class ThreeDimensionalCoordinatesWarning(SpatialEVWarning):

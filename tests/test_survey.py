@@ -337,8 +337,24 @@ class TestReadSurveyValidation:
         sp.to_csv(files[1])
         _raises_nothing_written(tmp_path, errors.InputError,
                                 r"1 site\(s\) have no species at all .*'C004'.*Hellinger and "
-                                r"chord transformations divide by each site's total",
+                                r"chord transformations divide by each site's total.*"
+                                r"empty_sites='drop'",
                                 read_survey, *files, crs=EPSG_UTM)
+
+    def test_all_zero_sites_dropped_on_request(self, tmp_path, files, layout):
+        ids, x, y, species, env = layout
+        sp = species.copy()
+        sp.iloc[[4, 7]] = 0
+        sp.to_csv(files[1])
+        with pytest.warns(errors.EmptySitesWarning, match=r"dropped 2 site\(s\) with no "
+                                                          r"species at all.*'C004', 'C007'"):
+            s = read_survey(*files, crs=EPSG_UTM, empty_sites="drop")
+        assert s.dropped["empty_sites"] == ["C004", "C007"]
+        assert s.n_sites == len(ids) - 2 and "C004" not in s.coords.index
+        assert list(s.species.index) == list(s.environment.index) == list(s.site_ids)
+        assert (s.species.sum(axis=1) > 0).all()
+        with pytest.raises(errors.InputError, match="`empty_sites` must be one of"):
+            read_survey(*files, crs=EPSG_UTM, empty_sites="keep")
 
     def test_fewer_than_five_sites(self, tmp_path):
         pd.DataFrame({"core": list("abcd"), "x": [0, 1, 2, 3], "y": [0, 1, 0, 1]}).to_csv(

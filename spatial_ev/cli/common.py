@@ -140,6 +140,11 @@ def add_survey_options(parser: argparse.ArgumentParser, *, species: str = "optio
     fmt.add_argument("--incomplete-sites", choices=("error", "drop"), default="error",
                      help="sites with missing environmental values: stop with an error "
                           "(default) or drop them with a warning listing them")
+    if species != "absent":
+        fmt.add_argument("--empty-sites", choices=("error", "drop"), default="error",
+                         help="sites where no species was found (an all-zero species row): "
+                              "stop with an error (default) or drop them from every table "
+                              "with a warning listing them")
     fmt.add_argument("--shared-coordinates", choices=("error", "merge"), default="error",
                      help="sites at identical coordinates: stop with an error (default) or merge "
                           "each group into its first site (species and numeric variables "
@@ -165,6 +170,7 @@ def read_options(args: argparse.Namespace) -> dict:
             "delimiter": tab.get(args.delimiter, args.delimiter), "decimal": args.decimal,
             "encoding": args.encoding, "layer": args.layer,
             "incomplete_sites": args.incomplete_sites,
+            "empty_sites": getattr(args, "empty_sites", "error"),
             "shared_coordinates": args.shared_coordinates}
 
 

@@ -5,9 +5,9 @@ column, line or site, or warns with a named class): site ids → geometry (empty
 unsupported, invalid, 3-D) → working CRS (file vs given CRS, layers in different CRSs,
 projection of degrees) → coordinates of a plausible size → alignment of the species and
 environment tables → species values → environment columns → incomplete sites (error or
-drop) → shared coordinates (error or merge) → at least 5 sites → species never present
-(dropped) and empty sites (error) → constant variables (dropped) and indicator coding of
-categories.
+drop) → empty sites, with no species at all (error or drop) → shared coordinates (error or
+merge) → at least 5 sites → species never present (dropped) → constant variables (dropped) and
+indicator coding of categories.
 """
 
 from __future__ import annotations
@@ -24,7 +24,7 @@ from spatial_ev.input import tables as T
 from spatial_ev.input.crs import (MAX_SCALE_ERROR, check_geographic_ranges, crs_label, distance_unit_of,
                   local_metric_crs, scale_range)
 from spatial_ev.errors import (CRSError, DroppedSitesWarning, DroppedSpeciesWarning,
-                     DroppedVariablesWarning, GeographicCoordinatesWarning, InputError,
+                     DroppedVariablesWarning, EmptySitesWarning, GeographicCoordinatesWarning, InputError,
                      MapDistortionWarning, MergedSitesWarning,
                      ThreeDimensionalCoordinatesWarning)
 
@@ -58,9 +58,12 @@ def assemble(site_table: T.RawTable, tables: dict, opts: dict, sources: dict) ->
         env_cols = T.environment_columns(t, order, index, opts["decimal"])
 
     keep = np.ones(len(index), dtype=bool)
-    dropped: dict[str, list] = {"species": [], "variables": [], "sites": [], "merged_sites": []}
+    dropped: dict[str, list] = {"species": [], "variables": [], "sites": [], "empty_sites": [],
+                                "merged_sites": []}
     if env_cols is not None:
         keep = _incomplete_sites(env_cols, index, opts, dropped, tables["environment"].source)
+    if species is not None:
+        keep &= _empty_sites(species, keep, opts, dropped, tables["species"].source)
     attributes = site_table.data.set_axis(index, axis=0)
     sites = gpd.GeoDataFrame(attributes, geometry=working.set_axis(index), crs=info["crs"])
     if not keep.all():
@@ -298,13 +301,25 @@ def _check_species_totals(species: pd.DataFrame, dropped, source) -> pd.DataFram
         species = species.drop(columns=absent)
     if species.shape[1] == 0:
         raise InputError(f"species {source}: no species is present at any site")
-    empty = species.index[species.sum(axis=1).to_numpy() == 0]
-    if len(empty):
-        raise InputError(f"species {source}: {len(empty)} site(s) have no species at all "
-                         f"(all zero): {T.listed(empty)}; the Hellinger and chord "
-                         f"transformations divide by each site's total, so remove these sites "
-                         f"or analyse them separately")
     return species
+
+
+def _empty_sites(species: pd.DataFrame, keep: np.ndarray, opts, dropped, source) -> np.ndarray:
+    """Sites (among those kept so far) whose species are all zero: an error, or dropped from
+    every table on request (``empty_sites='drop'``) with an :class:`EmptySitesWarning`."""
+    empty = keep & (species.sum(axis=1).to_numpy() == 0)
+    if not empty.any():
+        return np.ones(len(keep), dtype=bool)
+    ids = species.index[empty]
+    if opts.get("empty_sites", "error") == "error":
+        raise InputError(f"species {source}: {len(ids)} site(s) have no species at all "
+                         f"(all zero): {T.listed(ids)}; the Hellinger and chord "
+                         f"transformations divide by each site's total, so remove these sites, "
+                         f"or drop them with empty_sites='drop' (--empty-sites drop)")
+    dropped["empty_sites"] = [T._plain(i) for i in ids]
+    warnings.warn(f"species {source}: dropped {len(ids)} site(s) with no species at all (all "
+                  f"zero) from every table: {T.listed(ids)}", EmptySitesWarning, stacklevel=4)
+    return ~empty
 
 
 def _code_environment(env: T.EnvironmentColumns, dropped, source):

@@ -60,7 +60,8 @@ class Survey:
         Role ("sites", "species", "environment") → file path or description of the frame.
     dropped : dict
         What the checks removed: ``"species"``, ``"variables"``, ``"sites"`` (incomplete
-        environment) and ``"merged_sites"`` (lists of ids merged into the first).
+        environment), ``"empty_sites"`` (no species at all, dropped on request) and
+        ``"merged_sites"`` (lists of ids merged into the first).
     categorical : dict
         Categorical variable → its indicator columns in ``environment``.
     reference_levels : dict
@@ -197,6 +198,7 @@ class Survey:
         reasons = {"species": "never present (all zero)",
                    "variables": "constant across sites",
                    "sites": "incomplete environment (dropped on request)",
+                   "empty_sites": "no species at all (dropped on request)",
                    "merged_sites": "shared coordinates (merged on request; first id kept)"}
         if any(self.dropped.values()):
             lines.append("dropped:")
@@ -212,7 +214,7 @@ class Survey:
                     environment: pd.DataFrame | None = None, *, site_id: str | None = None,
                     x: str | None = None, y: str | None = None, crs: Any = None,
                     local_unit: str | None = None, incomplete_sites: str = "error",
-                    shared_coordinates: str = "error") -> Survey:
+                    shared_coordinates: str = "error", empty_sites: str = "error") -> Survey:
         """Build a survey from in-memory tables, with the same checks as :func:`read_survey`.
 
         Parameters
@@ -224,7 +226,7 @@ class Survey:
             Tables indexed by site id, or holding a ``site_id`` column.
         site_id : str, optional
             Column holding the site ids; default: the index of each frame.
-        x, y, crs, local_unit, incomplete_sites, shared_coordinates
+        x, y, crs, local_unit, incomplete_sites, shared_coordinates, empty_sites
             As in :func:`read_survey`.
 
         Examples
@@ -234,7 +236,8 @@ class Survey:
         >>> Survey.from_frames(sites, local_unit="m").distance_unit
         'metre'
         """
-        opts = _check_options(crs, local_unit, ".", incomplete_sites, shared_coordinates)
+        opts = _check_options(crs, local_unit, ".", incomplete_sites, shared_coordinates,
+                              empty_sites)
         if not isinstance(sites, pd.DataFrame):
             raise InputError(f"`sites` must be a (Geo)DataFrame; got {type(sites).__name__}")
         tables = {}
@@ -275,7 +278,8 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
                 local_unit: str | None = None, delimiter: str | None = None,
                 decimal: str = ".", encoding: str | None = None,
                 layer: str | int | None = None,
-                incomplete_sites: str = "error", shared_coordinates: str = "error") -> Survey:
+                incomplete_sites: str = "error", shared_coordinates: str = "error",
+                empty_sites: str = "error") -> Survey:
     """Read, align and validate survey files.
 
     Parameters
@@ -320,6 +324,10 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
         site (species values and numeric variables averaged — for Hellinger or chord profiles
         averaging and summing are equivalent; categories must agree) with a
         :class:`~spatial_ev.errors.MergedSitesWarning`.
+    empty_sites : {"error", "drop"}
+        Sites whose species are all zero (nothing found): raise (default), or drop those
+        sites from every table with an :class:`~spatial_ev.errors.EmptySitesWarning` listing
+        them (recorded in ``Survey.dropped["empty_sites"]``).
 
     Returns
     -------
@@ -332,8 +340,8 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
     :class:`~spatial_ev.errors.GeographicCoordinatesWarning`. Species never present are
     dropped (:class:`~spatial_ev.errors.DroppedSpeciesWarning`); constant environmental columns
     are dropped (:class:`~spatial_ev.errors.DroppedVariablesWarning`). Sites whose species
-    are all zero are an error: the Hellinger and chord transformations divide by the site
-    total. At least 5 sites are required.
+    are all zero are an error unless ``empty_sites='drop'``: the Hellinger and chord
+    transformations divide by the site total. At least 5 sites are required.
 
     Examples
     --------
@@ -342,7 +350,8 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
     >>> s.distance_unit  # doctest: +SKIP
     'metre'
     """
-    opts = _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinates)
+    opts = _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinates,
+                          empty_sites)
     opts["delimiter"] = delimiter
     opts["encoding"] = encoding
     for role, path in (("sites", sites), ("species", species), ("environment", environment)):
@@ -360,8 +369,10 @@ def read_survey(sites: str | os.PathLike, species: str | os.PathLike | None = No
 
 # ----------------------------------------------------------------------------------- checks
 
-def _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinates) -> dict:
+def _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinates,
+                   empty_sites="error") -> dict:
     check_option("incomplete_sites", incomplete_sites, ("error", "drop"))
+    check_option("empty_sites", empty_sites, ("error", "drop"))
     check_option("shared_coordinates", shared_coordinates, ("error", "merge"))
     check_option("decimal", decimal, (".", ","))
     if crs is not None and local_unit is not None:
@@ -370,7 +381,8 @@ def _check_options(crs, local_unit, decimal, incomplete_sites, shared_coordinate
     return {"crs": None if crs is None else parse_crs(crs),
             "local_unit": None if local_unit is None else normalise_local_unit(local_unit),
             "decimal": decimal, "incomplete_sites": incomplete_sites,
-            "shared_coordinates": shared_coordinates, "delimiter": None, "encoding": None}
+            "shared_coordinates": shared_coordinates, "empty_sites": empty_sites,
+            "delimiter": None, "encoding": None}
 
 
 def _read_frame(path, role: str, opts: dict, layer=None, site_id=None):

@@ -243,8 +243,10 @@ def methods_paragraphs(context: Mapping, cite: Citations, unit: str) -> list[str
         space.append(f"The analysis compared {len(schemes)} candidate spatial weighting "
                      f"schemes ({', '.join(schemes)}); because trying several inflates false "
                      f"positives, each scheme's global test used {level}"
-                     f"{cite('Bauman et al. 2018a')}. The scheme retained was "
-                     f"{m.get('chosen_scheme', '?')}.")
+                     f"{cite('Bauman et al. 2018a')}. " + (
+                         f"The scheme retained was {m.get('chosen_scheme', '?')}."
+                         if m.get("chosen_scheme") not in (None, "none") else
+                         "No scheme passed its corrected global test, so none was retained."))
 
     sel = m.get("selection")
     text, refs = _SELECTION.get(sel, (f"Selection rule: {sel}", []))

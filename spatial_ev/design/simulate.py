@@ -199,7 +199,7 @@ def band_spectrum(band: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
     Examples
     --------
     >>> lam, w = band_spectrum((10.0, 20.0))
-    >>> bool(lam.min() > 10 and lam.max() < 20), float(w.sum())
+    >>> bool(lam.min() > 10 and lam.max() < 20), round(float(w.sum()), 12)
     (True, 1.0)
     """
     lam = band_wavelengths(band, (np.arange(_QUADRATURE) + 0.5) / _QUADRATURE)

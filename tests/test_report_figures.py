@@ -12,8 +12,11 @@ import numpy as np
 import pandas as pd
 import pytest
 import shapely
-from matplotlib.collections import PathCollection, QuadMesh
+from scipy.spatial.distance import cdist
+from matplotlib.collections import PathCollection
+from matplotlib.colors import to_hex
 from matplotlib.figure import Figure
+from matplotlib.image import AxesImage
 from matplotlib.text import Annotation
 
 from spatial_ev.errors import CRSError, InputError
@@ -22,6 +25,7 @@ from spatial_ev.report.figures import (moran_scale_figure, partition_figure, sav
                                        scalogram_figure, triplot_figure, unit_symbol,
                                        weighting_figure)
 from spatial_ev.report.maps import nice_scale_bar, site_map_figure
+from spatial_ev.report.surface import smooth_surface, surface_opacity, surface_reach
 
 SEED = 7_310_442_981
 
@@ -419,6 +423,23 @@ def _points(crs="EPSG:32633"):
                             geometry=gpd.points_from_xy(x, y), crs=crs)
 
 
+def _surface_image(fig: Figure) -> AxesImage:
+    found = [im for im in fig.axes[0].images if im.get_gid() == "surface"]
+    assert len(found) == 1
+    return found[0]
+
+
+def _pixels(image: AxesImage) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Centres (x, y) of the surface image's pixels and their opacity, flattened."""
+    rgba = np.asarray(image.get_array())
+    x0, x1, y0, y1 = image.get_extent()
+    ny, nx = rgba.shape[:2]
+    px = x0 + (np.arange(nx) + 0.5) * (x1 - x0) / nx
+    py = y0 + (np.arange(ny) + 0.5) * (y1 - y0) / ny
+    PX, PY = np.meshgrid(px, py)
+    return PX.ravel(), PY.ravel(), rgba[..., 3].ravel()
+
+
 class TestSiteMapFigure:
     def test_scale_bar_for_known_extent(self):
         # sites span 10 km; with 6 % padding on each side the map is 11.2 km wide, a fifth is
@@ -460,32 +481,73 @@ class TestSiteMapFigure:
     def test_surface_under_sites_and_polygons(self):
         gx, gy = np.linspace(500_000, 510_000, 11), np.linspace(4_000_000, 4_006_000, 7)
         values = np.outer(np.linspace(-1, 1, 7), np.ones(11))
-        values[0, 0] = np.nan  # outside the hull
-        fig = site_map_figure(_points(), column="score",
+        values[0, 0] = np.nan  # a missing cell
+        fig = site_map_figure(_points(), column="score", clip="none",
                               surface={"x": gx, "y": gy, "values": values})
-        ax = fig.axes[0]
-        mesh = [c for c in ax.collections if isinstance(c, QuadMesh)]
-        assert len(mesh) == 1 and mesh[0].get_zorder() < _collection(fig, "sites").get_zorder()
-        assert mesh[0].get_array().mask[0, 0]
+        image = _surface_image(fig)
+        assert image.get_zorder() < _collection(fig, "sites").get_zorder()
+        px, py, alpha = _pixels(image)
+        # fine pixels whose nearest given cell is the missing one are hidden, the rest shown
+        # (a pixel exactly half-way between two cells may go either way: left out)
+        off = np.maximum(np.abs(px - gx[0]), np.abs(py - gy[0]))
+        assert np.all(alpha[off < 499] == 0) and np.all(alpha[off > 501] > 0)
+        # bilinear resampling of a field linear in y keeps it linear (drawing only) [derived]
+        assert image.get_interpolation() == "bilinear"
 
     def test_surface_clipped_to_hull(self):
         tri = gpd.GeoDataFrame({"v": [0.0, 1.0, -1.0]},
                                geometry=gpd.points_from_xy([0, 100, 0], [0, 0, 100]))
         g = np.linspace(0, 100, 11)
         full = {"x": g, "y": g, "values": np.ones((11, 11))}
-        mesh = [c for c in site_map_figure(tri, column="v", surface=full,
-                                           unit="m").axes[0].collections
-                if isinstance(c, QuadMesh)][0]
-        shown = ~np.ma.getmaskarray(mesh.get_array()).reshape(11, 11)
-        mx, my = np.meshgrid(g, g)
-        np.testing.assert_array_equal(shown, mx + my <= 100)  # the triangle's cells only
-        mesh = [c for c in site_map_figure(tri, column="v", surface=full, clip="none",
-                                           unit="m").axes[0].collections
-                if isinstance(c, QuadMesh)][0]
-        assert not np.ma.getmaskarray(mesh.get_array()).any()
-        far = {"x": g + 1e6, "y": g, "values": np.ones((11, 11))}
+        px, py, alpha = _pixels(_surface_image(site_map_figure(tri, column="v", surface=full,
+                                                               unit="m")))
+        hull = shapely.Polygon([(0, 0), (100, 0), (0, 100)])
+        # shown inside the hull, hidden farther than one grid step (10) outside it (shapely)
+        inside = shapely.contains_xy(hull, px, py)
+        far = shapely.distance(hull, shapely.points(px, py)) > 10.0 + 1e-9
+        assert np.all(alpha[inside] > 0) and np.all(alpha[far] == 0) and far.any()
+        px, py, alpha = _pixels(_surface_image(site_map_figure(tri, column="v", surface=full,
+                                                               clip="none", unit="m")))
+        assert np.all(alpha > 0)
+        farther = {"x": g + 1e6, "y": g, "values": np.ones((11, 11))}
         with pytest.raises(InputError, match="no cell inside the convex hull"):
-            site_map_figure(tri, column="v", surface=far)
+            site_map_figure(tri, column="v", surface=farther)
+
+    def test_surface_fades_beyond_the_sites_reach(self):
+        # two dense transects 400 m apart and a structure of wavelength 160 m: each site
+        # reaches max(2 x 10 m, 160 / 4) = 40 m, so the gap between transects is hidden
+        xs = np.arange(0.0, 201.0, 10.0)
+        pts = gpd.GeoDataFrame({"v": np.sin(np.r_[xs, xs] / 30.0)},
+                               geometry=gpd.points_from_xy(np.r_[xs, xs],
+                                                           np.r_[np.zeros(21), np.full(21, 400)]))
+        g = np.linspace(0, 400, 41)
+        surface = {"x": g[:21], "y": g, "values": np.ones((41, 21))}
+        fig = site_map_figure(pts, column="v", surface=surface, wavelength=160.0, clip="none",
+                              north_arrow="none")
+        px, py, alpha = _pixels(_surface_image(fig))
+        xy = np.column_stack([pts.geometry.x, pts.geometry.y])
+        d = cdist(np.column_stack([px, py]), xy)  # scipy as the distance oracle
+        spacing = np.sort(cdist(xy, xy), axis=1)[:, 1]
+        reach = np.maximum(2 * spacing, 160.0 / 4)
+        assert np.allclose(reach, 40.0)
+        beyond = np.all(d > reach, axis=1)
+        within_half = np.any(d <= reach / 2, axis=1)
+        assert beyond.sum() > 0.5 * len(px)  # most of the gap is hidden
+        assert np.all(alpha[beyond] == 0)
+        assert np.allclose(alpha[within_half], 0.85)
+        ramp = ~beyond & ~within_half
+        assert np.all((alpha[ramp] > 0) & (alpha[ramp] < 0.85))
+        # without a wavelength nothing fades
+        px, py, alpha = _pixels(_surface_image(site_map_figure(
+            pts, column="v", surface=surface, clip="none", north_arrow="none")))
+        assert np.all(alpha > 0)
+        with pytest.raises(InputError, match="`wavelength` must be a positive length"):
+            site_map_figure(pts, column="v", surface=surface, wavelength=-1.0)
+
+    def test_class_colour_frames_the_map(self):
+        fig = site_map_figure(_points(), column="score", class_colour=st.CLASS_COLOURS[2])
+        assert {to_hex(sp.get_edgecolor()) for sp in fig.axes[0].spines.values()} \
+            == {st.CLASS_COLOURS[2]}
 
     def test_polygons(self):
         polys = gpd.GeoDataFrame({"v": [1.0, 2.0]}, geometry=[shapely.box(0, 0, 10, 10),
@@ -540,3 +602,34 @@ def test_weighting_figure_marks_schemes_without_selection_or_basis():
     labels = [t.get_text().strip() for t in fig.axes[0].texts if t.get_gid() == "no-bar-label"]
     assert labels == ["none selected", "not built"]
     assert len(fig.axes[0].patches) == 1
+
+
+class TestSurfaceFunctions:
+    def test_reach_matches_pairwise_distances(self):
+        rng = np.random.default_rng(SEED)
+        sites = rng.uniform(0, 1000, (40, 2))
+        points = rng.uniform(-100, 1100, (300, 2))
+        d, r = surface_reach(sites, points, 600.0, k=5)
+        full = cdist(points, sites)  # scipy as the oracle for the nearest sites
+        np.testing.assert_allclose(d, np.sort(full, axis=1)[:, :5])
+        spacing = np.sort(cdist(sites, sites), axis=1)[:, 1]
+        nearest = np.argsort(full, axis=1)[:, 0]
+        np.testing.assert_allclose(r[:, 0], np.maximum(2 * spacing[nearest], 150.0))
+        with pytest.raises(InputError, match="`wavelength` must be a positive length"):
+            surface_reach(sites, points, 0.0)
+
+    def test_opacity_ramp_and_best_site(self):
+        # smoothstep 3t² − 2t³ at t = 0.5 is 0.5 [derived]
+        assert surface_opacity(np.array([7.5]), np.array([10.0]))[0] == pytest.approx(0.5)
+        both = surface_opacity(np.array([[12.0, 3.0]]), np.array([[10.0, 10.0]]))
+        assert both.tolist() == [1.0]
+
+    def test_smoothing_keeps_a_plane(self):
+        # bilinear interpolation reproduces any function a + b x + c y exactly [derived]
+        x, y = np.linspace(0, 90, 10), np.linspace(0, 50, 6)
+        X, Y = np.meshgrid(x, y)
+        fx, fy, fz = smooth_surface(x, y, 2.0 + 0.3 * X - 0.1 * Y, factor=3)
+        FX, FY = np.meshgrid(fx, fy)
+        inner = (FX >= 0) & (FX <= 90) & (FY >= 0) & (FY <= 50)
+        np.testing.assert_allclose(fz[inner], (2.0 + 0.3 * FX - 0.1 * FY)[inner], atol=1e-12)
+        assert fz.shape == (18, 30)

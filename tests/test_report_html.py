@@ -6,8 +6,10 @@ import base64
 import html
 import re
 
+import numpy as np
 import pytest
 from report_example import example_context
+from statsmodels.stats.multitest import multipletests
 
 from spatial_ev.errors import InputError
 from spatial_ev.report.html import (
@@ -153,7 +155,39 @@ class TestRenderReport:
         top = context["lcbd"]["sites"]["lcbd"].idxmax()
         assert f"Highest contributions: site {top} (" in lcbd
         n_sig = int((context["lcbd"]["sites"]["p"] <= 0.05).sum())
-        assert f"Ringed: the {n_sig} site(s) whose LCBD has p ≤ 0.05" in lcbd
+        assert f"Thin dashed rings: the {n_sig} site(s) whose LCBD has p ≤ 0.05" in lcbd
+        assert "not corrected for testing every site" in lcbd
+
+    def test_lcbd_marks_follow_the_corrected_p(self, context):
+        sites = context["lcbd"]["sites"].copy()
+        p = sites["p"].to_numpy()
+        sites.loc[sites.index[np.argsort(p)[:2]], "p"] = 0.0001  # two strong sites
+        # Holm (1979, Scand. J. Stat. 6:65-70) step-down adjustment, computed by statsmodels
+        sites["p_holm"] = multipletests(sites["p"].to_numpy(), method="holm")[1]
+        lc = {"sites": sites, "column": "lcbd", "p_column": "p", "p_corrected_column": "p_holm",
+              "alpha": 0.05}
+        n_holm = int((sites["p_holm"] <= 0.05).sum())
+        n_weak = int(((sites["p"] <= 0.05) & (sites["p_holm"] > 0.05)).sum())
+        assert n_holm >= 2 and n_weak >= 1
+        fig = build_figures(_light(context, lcbd=lc))["lcbd_map"]
+        ax = fig.axes[0]
+        heavy = [c for c in ax.collections if c.get_gid() == "highlight"][0]
+        weak = [c for c in ax.collections if c.get_gid() == "weak-highlight"][0]
+        assert len(heavy.get_offsets()) == n_holm and len(weak.get_offsets()) == n_weak
+        legend = [t.get_text() for t in ax.get_legend().get_texts()]
+        assert legend == [f"Holm-corrected p ≤ 0.05 ({n_holm} sites)",
+                          f"p ≤ 0.05 before correction only ({n_weak} site"
+                          + ("" if n_weak == 1 else "s") + ")"]
+        page = render_report(_light(context, lcbd=lc))
+        assert f"Heavy rings: the {n_holm} site(s) whose LCBD keeps p ≤ 0.05 after the Holm" \
+            in _section(page, "lcbd")
+        # nothing survives the correction: the legend says so and claims no "p ≤ 0.05" site
+        sites["p_holm"] = 1.0
+        ax = build_figures(_light(context, lcbd=lc))["lcbd_map"].axes[0]
+        legend = [t.get_text() for t in ax.get_legend().get_texts()]
+        assert legend[0] == "Holm-corrected p ≤ 0.05 (0 sites)"
+        assert len([c for c in ax.collections if c.get_gid() == "highlight"][0]
+                   .get_offsets()) == 0
 
     def test_at_a_glance(self, page, context):
         start = page.index('id="at-a-glance"')

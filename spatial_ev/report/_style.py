@@ -11,14 +11,15 @@ drawn inside :func:`styled` so the settings never leak into the caller's matplot
 from __future__ import annotations
 
 import functools
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any, TypeVar
 
 import matplotlib
 from matplotlib.colors import LinearSegmentedColormap
 
 __all__ = ["INK", "MUTED", "GRID", "UNEXPLAINED", "SHARED", "HIGHLIGHT", "GROUP_COLOURS",
-           "BAND_COLOURS", "DIVERGING", "SEQUENTIAL", "RC", "styled", "group_colour"]
+           "BAND_COLOURS", "CLASS_COLOURS", "DIVERGING", "SEQUENTIAL", "RC", "styled", "group_colour",
+           "scale_class_colours"]
 
 INK = "#1d2530"          # text, axes, outlines
 MUTED = "#8a94a3"        # secondary text, vectors that were not selected
@@ -29,8 +30,12 @@ HIGHLIGHT = "#e69f00"    # the chosen scheme / selected items when a second acce
 
 # one colour per explanatory group, in the order the groups are given
 GROUP_COLOURS = ("#0072b2", "#d55e00", "#009e73", "#cc79a7")
-# soft tints behind scale classes (broad → fine)
+# one colour code per scale class, the same in every figure and page (run report, design
+# report): classes are ranked finest first; class k takes BAND_COLOURS[k] as a soft tint
+# (behind bands on scale axes) and CLASS_COLOURS[k] as its strong colour (map frames, labels,
+# table swatches)
 BAND_COLOURS = ("#eaf2fa", "#fdf0e6", "#e8f5f0", "#f7eaf2", "#f2f2f2")
+CLASS_COLOURS = ("#3f7fb8", "#d55e00", "#009e73", "#cc79a7", "#6c7687")
 
 DIVERGING = LinearSegmentedColormap.from_list(
     "spatial_ev_diverging",
@@ -86,3 +91,23 @@ def styled(func: F) -> F:
 def group_colour(i: int) -> str:
     """Colour of the ``i``-th explanatory group (cycles after four)."""
     return GROUP_COLOURS[i % len(GROUP_COLOURS)]
+
+
+def scale_class_colours(lower_bounds: Sequence[float]) -> list[tuple[str, str]]:
+    """(tint, strong colour) of each scale class, given the classes' lower bounds.
+
+    Classes are ranked finest first (smallest lower bound); the k-th finest takes
+    ``BAND_COLOURS[k]`` and ``CLASS_COLOURS[k]`` (cycling after five), so a class keeps its
+    colour in every figure that shows the same classes, whatever order they are listed in.
+
+    Examples
+    --------
+    >>> scale_class_colours([400.0, 50.0])[1] == (BAND_COLOURS[0], CLASS_COLOURS[0])
+    True
+    """
+    import numpy as np
+
+    lows = np.asarray(list(lower_bounds), dtype=float)
+    rank = np.argsort(np.argsort(lows, kind="stable"), kind="stable")
+    return [(BAND_COLOURS[r % len(BAND_COLOURS)], CLASS_COLOURS[r % len(CLASS_COLOURS)])
+            for r in rank]

@@ -229,6 +229,7 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
     lcbd_frame = a.beta.to_frame()
     lcbd = {"sites": _site_frame(a, lcbd_frame), "column": "lcbd",
             "p_column": "p" if "p" in lcbd_frame else None,
+            "p_corrected_column": "p_holm" if "p_holm" in lcbd_frame else None,
             "alpha": settings.alpha}
     if edges is not None:
         lcbd["network"] = edges

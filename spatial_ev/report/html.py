@@ -80,7 +80,9 @@ that breaks the contract raises :class:`spatial_ev.errors.InputError` naming the
     score predicted there; instead of ``surface``).
 ``lcbd`` : Mapping or None
     ``sites`` (GeoDataFrame), ``column`` (str), *(optional)* ``p_column`` (str: permutation
-    p-value per site), ``alpha`` and ``network`` (as for ``scale_maps``).
+    p-value per site), ``p_corrected_column`` (str: the same p corrected for testing every
+    site, e.g. Holm; the map's heavy rings follow it), ``alpha`` and ``network`` (as for
+    ``scale_maps``).
 ``triplot`` : Mapping or None
     ``eigenvalues`` (Series by axis name), ``total_variance`` (float), ``n_labels``
     *(optional, int)*, and ``scaling_1`` / ``scaling_2`` (each a Mapping ``sites``,
@@ -105,17 +107,19 @@ from pathlib import Path
 from typing import Any
 
 import jinja2
+import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 
 from spatial_ev.errors import InputError
 from spatial_ev.report import figures as figs
+from spatial_ev.report import _style as st
 from spatial_ev.report import maps
 from spatial_ev.report._text import (REFERENCES, Citations, data_rows, distance, glance_items,
                                      limits_items, methods_paragraphs, num, pvalue)
 
 __all__ = ["render_report", "build_figures", "write_report", "CONTEXT_PARTS", "SECTIONS",
-           "REFERENCES"]
+           "REFERENCES", "class_colours", "lcbd_marks"]
 
 # the context keys every report needs (each may be None: the section then says it is absent)
 CONTEXT_PARTS: tuple[str, ...] = ("data", "methods", "partition", "selected_environment",
@@ -225,6 +229,7 @@ def build_figures(context: Mapping[str, Any]) -> dict[str, Figure]:
             out["weighting"] = figs.weighting_figure(
                 wt["table"], alpha=wt.get("alpha", 0.05),
                 corrected_alpha=wt.get("corrected_alpha"), chosen=wt.get("chosen"))
+    colours = class_colours(context)
     for i, entry in enumerate(context["scale_maps"] or (), start=1):
         with _reading(f"scale_maps'][{i - 1}"):
             lo, hi = entry["scale_range"]
@@ -234,20 +239,27 @@ def build_figures(context: Mapping[str, Any]) -> dict[str, Figure]:
                 surface=entry.get("surface"), unit=unit, network=entry.get("network"),
                 along=entry.get("along"), along_column=entry.get("along_column"),
                 title=f"{name} scale ({distance(lo, unit)} – {distance(hi, unit)})",
-                value_label="fitted score (centred)")
+                value_label="fitted score (centred)",
+                wavelength=float(lo) if float(lo) > 0 else None,
+                class_colour=colours.get(name, (None, None))[1])
     lc = context["lcbd"]
     if lc is not None:
         with _reading("lcbd"):
-            sites, highlight, label = lc["sites"], None, "highlighted"
-            if lc.get("p_column") is not None:
-                alpha = lc.get("alpha", 0.05)
-                sites = sites.assign(_significant=sites[lc["p_column"]].to_numpy() <= alpha)
-                highlight, label = "_significant", f"LCBD p ≤ {alpha:g}"
+            sites, marks = lc["sites"], lcbd_marks(lc)
+            highlight = weak = None
+            label = weak_label = ""
+            if marks is not None:
+                sites = sites.assign(_corrected=marks["corrected"], _uncorrected=marks["weak"])
+                if marks["method"] is not None:  # listed even with no site: "(0 sites)"
+                    highlight, label = "_corrected", marks["corrected_label"]
+                if marks["weak"].any():
+                    weak, weak_label = "_uncorrected", marks["weak_label"]
             out["lcbd_map"] = maps.site_map_figure(
                 sites, column=lc["column"], palette="sequential", unit=unit,
                 title="Local contribution to beta diversity",
                 value_label="LCBD (share of total)", highlight=highlight,
-                highlight_label=label, network=lc.get("network"))
+                highlight_label=label, weak_highlight=weak, weak_label=weak_label,
+                network=lc.get("network"))
     tp = context["triplot"]
     if tp is not None:
         for scaling in (1, 2):
@@ -318,6 +330,74 @@ def _scale_map_captions(context: Mapping[str, Any], unit: str, uris: Mapping[str
     return out
 
 
+def class_colours(context: Mapping[str, Any]) -> dict[str, tuple[str, str]]:
+    """(tint, strong colour) of each scale class named in the context, by class name.
+
+    Classes are ranked finest first over the scalogram's classes when given (so every class
+    keeps its colour even when one has no map), else over the scale maps' ranges; colours come
+    from :func:`spatial_ev.report._style.scale_class_colours`.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> ctx = {"scalogram": {"classes": pd.DataFrame({"name": ["broad", "fine"],
+    ...                                               "low": [300.0, 40.0],
+    ...                                               "high": [900.0, 300.0]})}}
+    >>> class_colours(ctx)["fine"][1] == st.CLASS_COLOURS[0]
+    True
+    """
+    sc = context.get("scalogram")
+    classes = sc.get("classes") if isinstance(sc, Mapping) else None
+    if isinstance(classes, pd.DataFrame) and len(classes):
+        names = [str(n) for n in classes["name"]]
+        lows = [float(v) for v in classes["low"]]
+    else:
+        entries = context.get("scale_maps") or ()
+        names = [_class_name(e) for e in entries]
+        lows = [float(e["scale_range"][0]) for e in entries]
+    return dict(zip(names, st.scale_class_colours(lows)))
+
+
+def lcbd_marks(lc: Mapping[str, Any]) -> dict[str, Any] | None:
+    """Which sites the LCBD map rings, and the legend words, from the context's p columns.
+
+    With ``p_corrected_column`` (e.g. Holm-corrected p, as in the LCBD table), a heavy ring
+    marks sites whose corrected p ≤ alpha and a thin dashed ring those at or below alpha only
+    before the correction; with the uncorrected ``p_column`` alone, only thin rings, labelled as
+    uncorrected. Legend labels carry the counts. None when the context has no p column.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> lc = {"sites": pd.DataFrame({"p": [0.01, 0.2], "p_holm": [0.02, 0.4]}),
+    ...       "p_column": "p", "p_corrected_column": "p_holm", "alpha": 0.05}
+    >>> lcbd_marks(lc)["corrected_label"]
+    'Holm-corrected p ≤ 0.05 (1 site)'
+    """
+    if lc.get("p_column") is None:
+        return None
+    alpha = float(lc.get("alpha", 0.05))
+    sites = lc["sites"]
+    raw = sites[lc["p_column"]].to_numpy(dtype=float) <= alpha
+    column = lc.get("p_corrected_column")
+    if column is not None:
+        corrected = sites[column].to_numpy(dtype=float) <= alpha
+        weak = raw & ~corrected
+        weak_words = "before correction only"
+    else:
+        corrected = np.zeros(len(sites), dtype=bool)
+        weak = raw
+        weak_words = "uncorrected for testing every site"
+
+    def count(k: int) -> str:
+        return f"{k} site" + ("" if k == 1 else "s")
+
+    return {"corrected": corrected, "weak": weak, "alpha": alpha,
+            "method": None if column is None else "Holm",
+            "corrected_label": f"Holm-corrected p ≤ {alpha:g} ({count(int(corrected.sum()))})",
+            "weak_label": f"p ≤ {alpha:g} {weak_words} ({count(int(weak.sum()))})"}
+
+
 def _lcbd_note(lc: Mapping[str, Any] | None) -> str | None:
     if lc is None:
         return None
@@ -325,11 +405,20 @@ def _lcbd_note(lc: Mapping[str, Any] | None) -> str | None:
         top = lc["sites"][lc["column"]].sort_values(ascending=False).head(5)
         note = ("Highest contributions: "
                 + ", ".join(f"site {idx} ({val:.3f})" for idx, val in top.items()) + ".")
-        if lc.get("p_column") is not None:
-            alpha = lc.get("alpha", 0.05)
-            n_sig = int((lc["sites"][lc["p_column"]] <= alpha).sum())
-            note += (f" Ringed: the {n_sig} site(s) whose LCBD has p ≤ {alpha:g} in a "
-                     "permutation test (not corrected for testing every site).")
+        marks = lcbd_marks(lc)
+        if marks is not None:
+            alpha, n_weak = marks["alpha"], int(marks["weak"].sum())
+            if marks["method"] is not None:
+                n_sig = int(marks["corrected"].sum())
+                note += (f" Heavy rings: the {n_sig} site(s) whose LCBD keeps p ≤ {alpha:g} "
+                         "after the Holm correction for testing every site (the p_holm column "
+                         f"of the LCBD table); thin dashed rings: the {n_weak} further site(s) "
+                         f"with p ≤ {alpha:g} before the correction only, which may be chance "
+                         "results among so many tests.")
+            else:
+                note += (f" Thin dashed rings: the {n_weak} site(s) whose LCBD has p ≤ "
+                         f"{alpha:g} in a permutation test, not corrected for testing every "
+                         "site (some may be chance results).")
     return note
 
 

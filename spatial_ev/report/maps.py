@@ -28,6 +28,7 @@ from spatial_ev._validation import check_option
 from spatial_ev.errors import CRSError, InputError
 from spatial_ev.report import _style as st
 from spatial_ev.report.figures import unit_symbol
+from spatial_ev.report.surface import smooth_surface, surface_opacity, surface_reach
 
 __all__ = ["site_map_figure", "nice_scale_bar"]
 
@@ -164,6 +165,39 @@ def _clip_to_hull(grid: tuple[np.ndarray, np.ndarray, np.ndarray], sites: gpd.Ge
     return x, y, np.where(inside, z, np.nan)
 
 
+def _surface_image(grid: tuple[np.ndarray, np.ndarray, np.ndarray], sites: gpd.GeoDataFrame,
+                   *, clip: str, wavelength: float | None, cmap: Any, norm: Normalize
+                   ) -> tuple[np.ndarray, tuple[float, float, float, float]]:
+    """RGBA image of the surface on a finer grid, with its opacity, and its extent.
+
+    Drawing only: the values are resampled bilinearly; opacity 0 outside the hull (buffered by
+    one cell so sites on its edge stay on colour), outside the given cells, and — with a
+    ``wavelength`` — beyond each point's reach from the sites (:mod:`.surface`).
+    """
+    x, y, z = grid
+    factor = int(np.clip(np.ceil(320 / max(len(x), len(y))), 1, 8))
+    fx, fy, fz = smooth_surface(x, y, z, factor=factor)
+    FX, FY = np.meshgrid(fx, fy)
+    step = max((x[-1] - x[0]) / (len(x) - 1), (y[-1] - y[0]) / (len(y) - 1))
+    # a fine point is shown only if its nearest given cell has a value
+    ix = np.clip(np.searchsorted(x, fx - (x[1] - x[0]) / 2), 0, len(x) - 1)
+    iy = np.clip(np.searchsorted(y, fy - (y[1] - y[0]) / 2), 0, len(y) - 1)
+    opacity = np.isfinite(z[np.ix_(iy, ix)]).astype(float)
+    if clip == "hull":
+        hull = sites.geometry.union_all().convex_hull.buffer(step)
+        opacity = opacity * shapely.intersects_xy(hull, FX, FY)
+    if wavelength is not None:
+        centres = sites.geometry.representative_point()
+        site_xy = np.column_stack([centres.x.to_numpy(), centres.y.to_numpy()])
+        dist, reach = surface_reach(site_xy, np.column_stack([FX.ravel(), FY.ravel()]),
+                                    wavelength, k=8)
+        opacity = opacity * surface_opacity(dist, reach).reshape(FX.shape)
+    rgba = cmap(norm(fz))
+    rgba[..., 3] = 0.85 * opacity
+    dx, dy = fx[1] - fx[0], fy[1] - fy[0]
+    return rgba, (fx[0] - dx / 2, fx[-1] + dx / 2, fy[0] - dy / 2, fy[-1] + dy / 2)
+
+
 def _check_highlight(sites: gpd.GeoDataFrame, highlight: Any) -> np.ndarray | None:
     if highlight is None:
         return None
@@ -206,7 +240,9 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
                     highlight_label: str = "highlighted", clip: str = "hull",
                     network: gpd.GeoDataFrame | None = None,
                     along: gpd.GeoDataFrame | None = None,
-                    along_column: str | None = None) -> Figure:
+                    along_column: str | None = None, wavelength: float | None = None,
+                    class_colour: str | None = None, weak_highlight: str | None = None,
+                    weak_label: str = "weak") -> Figure:
     """Map one value per site, optionally over a gridded prediction surface.
 
     Points are drawn as dots, polygons filled; both take the value's colour. With
@@ -235,11 +271,21 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     value_label : colour-bar label (default: the column name).
     north_arrow : ``"grid"`` (draw a grid-north arrow) or ``"none"``.
     highlight : name of a boolean column; its True sites get a heavy dark ring (e.g. sites
-        whose LCBD is significant) and a legend entry ``highlight_label``.
+        whose LCBD is significant) and a legend entry ``highlight_label`` (listed also when
+        no site is marked, so the legend can say "0 sites").
     highlight_label : legend text for highlighted sites.
     clip : ``"hull"`` hides surface cells outside the convex hull of the sites (an
         interpolation says nothing beyond the surveyed area); ``"none"`` draws the surface as
         given (NaN cells are always hidden).
+    wavelength : finest equivalent wavelength (map units) of the structure the surface shows;
+        the surface then fades out with distance from the sites and is transparent where no
+        site has it within its reach, ``max(2 × local spacing, wavelength / 4)``: opaque within half
+        of it, transparent beyond it (:mod:`spatial_ev.report.surface`). None: no fading.
+    class_colour : colour of the scale class mapped (drawn as the map's frame), or None.
+    weak_highlight : name of a boolean column; its True sites get a thin open ring and the
+        legend entry ``weak_label`` (e.g. sites significant before a multiple-test
+        correction but not after it); drawn apart from ``highlight``.
+    weak_label : legend text for ``weak_highlight`` sites.
     network : GeoDataFrame of lines (a river network's edges), drawn in grey under
         everything else, or None.
     along : GeoDataFrame of points along ``network`` carrying a value (predictions along the
@@ -247,10 +293,10 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
         needs ``along_column``. Used instead of a ``surface`` for network bases.
     along_column : name of the numeric column of ``along``.
 
-
     Returns
     -------
-    Figure with the map axes first and the colour bar second; the scale bar patches carry
+    Figure with the map axes first and the colour bar second; the surface is an image with
+    ``gid="surface"`` (RGBA, its alpha channel the opacity); the scale bar patches carry
     ``gid="scale-bar"`` and its label ``gid="scale-bar-label"``; the network lines
     ``gid="network"`` and the values along it ``gid="along-network"``.
 
@@ -272,9 +318,14 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
         raise InputError("give `surface` (an open grid) or `along` (values along a network), "
                          "not both")
     marked = _check_highlight(sites, highlight)
+    weak = _check_highlight(sites, weak_highlight)
+    if wavelength is not None and (not np.isfinite(wavelength) or wavelength <= 0):
+        raise InputError(f"`wavelength` must be a positive length in map units or None; got "
+                         f"{wavelength!r}")
     check_option("palette", palette, _PALETTES)
     check_option("north_arrow", north_arrow, ("grid", "none"))
     check_option("clip", clip, ("hull", "none"))
+    given = grid
     if grid is not None and clip == "hull":
         grid = _clip_to_hull(grid, sites)
     unit = unit_symbol(unit) if unit not in ("m", "km", "ft", "map units") else unit
@@ -322,9 +373,10 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
                    rasterized=True)
     if grid is not None:
         gx, gy, gz = grid
-        ax.pcolormesh(gx, gy, np.ma.masked_invalid(gz), cmap=cmap, norm=norm,
-                      shading="nearest", alpha=0.8, zorder=1, gid="surface",
-                      rasterized=True)
+        rgba, extent = _surface_image(given, sites, clip=clip, wavelength=wavelength,  # type: ignore[arg-type]
+                                      cmap=cmap, norm=norm)
+        ax.imshow(rgba, extent=extent, origin="lower", interpolation="bilinear", zorder=1,
+                  gid="surface", rasterized=True, aspect="equal")
         xmin, xmax = min(xmin, gx[0]), max(xmax, gx[-1])
         ymin, ymax = min(ymin, gy[0]), max(ymax, gy[-1])
     if set(sites.geometry.geom_type) == {"Point"}:
@@ -339,10 +391,16 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
                                  crs=sites.crs)
         frame.plot(ax=ax, column="_value", cmap=cmap, norm=norm, edgecolor="white",
                    linewidth=0.3, zorder=3)
-    if marked is not None and marked.any():
+    if marked is not None:  # drawn (and listed in the legend) even when no site is marked
         centres = sites.geometry[marked].representative_point()
         ax.scatter(centres.x, centres.y, s=90, facecolor="none", edgecolor=st.INK,
                    linewidth=1.6, zorder=4, gid="highlight", label=highlight_label)
+    if weak is not None and weak.any():
+        centres = sites.geometry[weak].representative_point()
+        ax.scatter(centres.x, centres.y, s=70, facecolor="none", edgecolor=st.INK,
+                   linewidth=0.7, linestyle=(0, (2, 1.5)), zorder=4, gid="weak-highlight",
+                   label=weak_label)
+    if marked is not None or (weak is not None and weak.any()):
         ax.legend(loc="upper left", fontsize=7.5, framealpha=0.85, frameon=True)
     width, height = max(xmax - xmin, 1e-9), max(ymax - ymin, 1e-9)
     side = max(width, height)
@@ -368,6 +426,10 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     ax.tick_params(axis="x", labelrotation=0)
     for side_name in ("top", "right"):
         ax.spines[side_name].set_visible(True)
+    if class_colour is not None:
+        for spine in ax.spines.values():
+            spine.set_edgecolor(class_colour)
+            spine.set_linewidth(2.2)
     fig.colorbar(ScalarMappable(norm=norm, cmap=cmap), ax=ax, shrink=0.75, pad=0.02,
                  label=value_label or column)
     ax.set_title(title or column)

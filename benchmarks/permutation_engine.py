@@ -11,7 +11,11 @@ may share the machine):
 (b) speed-up over a straightforward loop fitting one least-squares model per permutation
     (``np.linalg.lstsq`` on [1, X] for every permuted Y), timed on 199 permutations and scaled;
 (c) achieved GFLOP/s (2·n·rank·p per permutation) beside the machine's square float64 matmul
-    GFLOP/s, the BLAS library, kernel and thread count (threadpoolctl), OPENBLAS_CORETYPE.
+    GFLOP/s, the BLAS library, kernel and thread count (threadpoolctl), OPENBLAS_CORETYPE;
+(d) where the engine's time goes, one BLAS thread: drawing the permutations (seed blocks),
+    gathering permuted rows in cache-sized batches, the batch products, and the sums of
+    squares, each timed alone on the engine's batch shapes, against the bare product; and
+    the load average, since other processes on a shared machine inflate the threaded ratios.
 
 Run:  python benchmarks/permutation_engine.py
       env -u OPENBLAS_CORETYPE -u OPENBLAS_L2_SIZE python benchmarks/permutation_engine.py
@@ -62,6 +66,30 @@ def loop_null(y: np.ndarray, x: np.ndarray, perms: np.ndarray) -> np.ndarray:
         ss_resid = float(((y[perm] - design @ coef) ** 2).sum())
         out[i] = ((ss_total - ss_resid) / rank) / (ss_resid / (n - rank - 1))
     return out
+
+
+def breakdown(yc: np.ndarray, q: np.ndarray, seed: int) -> dict[str, float]:
+    """Single-thread times of the engine's pieces on its own batch shapes (module notes, d)."""
+    n, p = yc.shape
+    step = max(1, (8 * 2 ** 20) // (8 * n * min(p, q.shape[1])))   # the engine's 8 MiB gathers
+    perms = permutations(n, N_PERMUTATIONS, seed=np.random.default_rng(seed))
+    starts = range(0, N_PERMUTATIONS, step)
+    gathered = [yc.take(perms[i:i + step].T, axis=0).reshape(n, -1) for i in starts]
+    products = [(q.T @ g).reshape(q.shape[1], -1, p) for g in gathered]
+    stacked = np.hstack(gathered)
+    pieces = {
+        "draw": lambda: permutations(n, N_PERMUTATIONS, seed=np.random.default_rng(seed)),
+        "gather": lambda: [yc.take(perms[i:i + step].T, axis=0) for i in starts],
+        "products": lambda: [q.T @ g for g in gathered],
+        "sums": lambda: [np.einsum("kmp,kmp->km", b, b) for b in products],
+        "floor": lambda: q.T @ stacked,
+    }
+    times: dict[str, list[float]] = {}
+    with threadpool_limits(limits=1, user_api="blas"):
+        for _ in range(REPEATS):
+            for name, function in pieces.items():
+                times.setdefault(name, []).append(best_of(function, 1))
+    return {name: min(values) for name, values in times.items()}
 
 
 def main() -> None:
@@ -130,6 +158,16 @@ def main() -> None:
           f"engine {t_loop_1 / t_engine_1:.1f}x")
     print(f"(c) engine {flops / t_engine / 1e9:.1f} GFLOP/s, floor {flops / floor / 1e9:.1f} "
           f"GFLOP/s, square 2000x2000 matmul {gemm:.1f} GFLOP/s")
+    parts = breakdown(yc, q, SEED + 1)
+    floor_single = parts["floor"]
+    print(f"(d) one BLAS thread, {N_PERMUTATIONS} permutations, as shares of the bare product "
+          f"({floor_single:.4f} s): draws {parts['draw'] / floor_single:.1%}, gathers "
+          f"{parts['gather'] / floor_single:.1%}, batch products "
+          f"{parts['products'] / floor_single:.1%}, sums of squares "
+          f"{parts['sums'] / floor_single:.1%}")
+    load = os.getloadavg() if hasattr(os, "getloadavg") else (float("nan"),) * 3
+    print(f"    load average {load[0]:.1f} / {load[1]:.1f} / {load[2]:.1f} on {os.cpu_count()} "
+          f"cores (above the core count the threaded ratios include waiting for a core)")
     for lib in threadpool_info():
         print(f"    BLAS: {lib.get('internal_api')} {lib.get('version')}, kernel "
               f"{lib.get('architecture')}, {lib.get('num_threads')} threads, "

@@ -68,6 +68,26 @@ class TestCoverageFigure:
         assert len(ticks[0].get_segments()) == cov.layouts["n_vectors"].iloc[0]
         assert fig.axes[0].get_xscale() == "log"
 
+    def test_class_colours_shared_with_the_run_report(self):
+        # each class label takes the strong colour of the shared code (finest class first),
+        # the one the run report's class maps and scalogram use
+        from matplotlib.colors import to_hex
+
+        from spatial_ev.report import _style as st
+
+        ev = _evaluation()
+        cov = ev.coverage
+        fig = coverage_figure(cov.layouts, cov.classes,
+                              {n: b.scale for n, b in cov.bases.items()})
+        labels = [t for t in fig.axes[0].texts if t.get_gid() == "class-label"]
+        first = cov.classes.drop_duplicates("scale_class")
+        expected = dict(zip(first["scale_class"],
+                            [c[1] for c in st.scale_class_colours(first["lower"])]))
+        assert labels
+        for text in labels:
+            name = text.get_text().rstrip(" *")
+            assert to_hex(text.get_color()) == to_hex(expected[name])
+
     def test_missing_scales(self):
         ev = _evaluation()
         with pytest.raises(InputError, match="no vector scales for layout"):

@@ -99,16 +99,17 @@ def coverage_figure(layouts: pd.DataFrame, classes: pd.DataFrame,
     fig = Figure(figsize=(8.0, 1.6 + 0.55 * len(names)), layout="constrained")
     ax = fig.add_subplot()
     ax.set_xscale("log")
-    # class tints as in the run report's scalogram: BAND_COLOURS by class, finest first
-    first = classes.drop_duplicates("scale_class").sort_values("lower")
-    for i, row in enumerate(first.itertuples()):
+    # the scale-class colour code shared with the run report (finest class first)
+    first = classes.drop_duplicates("scale_class")
+    colours = st.scale_class_colours(first["lower"])
+    for row, (tint, strong) in zip(first.itertuples(), colours):
         a, b = max(row.lower, lo), min(row.upper, hi)
         if b <= a:
             continue
-        ax.axvspan(a, b, color=st.BAND_COLOURS[i % len(st.BAND_COLOURS)], lw=0, zorder=0)
+        ax.axvspan(a, b, color=tint, lw=0, zorder=0)
         label = row.scale_class + (" *" if row.pilot_significant else "")
         ax.text(math.sqrt(a * b), len(names) - 0.35, label, ha="center", va="bottom",
-                fontsize=8, color=st.INK, gid="class-label")
+                fontsize=8, color=strong, fontweight="bold", gid="class-label")
     status_colour = {"resolved": st.group_colour(0), "partly": st.HIGHLIGHT,
                      "not resolved": st.MUTED}
     for k, name in enumerate(names):

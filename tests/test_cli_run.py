@@ -174,6 +174,41 @@ class TestRunReportInBrowser:
         assert check.screenshot_std > 5.0
 
 
+def test_small_survey_note_and_single_scheme_suggestion(tmp_path, capsys):
+    """16 sites (< 30): the analysis notes that 8 schemes compared at the Šidák level
+    1 - 0.95^(1/8) = 0.006391 [derived; Šidák 1967, J. Am. Stat. Assoc.] is rarely reached, both
+    `check` and `run` suggest one scheme, and the Methods never say the retained scheme was
+    'none'."""
+    sites, species, env = make_small_survey_tables(n_side=4)
+    paths = {}
+    for name, frame in (("sites", sites), ("species", species), ("environment", env)):
+        paths[name] = tmp_path / f"{name}.csv"
+        frame.to_csv(paths[name], index=False)
+    files = ["--sites", str(paths["sites"]), "--species", str(paths["species"]),
+             "--environment", str(paths["environment"]), "--x", "easting", "--y", "northing",
+             "--crs", "EPSG:32633"]
+    assert main(["check", *files]) == 0
+    out = capsys.readouterr().out
+    assert "note: 16 sites, fewer than 30" in out and "--weighting distance" in out
+    run = tmp_path / "run"
+    assert main(["run", *files, "--out", str(run), "--permutations", "199", "--seed", "5",
+                 "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "note: 16 sites, fewer than 30" in out and "--weighting distance" in out
+    summary = json.loads((run / "summary.json").read_text())
+    note = summary["notes"][0]
+    assert note.startswith("The survey has 16 sites, fewer than 30: comparing 8 weighting "
+                           "schemes tests each at the corrected level 0.006391 instead of 0.05")
+    page = (run / "report.html").read_text(encoding="utf-8")
+    assert "retained was none" not in page
+    # one scheme chosen beforehand: no note, no suggestion
+    single = tmp_path / "single"
+    assert main(["run", *files, "--out", str(single), *FAST]) == 0
+    assert "fewer than 30" not in capsys.readouterr().out
+    assert not any("fewer than 30" in n
+                   for n in json.loads((single / "summary.json").read_text())["notes"])
+
+
 def test_manifest_records_read_options(small_survey_files, tmp_path):
     # A run folder must be rebuildable from its files alone: the reading options are recorded
     # explicitly, not only as the command line.

@@ -28,7 +28,8 @@ from spatial_ev.cli.network import (
 from spatial_ev.errors import InputError
 
 __all__ = ["configure_run", "execute_run", "configure_demo", "execute_demo", "load_config",
-           "check_analysis_options", "check_survey_for_run", "ANALYSIS_MIN_SITES"]
+           "check_analysis_options", "check_survey_for_run", "ANALYSIS_MIN_SITES",
+           "small_survey_hint"]
 
 # the fewest sites the analysis takes (spatial_ev.pipeline.analysis.analyse refuses fewer;
 # tests/test_cli_check.py keeps the two equal), so that `check` can say so before `run`
@@ -288,6 +289,29 @@ def check_survey_for_run(survey) -> None:
                          f"permutation tests)")
 
 
+def small_survey_hint(n_sites: int, weighting: str = "compare") -> str | None:
+    """The command line's suggestion for a survey too small to compare weighting schemes.
+
+    Returns ``None`` from :data:`spatial_ev.pipeline.analysis.SMALL_SURVEY_SITES` sites on, or
+    when one scheme is already chosen with ``--weighting``.
+
+    Examples
+    --------
+    >>> small_survey_hint(12).startswith("note: 12 sites, fewer than 30")
+    True
+    >>> small_survey_hint(12, "distance") is None, small_survey_hint(64) is None
+    (True, True)
+    """
+    from spatial_ev.pipeline.analysis import SMALL_SURVEY_SITES
+
+    if n_sites >= SMALL_SURVEY_SITES or weighting != "compare":
+        return None
+    return (f"note: {n_sites} sites, fewer than {SMALL_SURVEY_SITES}: comparing every weighting "
+            f"scheme tests each at a corrected level that so few sites rarely reach; choose "
+            f"one scheme before the analysis, e.g. --weighting distance (or "
+            f"--weighting gabriel/binary)")
+
+
 def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=None,
                        before_commit=None, title=None, reading=None) -> Any:
     from spatial_ev.pipeline.analysis import analyse
@@ -334,6 +358,9 @@ def _final_lines(result, out: str, elapsed: float) -> list[str]:
                      "{unexplained:.3f}".format(**f))
     lines.append(f"spatial vectors selected: {len(result.selected_space)} "
                  f"({result.settings['chosen_scheme']}); report: {Path(out) / 'report.html'}")
+    hint = small_survey_hint(result.survey.n_sites, result.settings["spatial_weighting"])
+    if hint is not None:
+        lines.append(hint)
     return lines
 
 

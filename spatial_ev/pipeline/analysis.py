@@ -61,7 +61,7 @@ from spatial_ev.pipeline.steps import (
 )
 from spatial_ev.selection.forward import ForwardSelection
 from spatial_ev.selection.partition import VariationPartition
-from spatial_ev.selection.weighting import DEFAULT_SCHEMES, WeightingComparison
+from spatial_ev.selection.weighting import DEFAULT_SCHEMES, WeightingComparison, sidak_level
 from spatial_ev.space.eigen import SpatialBasis
 from spatial_ev.stats.canonical import RedundancyAnalysis, redundancy_analysis
 from spatial_ev.stats.transform import (
@@ -77,9 +77,52 @@ __all__ = [
     "AnalysisSettings",
     "ScaleClassFit",
     "analyse",
+    "SMALL_SURVEY_SITES",
+    "small_survey_note",
 ]
 
 ENVIRONMENT_TESTS = ("spectral", "permutation")
+
+# below this many sites a comparison of weighting schemes rarely passes its corrected level
+SMALL_SURVEY_SITES = 30
+
+
+def small_survey_note(n_sites: int, n_schemes: int, alpha: float) -> str | None:
+    """The note an analysis carries when a small survey compares several weighting schemes.
+
+    Parameters
+    ----------
+    n_sites : int
+        Sites analysed.
+    n_schemes : int
+        Weighting schemes compared (1 when a single scheme was given).
+    alpha : float
+        Significance level of the analysis.
+
+    Returns
+    -------
+    str or None
+        A plain-language note, or ``None`` from :data:`SMALL_SURVEY_SITES` sites on or for a
+        single scheme.
+
+    Examples
+    --------
+    >>> small_survey_note(12, 8, 0.05)[:46]
+    'The survey has 12 sites, fewer than 30: compar'
+    >>> small_survey_note(40, 8, 0.05) is None, small_survey_note(12, 1, 0.05) is None
+    (True, True)
+    """
+    n_sites = check_int("n_sites", n_sites, low=0)
+    n_schemes = check_int("n_schemes", n_schemes, low=1)
+    alpha = check_real("alpha", alpha, low=0, high=1, low_inclusive=False)
+    if n_sites >= SMALL_SURVEY_SITES or n_schemes == 1:
+        return None
+    level = sidak_level(alpha, n_schemes)
+    return (f"The survey has {n_sites} sites, fewer than {SMALL_SURVEY_SITES}: comparing "
+            f"{n_schemes} weighting schemes tests each at the corrected level {level:.4g} "
+            f"instead of {alpha:g}, which so few sites rarely reach. A single scheme chosen "
+            f"before the analysis (for example the distance-based basis) is tested at the full "
+            f"level.")
 
 
 @dataclass(frozen=True)
@@ -476,6 +519,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
             else redundancy_analysis(Y)
 
     steps = (trend_, environment, spectral, space, partition, only_spectral, scales)
+    small = small_survey_note(survey.n_sites, getattr(space.weighting, "n_schemes", 1), alpha)
     settings = AnalysisSettings(
         transformation=transformation, trend=trend, spatial_weighting=spatial_weighting,
         schemes=tuple(schemes), chosen_scheme=space.chosen, alpha=alpha,
@@ -489,7 +533,8 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         partition=partition.partition, fractions=partition.fractions,
         fraction_tests=partition.fraction_tests, scale_fits=scales.fits,
         scalogram=scales.scalogram, beta=beta, ordination=ordination,
-        notes=tuple(note for step in steps if step is not None for note in step.notes),
+        notes=tuple(note for note in (small,) if note is not None)
+        + tuple(note for step in steps if step is not None for note in step.notes),
         warnings=tuple(f"{w.category.__name__}: {w.message}" for w in caught
                        if issubclass(w.category, SpatialEVWarning)),
         environment_spectral=None if spectral is None else spectral.test,

@@ -11,7 +11,8 @@ import pytest
 
 from spatial_ev import errors
 from spatial_ev.input.crs import (check_geographic_ranges, crs_label, distance_unit_of,
-                            local_metric_crs, looks_geographic_name, normalise_local_unit,
+                            is_local_metric_crs, local_metric_crs, looks_geographic_name,
+                            normalise_local_unit,
                             parse_crs)
 from spatial_ev.input.survey import Survey
 
@@ -164,3 +165,34 @@ class TestScaleRange:
         with warnings.catch_warnings():
             warnings.simplefilter("error", MapDistortionWarning)
             Survey.from_frames(sites.to_crs(32633))
+
+
+class TestLocalProjectionLabels:
+    def test_local_projection_recognised(self):
+        crs, _ = local_metric_crs(np.array([15.0, 15.01]), np.array([60.0, 60.01]))
+        assert is_local_metric_crs(crs) and is_local_metric_crs(crs.to_wkt())
+        assert not is_local_metric_crs(pyproj.CRS(32633))
+        assert not is_local_metric_crs(pyproj.CRS(4326)) and not is_local_metric_crs(None)
+        # an azimuthal equidistant CRS that is not the survey's own: not ours
+        assert not is_local_metric_crs(pyproj.CRS("+proj=aeqd +lat_0=60 +lon_0=15"))
+
+    def test_map_axes_of_a_lon_lat_survey(self):
+        """Degrees projected around the survey centre are labelled as offsets from that
+        centre in the local projection, not as a projected CRS's easting/northing."""
+        from spatial_ev.report.maps import site_map_figure
+
+        lon = 15.0 + np.array([0.0, 0.004, 0.008, 0.0, 0.004, 0.008])
+        lat = 60.0 + np.array([0.0, 0.0, 0.0, 0.003, 0.003, 0.003])
+        sites = pd.DataFrame({"lon": lon, "lat": lat},
+                             index=pd.Index([f"s{i}" for i in range(6)], name="site"))
+        with pytest.warns(errors.GeographicCoordinatesWarning):
+            survey = Survey.from_frames(sites, x="lon", y="lat", crs="EPSG:4326")
+        layer = survey.sites.assign(value=np.arange(6.0) - 2.5)
+        ax = site_map_figure(layer, column="value").axes[0]
+        assert ax.get_xlabel() == "east of survey centre (m, local azimuthal equidistant)"
+        assert ax.get_ylabel() == "north of survey centre (m, local azimuthal equidistant)"
+        # the centre lies inside the survey: offsets of both signs, within the survey's extent
+        assert survey.coords["x"].min() < 0 < survey.coords["x"].max()
+        utm = survey.sites.to_crs(32633).assign(value=np.arange(6.0) - 2.5)
+        ax = site_map_figure(utm, column="value").axes[0]
+        assert (ax.get_xlabel(), ax.get_ylabel()) == ("easting (m)", "northing (m)")

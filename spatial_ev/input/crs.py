@@ -35,6 +35,7 @@ __all__ = [
     "normalise_local_unit",
     "check_geographic_ranges",
     "local_metric_crs",
+    "is_local_metric_crs",
     "looks_geographic_name",
     "scale_range",
 ]
@@ -50,6 +51,8 @@ _LOCAL_UNITS = {
     "mile": "mile", "miles": "mile", "mi": "mile",
     "grid cell": "grid cell", "cell": "grid cell", "cells": "grid cell",
 }
+
+_LOCAL_NAME_START = "Azimuthal equidistant centred on "  # name of the local projection
 
 MAX_SCALE_ERROR = 0.01  # largest tolerated distance distortion of the local projection
 
@@ -230,7 +233,7 @@ def local_metric_crs(lon: np.ndarray, lat: np.ndarray,
                        f"to {100 * scale_error:.1f} %; give the survey in a projected CRS "
                        f"suited to its region")
     base = (geodetic_crs or pyproj.CRS(4326)).geodetic_crs
-    name = f"Azimuthal equidistant centred on {lat0:.6f}, {lon0:.6f} ({base.name})"
+    name = f"{_LOCAL_NAME_START}{lat0:.6f}, {lon0:.6f} ({base.name})"
     crs = ProjectedCRS(conversion=AzimuthalEquidistantConversion(lat0, lon0),
                        geodetic_crs=base, name=name)
     note = (f"geographic coordinates (degrees, {base.name}) were projected to an azimuthal "
@@ -239,6 +242,28 @@ def local_metric_crs(lon: np.ndarray, lat: np.ndarray,
             f"most {100 * scale_error:.2g} % (farthest site {np.degrees(c) * 111.2:.0f} km "
             f"from the centre)")
     return crs, note
+
+
+def is_local_metric_crs(crs: Any) -> bool:
+    """Whether ``crs`` is the local projection :func:`local_metric_crs` makes for degrees.
+
+    Its coordinates are metres from the survey centre, not the eastings and northings of a
+    published projected CRS, and figures say so.
+
+    Examples
+    --------
+    >>> is_local_metric_crs(local_metric_crs(np.array([10.0, 10.1]), np.array([60.0, 60.1]))[0])
+    True
+    >>> is_local_metric_crs(pyproj.CRS(32632)), is_local_metric_crs(None)
+    (False, False)
+    """
+    if crs is None:
+        return False
+    try:
+        crs = pyproj.CRS(crs)
+    except (pyproj.exceptions.CRSError, TypeError, ValueError):
+        return False
+    return bool(crs.is_projected and crs.name.startswith(_LOCAL_NAME_START))
 
 
 def scale_range(crs: pyproj.CRS, x: np.ndarray, y: np.ndarray) -> tuple[float, float, str]:

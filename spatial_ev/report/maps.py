@@ -26,6 +26,7 @@ from matplotlib.ticker import FuncFormatter
 
 from spatial_ev._validation import check_option
 from spatial_ev.errors import CRSError, InputError
+from spatial_ev.input.crs import is_local_metric_crs
 from spatial_ev.report import _style as st
 from spatial_ev.report.figures import unit_symbol
 from spatial_ev.report.surface import smooth_surface, surface_opacity, surface_reach
@@ -417,9 +418,13 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
     _draw_scale_bar(ax, xlim, ylim, unit)
     if north_arrow == "grid":
         _draw_north_arrow(ax)
-    label = "x" if sites.crs is None else "easting"
-    ax.set_xlabel(f"{label} ({unit})")
-    ax.set_ylabel(f"{'y' if sites.crs is None else 'northing'} ({unit})")
+    if is_local_metric_crs(sites.crs):  # degrees projected around the survey centre
+        ax.set_xlabel(f"east of survey centre ({unit}, local azimuthal equidistant)")
+        ax.set_ylabel(f"north of survey centre ({unit}, local azimuthal equidistant)")
+    else:
+        label = "x" if sites.crs is None else "easting"
+        ax.set_xlabel(f"{label} ({unit})")
+        ax.set_ylabel(f"{'y' if sites.crs is None else 'northing'} ({unit})")
     thousands = FuncFormatter(lambda v, _: f"{v:,.0f}" if abs(v) >= 100 else f"{v:g}")
     ax.xaxis.set_major_formatter(thousands)
     ax.yaxis.set_major_formatter(thousands)

@@ -679,10 +679,14 @@ def _with_directional(survey, schemes, *, network, bearing, orientations, edge_w
     notes = []
     if bases:
         straight = [n for n in mapping if n not in bases]
+        what = (f"The directional scheme {', '.join(bases)} was named alone (no comparison)"
+                if len(mapping) == 1 else
+                f"Directional schemes compared: {', '.join(bases)}"
+                + (f", beside the straight-line schemes {', '.join(straight)}" if straight
+                   else "")
+                + f"; each counts in the Šidák-corrected level ({len(mapping)} schemes)")
         notes.append(
-            f"Directional schemes compared: {', '.join(bases)}"
-            + (f", beside the straight-line schemes {', '.join(straight)}" if straight else "")
-            + f"; each counts in the Šidák-corrected level ({len(mapping)} schemes). AEM "
+            what + ". AEM "
             f"(asymmetric eigenvector maps; Blanchet, Legendre & Borcard 2008, Ecological "
             f"Modelling 215:325–336) describe a process travelling one way "
             + ("along the river network with the flow" if network is not None else

@@ -196,3 +196,33 @@ class TestLocalProjectionLabels:
         utm = survey.sites.to_crs(32633).assign(value=np.arange(6.0) - 2.5)
         ax = site_map_figure(utm, column="value").axes[0]
         assert (ax.get_xlabel(), ax.get_ylabel()) == ("easting (m)", "northing (m)")
+
+
+class TestSwappedColumns:
+    def _sites(self, lon, lat, names=("lon", "lat")):
+        return pd.DataFrame({names[0]: lon, names[1]: lat},
+                            index=pd.Index([f"s{i}" for i in range(len(lon))], name="site"))
+
+    def test_columns_named_the_other_way_round(self):
+        # valid degrees either way round (10 E 60 N or 60 E 10 N): only the names tell
+        sites = self._sites([10.0, 10.01, 10.02, 10.0, 10.01], [60.0, 60.0, 60.0, 60.01, 60.01])
+        with pytest.raises(errors.CRSError, match=r"look swapped: the x column 'lat' is named "
+                                                  r"like a latitude and the y column 'lon' "
+                                                  r"like a longitude.*x='lon', y='lat'"):
+            Survey.from_frames(sites, x="lat", y="lon", crs="EPSG:4326")
+        with pytest.raises(errors.CRSError, match="look swapped"):  # also before a CRS is given
+            Survey.from_frames(sites, x="lat", y="lon")
+        with pytest.warns(errors.GeographicCoordinatesWarning):
+            assert Survey.from_frames(sites, x="lon", y="lat", crs="EPSG:4326").n_sites == 5
+
+    def test_degrees_that_fit_only_swapped(self):
+        # latitudes of 150 are impossible; the values fit with x and y exchanged
+        sites = self._sites([-33.8, -33.801, -33.802, -33.803, -33.804],
+                            [150.1, 150.101, 150.102, 150.103, 150.104], names=("a", "b"))
+        with pytest.raises(errors.CRSError, match=r"look swapped: the latitude \(y\) column "
+                                                  r"'b' holds 150.1 at site 's0' \(row 1\)"):
+            Survey.from_frames(sites, x="a", y="b", crs="EPSG:4326")
+        # a projected CRS: no degrees, so no swap check (a false easting is not a latitude)
+        utm = self._sites([500_000.0 + i for i in range(5)], [150.0 + i for i in range(5)])
+        survey = Survey.from_frames(utm, x="lon", y="lat", crs="EPSG:32633")
+        assert survey.n_sites == 5

@@ -485,8 +485,9 @@ class TestReadSurveyValidation:
     def test_swapped_lat_lon(self, tmp_path):
         pd.DataFrame({"site": list("abcdef"), "x": np.linspace(60, 61, 6),
                       "y": np.linspace(150, 151, 6)}).to_csv(tmp_path / "s.csv", index=False)
-        _raises_nothing_written(tmp_path, errors.CRSError, r"latitude \(y\) value.*150.*"
-                                r"swapped", read_survey, tmp_path / "s.csv", crs=4326)
+        _raises_nothing_written(tmp_path, errors.CRSError, r"look swapped: the latitude \(y\) "
+                                r"column 'y' holds 150 at site 'a' \(line 2\).*x='y', y='x'",
+                                read_survey, tmp_path / "s.csv", crs=4326)
 
     def test_semicolon_file_with_comma_delimiter(self, tmp_path, layout):
         ids, x, y, species, env = layout

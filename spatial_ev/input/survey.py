@@ -471,6 +471,7 @@ def _points_from_columns(table: T.RawTable, x, y, opts: dict) -> None:
                              f"{table.where(i)} ({site}) {what}{hint}; every site needs both "
                              f"coordinates ({int(mask.sum())} such cell(s) in the column)")
         values.append(numbers)
+    _check_not_swapped(table, x, y, values, opts)
     geo_named = looks_geographic_name(x, "x") or looks_geographic_name(y, "y")
     in_degrees = bool((np.abs(values[0]) <= 180).all() and (np.abs(values[1]) <= 90).all())
     crs = opts["crs"]
@@ -490,3 +491,24 @@ def _points_from_columns(table: T.RawTable, x, y, opts: dict) -> None:
     table.crs = crs
     table.extra["geometry"] = gpd.GeoSeries(shapely.points(values[0], values[1]), crs=crs)
     table.extra["declared"] = True
+
+
+def _check_not_swapped(table: T.RawTable, x, y, values, opts: dict) -> None:
+    """Refuse longitude/latitude columns given the wrong way round (x must be the longitude):
+    columns named the other way round, or degrees that fit only when swapped."""
+    crs = opts["crs"]
+    if opts["local_unit"] is not None or (crs is not None and not crs.is_geographic):
+        return
+    fix = (f"x must be the longitude and y the latitude: swap them (x={y!r}, y={x!r}), or "
+           f"rename the columns if their names are wrong")
+    if looks_geographic_name(x, "y") and looks_geographic_name(y, "x"):
+        raise CRSError(f"sites {table.source}: the coordinate columns look swapped: the x "
+                       f"column {x!r} is named like a latitude and the y column {y!r} like a "
+                       f"longitude; {fix}")
+    lon, lat = np.abs(values[0]), np.abs(values[1])
+    if crs is not None and (lat > 90).any() and (lat <= 180).all() and (lon <= 90).all():
+        i = int(np.flatnonzero(lat > 90)[0])
+        raise CRSError(f"sites {table.source}: the coordinate columns look swapped: the "
+                       f"latitude (y) column {y!r} holds {values[1][i]:g} at site "
+                       f"{table.ids.iloc[i]!r} ({table.where(i)}), beyond ±90 degrees, while "
+                       f"every value of the longitude (x) column {x!r} lies within ±90; {fix}")

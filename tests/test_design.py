@@ -214,6 +214,28 @@ class TestEvaluateDesign:
         assert len(notes) == 1 and notes[0].startswith("pilot: the adjusted-R² ceiling")
         assert "75%" in notes[0] and "scale:fine: 0.05" in notes[0]
 
+    def test_never_recommended_for_a_class_it_does_not_resolve(self):
+        # a layout with high power for a class it does not resolve (aliasing) is named as
+        # such and never recommended for it; the cheapest resolving layout is
+        from spatial_ev.design.evaluate import _recommend
+
+        classes = pd.DataFrame({"scale_class": ["fine"], "lower": [0.0], "upper": [120.0],
+                                "finest_selected": [90.0]})
+        power = pd.DataFrame({
+            "layout": ["grid 100 m", "dense"], "objective": ["scale:fine"] * 2,
+            "pilot_significant": [True, True], "power": [0.93, 0.85], "mc_se": [0.03, 0.04],
+            "ci_low": [0.86, 0.76], "ci_high": [0.97, 0.91],
+            "resolution": ["not resolved", "resolved"], "carried": [0.0, 0.6],
+            "n_sites": [25, 300], "line_length": [np.nan, 540.0]})
+        built = [SimpleNamespace(name="grid 100 m", n_sites=25, line_length=None),
+                 SimpleNamespace(name="dense", n_sites=300, line_length=540.0)]
+        text = _recommend(power, None, 0.8, classes, built)
+        assert any("'grid 100 m' reaches power 0.93" in s and "does not resolve" in s
+                   for s in text)
+        need = [s for s in text if "you need" in s]
+        assert len(need) == 1 and "'dense'" in need[0] and "540 map units of line" in need[0]
+        assert not any("nan" in s for s in text)
+
     def test_line_length_text(self):
         from spatial_ev.design.evaluate import _line_text
 

@@ -255,3 +255,24 @@ def test_eigen_writes_network_layers(tmp_path, capsys):
     assert main(["eigen", "--sites", str(RIVER / "sites.gpkg"), *NETWORK_ARGS,
                  "--graph", "gabriel", "--out", str(tmp_path / "b2")]) == 2
     assert "does not apply with --network" in _one_error_line(capsys)
+
+
+def test_bearing_basis_maps_at_sites_only():
+    # A current's direction without a network: the AEM of the Delaunay graph oriented along
+    # the bearing is named alone; its vectors exist at the sites only, so no prediction points
+    from spatial_ev.input.survey import read_survey
+    from spatial_ev.pipeline.analysis import analyse
+    from spatial_ev.report.context import map_layers
+    from spatial_ev.report.summary import summary_record
+
+    survey = read_survey(RIVER / "sites.gpkg", RIVER / "species.csv")
+    result = analyse(survey, bearing=90, n_permutations=99, seed=SEED,
+                     spatial_weighting="single", schemes=["bearing_90/binary"],
+                     environment_test="permutation")
+    record = summary_record(result)
+    assert record["spatial_basis"]["method"] == "aem_bearing"
+    assert record["spatial_basis"]["threshold"] is None
+    assert record["bearing"] == 90 and record["network"] is None
+    assert all(fit.grid_scores is None for fit in result.scale_fits)
+    assert not any(name.endswith(("_grid", "_along_network")) for name in map_layers(result))
+    assert any("defined at the sampled sites only" in n for n in result.notes)

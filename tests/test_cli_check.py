@@ -146,3 +146,40 @@ class TestCheckCommand:
         assert bad.stderr.strip() == (f"spatial-ev check: error: sites file "
                                       f"'{workdir / 'none.gpkg'}' does not exist; check the path")
         assert _listing(workdir) == set()
+
+
+class TestPresenceAbsenceHint:
+    def test_hellinger_of_zero_one_rows_is_their_chord_profile(self):
+        """What the hint says: on 0/1 rows, Hellinger sqrt(y_ij / y_i+) and chord
+        y_ij / ||y_i|| both give 1/sqrt(richness) for each species present (Legendre &
+        Gallagher 2001, Oecologia 129:271-280, their formulas; the equality [derived])."""
+        from spatial_ev.stats.transform import transform
+
+        rng = np.random.default_rng(11)
+        y = (rng.uniform(size=(15, 6)) < 0.5).astype(float)
+        y[:, 0] = 1.0
+        expected = y / np.sqrt(y.sum(axis=1, keepdims=True))
+        for method in ("hellinger", "chord", "log_chord"):
+            np.testing.assert_allclose(transform(y, method).to_numpy(), expected, atol=1e-15)
+
+    def test_check_and_run_name_a_suitable_transformation(self, workdir, capsys):
+        sites, species, env = _small_survey(workdir, n=14)
+        table = pd.read_csv(species, index_col=0)
+        (table > 3).astype(int).assign(BTX01=1).to_csv(species)
+        files = ["--sites", str(sites), "--species", str(species), "--environment", str(env),
+                 "--local-unit", "metre"]
+        assert main(["check", *files]) == 0
+        out = capsys.readouterr().out
+        assert "note: every species value is 0 or 1 (presence–absence)" in out
+        assert "--transformation chord (the same as the default hellinger here)" in out
+        fast = ["--weighting", "distance", "--permutations", "99", "--seed", "3", "--quiet"]
+        assert main(["run", *files, "--out", str(workdir / "r1"), *fast]) == 0
+        out = capsys.readouterr().out
+        assert "every species value is 0 or 1" in out and "--transformation chord says" in out
+        assert main(["run", *files, "--out", str(workdir / "r2"), *fast,
+                     "--transformation", "chord"]) == 0
+        assert "0 or 1" not in capsys.readouterr().out
+        # counts: no hint
+        pd.DataFrame(table + 1).to_csv(species)
+        assert main(["check", *files]) == 0
+        assert "presence–absence" not in capsys.readouterr().out

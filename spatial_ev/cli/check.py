@@ -20,7 +20,7 @@ from spatial_ev.cli.network import (
     directional_scheme_count,
     network_from_args,
 )
-from spatial_ev.cli.run import check_survey_for_run, small_survey_hint
+from spatial_ev.cli.run import check_survey_for_run, presence_absence_hint, small_survey_hint
 
 __all__ = ["configure", "execute"]
 
@@ -64,8 +64,8 @@ def execute(args: argparse.Namespace) -> int:
     if survey.environment is None:
         print("note: without --environment `run` analyses spatial structure only",
               file=sys.stdout)
-    hint = small_survey_hint(survey.n_sites)
-    if hint is not None:
-        print(hint, file=sys.stdout)
+    for hint in (small_survey_hint(survey.n_sites), presence_absence_hint(survey)):
+        if hint is not None:
+            print(hint, file=sys.stdout)
     print("check passed; nothing was written", file=sys.stdout)
     return 0

@@ -29,7 +29,7 @@ from spatial_ev.errors import InputError
 
 __all__ = ["configure_run", "execute_run", "configure_demo", "execute_demo", "load_config",
            "check_analysis_options", "check_survey_for_run", "ANALYSIS_MIN_SITES",
-           "small_survey_hint"]
+           "small_survey_hint", "presence_absence_hint"]
 
 # the fewest sites the analysis takes (spatial_ev.pipeline.analysis.analyse refuses fewer;
 # tests/test_cli_check.py keeps the two equal), so that `check` can say so before `run`
@@ -312,6 +312,38 @@ def small_survey_hint(n_sites: int, weighting: str = "compare") -> str | None:
             f"--weighting gabriel/binary)")
 
 
+def presence_absence_hint(survey, transformation: str | None = None) -> str | None:
+    """A note for a species table holding only 0 and 1, on the transformation that suits it.
+
+    ``transformation`` is the one chosen for ``run``; ``None`` (``check``) describes the
+    choices. Returns ``None`` when some value is neither 0 nor 1.
+
+    Examples
+    --------
+    >>> presence_absence_hint(survey, "hellinger")  # doctest: +SKIP
+    'note: every species value is 0 or 1 (presence–absence): ...'
+    """
+    if not survey.presence_absence:
+        return None
+    start = "note: every species value is 0 or 1 (presence–absence): "
+    same = ("on 0/1 rows the Hellinger and log-chord profiles equal the chord profiles, "
+            "1/√(species at the site) for each species present, so sites are compared by "
+            "which species they share, not by how many they hold")
+    if transformation in ("hellinger", "log_chord"):
+        return f"{start}{same}; --transformation chord says the same thing plainly"
+    if transformation == "chord":
+        return None  # already the transformation that suits it
+    if transformation in ("none", "presence_absence"):
+        return (f"{start}--transformation {transformation} analyses the 0/1 values as they "
+                f"are, so species-rich sites weigh more and shared absences count as "
+                f"likeness; --transformation chord compares sites by the species they share")
+    if transformation == "chi_square":
+        return (f"{start}chi-square profiles give the rarest species the largest weights; "
+                f"--transformation chord compares sites by the species they share")
+    return (f"{start}{same}; for `run`, --transformation chord (the same as the default "
+            f"hellinger here) suits it, and none keeps species richness in the comparison")
+
+
 def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=None,
                        before_commit=None, title=None, reading=None) -> Any:
     from spatial_ev.pipeline.analysis import analyse
@@ -358,9 +390,9 @@ def _final_lines(result, out: str, elapsed: float) -> list[str]:
                      "{unexplained:.3f}".format(**f))
     lines.append(f"spatial vectors selected: {len(result.selected_space)} "
                  f"({result.settings['chosen_scheme']}); report: {Path(out) / 'report.html'}")
-    hint = small_survey_hint(result.survey.n_sites, result.settings["spatial_weighting"])
-    if hint is not None:
-        lines.append(hint)
+    hints = (small_survey_hint(result.survey.n_sites, result.settings["spatial_weighting"]),
+             presence_absence_hint(result.survey, result.settings["transformation"]))
+    lines.extend(hint for hint in hints if hint is not None)
     return lines
 
 

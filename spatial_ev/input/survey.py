@@ -102,6 +102,23 @@ class Survey:
         """Number of species kept (0 without a species table)."""
         return 0 if self.species is None else self.species.shape[1]
 
+    @property
+    def presence_absence(self) -> bool:
+        """Whether every species value is 0 or 1 (a presence–absence table); ``False``
+        without a species table.
+
+        Examples
+        --------
+        >>> s = Survey.from_frames(pd.DataFrame({"x": [0., 1, 3, 6, 10], "y": 0.0},
+        ...     index=pd.Index(list("abcde"), name="site")), local_unit="metre")
+        >>> s.presence_absence
+        False
+        """
+        if self.species is None:
+            return False
+        values = self.species.to_numpy()
+        return bool(((values == 0) | (values == 1)).all())
+
     def nearest_neighbour_distances(self) -> pd.Series:
         """Distance from each site to its nearest other site, in map units (scipy cKDTree).
 

@@ -24,6 +24,7 @@ from spatial_ev.report import _style as st
 from spatial_ev.report.figures import (moran_scale_figure, partition_figure, save_figure,
                                        scalogram_figure, triplot_figure, unit_symbol,
                                        weighting_figure)
+from spatial_ev.report.labels import label_boxes, overlapping_pairs
 from spatial_ev.report.maps import nice_scale_bar, site_map_figure
 from spatial_ev.report.surface import smooth_surface, surface_opacity, surface_reach
 
@@ -46,6 +47,12 @@ def _collection(fig: Figure, gid: str) -> PathCollection:
     found = [c for ax in fig.axes for c in ax.collections if c.get_gid() == gid]
     assert len(found) == 1, f"expected one collection with gid {gid!r}, found {len(found)}"
     return found[0]
+
+
+def _collection_all(fig: Figure, gid: str) -> list:
+    found = [c for ax in fig.axes for c in ax.collections if c.get_gid() == gid]
+    assert found, f"no collection with gid {gid!r}"
+    return found
 
 
 def _two_group_table() -> pd.DataFrame:
@@ -265,7 +272,7 @@ class TestScalogramFigure:
 
 def _scores(seed: int = SEED):
     rng = np.random.default_rng(seed)
-    axes = ["RDA1", "RDA2", "RDA3"]
+    axes = ["canonical_1", "canonical_2", "canonical_3"]
     sites = pd.DataFrame(rng.normal(size=(30, 3)), columns=axes)
     species = pd.DataFrame(rng.normal(size=(12, 3)), columns=axes,
                            index=[f"sp{i:02d}" for i in range(12)])
@@ -285,11 +292,11 @@ class TestTriplotFigure:
                   if isinstance(c, Annotation) and c.get_gid() == "variable-arrow"]
         assert len(arrows) == 3
         labelled = [t.get_text() for t in ax.texts if t.get_gid() == "species-label"]
-        norms = np.hypot(species["RDA1"], species["RDA2"])
+        norms = np.hypot(species["canonical_1"], species["canonical_2"])
         assert sorted(labelled) == sorted(norms.nlargest(4).index)
         # 0.30 / 1.5 = 20 %, 0.12 / 1.5 = 8 % of total variation
-        assert ax.get_xlabel() == "RDA1 (20.0 % of total variation)"
-        assert ax.get_ylabel() == "RDA2 (8.0 % of total variation)"
+        assert ax.get_xlabel() == "axis 1 (20.0 % of total variation)"
+        assert ax.get_ylabel() == "axis 2 (8.0 % of total variation)"
         assert ax.get_aspect() == 1.0
         assert "correlations" in ax.get_title(loc="left")
         assert len(_collection(fig, "site-scores").get_offsets()) == 30
@@ -300,7 +307,7 @@ class TestTriplotFigure:
         ax = fig.axes[0]
         assert "distances" in ax.get_title(loc="left")
         # without total variance: share of the eigenvalues given, 0.05 / 0.47
-        assert ax.get_ylabel() == f"RDA3 ({100 * 0.05 / 0.47:.1f} % of the axes shown)"
+        assert ax.get_ylabel() == f"axis 3 ({100 * 0.05 / 0.47:.1f} % of the axes shown)"
         assert not [c for c in ax.get_children() if getattr(c, "get_gid", lambda: 0)()
                     == "variable-arrow"]
 
@@ -310,21 +317,21 @@ class TestTriplotFigure:
         fig = triplot_figure(sites, small, None, eig, scaling=2)
         drawn = _collection(fig, "species-scores").get_offsets()
         factor = drawn[0, 0] / small.iloc[0, 0]
-        np.testing.assert_allclose(drawn, small[["RDA1", "RDA2"]].to_numpy() * factor)
-        site_r = np.hypot(sites["RDA1"], sites["RDA2"]).max()
+        np.testing.assert_allclose(drawn, small[["canonical_1", "canonical_2"]].to_numpy() * factor)
+        site_r = np.hypot(sites["canonical_1"], sites["canonical_2"]).max()
         assert np.hypot(drawn[:, 0], drawn[:, 1]).max() == pytest.approx(0.8 * site_r)
         note = [t.get_text() for t in fig.axes[0].texts if t.get_gid() == "stretch-note"]
         assert note == [f"species × {factor:.3g}"]
         fig = triplot_figure(sites, small, None, eig, scaling=2, species_stretch="none")
         np.testing.assert_allclose(_collection(fig, "species-scores").get_offsets(),
-                                   small[["RDA1", "RDA2"]].to_numpy())
+                                   small[["canonical_1", "canonical_2"]].to_numpy())
 
     def test_arrow_directions_kept(self):
         sites, species, variables, eig = _scores()
         fig = triplot_figure(sites, species, variables, eig, scaling=2)
         tips = np.array([a.xy for a in fig.axes[0].get_children()
                          if isinstance(a, Annotation) and a.get_gid() == "variable-arrow"])
-        raw = variables[["RDA1", "RDA2"]].to_numpy()
+        raw = variables[["canonical_1", "canonical_2"]].to_numpy()
         ratio = tips / raw  # one common stretch factor for every arrow and coordinate
         np.testing.assert_allclose(ratio, ratio[0, 0], rtol=1e-12)
 
@@ -333,9 +340,9 @@ class TestTriplotFigure:
         with pytest.raises(InputError, match="`scaling` must be 1 or 2; got 3"):
             triplot_figure(sites, species, variables, eig, scaling=3)
         with pytest.raises(InputError, match="must start with the axes of `site_scores`"):
-            triplot_figure(sites, species.rename(columns={"RDA1": "PC1"}), variables, eig,
+            triplot_figure(sites, species.rename(columns={"canonical_1": "residual_1"}), variables, eig,
                            scaling=1)
-        with pytest.raises(InputError, match="`eigenvalues` has no value for axis 'RDA2'"):
+        with pytest.raises(InputError, match="`eigenvalues` has no value for axis 'canonical_2'"):
             triplot_figure(sites, species, variables, eig.iloc[:1], scaling=1)
         with pytest.raises(InputError, match="`n_labels` must be a non-negative integer"):
             triplot_figure(sites, species, variables, eig, scaling=1, n_labels=-1)
@@ -633,3 +640,91 @@ class TestSurfaceFunctions:
         inner = (FX >= 0) & (FX <= 90) & (FY >= 0) & (FY <= 50)
         np.testing.assert_allclose(fz[inner], (2.0 + 0.3 * FX - 0.1 * FY)[inner], atol=1e-12)
         assert fz.shape == (18, 30)
+
+
+def _text_boxes(fig: Figure, gids: set[str]) -> np.ndarray:
+    """Agg-rendered boxes of the figure's texts whose gid is in ``gids``."""
+    fig.canvas.draw() if hasattr(fig.canvas, "get_renderer") else None
+    texts = [t for ax in fig.axes for t in ax.texts if t.get_gid() in gids]
+    assert texts, f"no text with gid in {gids}"
+    return label_boxes(fig, texts)
+
+
+class TestLabelsApart:
+    def test_overlap_detection_itself(self):
+        # two boxes sharing a corner region overlap, touching edges do not [derived]
+        boxes = np.array([[0, 0, 10, 10], [9, 9, 20, 20], [20, 0, 30, 9.0]])
+        assert overlapping_pairs(boxes) == [(0, 1)]
+
+    def test_scalogram_names_never_overlap(self):
+        # twelve selected vectors crowded within a factor 1.3 of scale, similar heights
+        names = [f"sv{i:03d}" for i in range(40)]
+        scale = pd.Series(np.geomspace(100, 130, 40), index=names)
+        r2 = pd.Series(0.02 + 0.001 * np.sin(np.arange(40)), index=names)
+        fig = scalogram_figure(r2, scale, selected=names[::3])
+        boxes = _text_boxes(fig, {"vector-label"})
+        assert len(boxes) == len(names[::3]) and overlapping_pairs(boxes) == []
+        # and none runs into the class names or the legend
+        classes = pd.DataFrame({"name": ["fine", "broad"], "low": [90.0, 115.0],
+                                "high": [115.0, 140.0]})
+        fig = scalogram_figure(r2, scale, selected=names[::3], classes=classes)
+        every = _text_boxes(fig, {"vector-label", "class-label"})
+        assert overlapping_pairs(every) == []
+
+    def test_triplot_labels_never_overlap(self):
+        sites, species, variables, eig = _scores()
+        crowd = species * 0.05 + 0.3  # every species label in one corner
+        fig = triplot_figure(sites, crowd, variables, eig, scaling=2, n_labels=12,
+                             species_stretch="none")
+        boxes = _text_boxes(fig, {"species-label", "variable-label"})
+        assert len(boxes) == 12 + 3 and overlapping_pairs(boxes) == []
+
+    def test_weighting_axis_labels_and_ticks_apart(self):
+        t = pd.DataFrame({"scheme": [f"graph_{i}/binary" for i in range(8)],
+                          "r2_adj": np.full(8, np.nan),  # nothing selected anywhere
+                          "p": [0.31, 0.52, 0.44, 0.9, 0.27, 0.66, 0.35, 0.71]})
+        fig = weighting_figure(t, corrected_alpha=0.006391)
+        renderer = fig.canvas.get_renderer()
+        xlabels = [ax.xaxis.label.get_window_extent(renderer) for ax in fig.axes]
+        boxes = np.array([[b.x0, b.y0, b.x1, b.y1] for b in xlabels])
+        assert overlapping_pairs(boxes) == []
+        for ax in fig.axes:
+            ticks = [t for t in ax.get_xticklabels() if t.get_text()]
+            tb = np.array([[b.x0, b.y0, b.x1, b.y1] for b in
+                           (t.get_window_extent(renderer) for t in ticks)])
+            assert len(ticks) >= 3 and overlapping_pairs(tb) == []
+
+
+class TestTriplotCases:
+    def test_categorical_levels_as_centroids_with_reference(self):
+        sites, species, variables, eig = _scores()
+        rng = np.random.default_rng(SEED)
+        level = pd.Series(rng.choice(["mud", "sand", "gravel"], size=30), index=sites.index)
+        cols = ["canonical_1", "canonical_2", "canonical_3"]
+        v = pd.concat([variables.iloc[:1],
+                       pd.DataFrame([[0.5, 0.2, 0.0], [-0.3, 0.4, 0.1]], columns=cols,
+                                    index=["sediment[mud]", "sediment[sand]"])])
+        fig = triplot_figure(sites, species, v, eig, scaling=1, factors={"sediment": level})
+        ax = fig.axes[0]
+        arrows = [c for c in ax.get_children()
+                  if isinstance(c, Annotation) and c.get_gid() == "variable-arrow"]
+        assert len(arrows) == 1  # only the numeric variable is an arrow
+        centroids = _collection_all(fig, "level-centroid")
+        drawn = np.vstack([c.get_offsets() for c in centroids])
+        # each level at the mean of its sites' scores (pandas groupby as the oracle)
+        means = sites.iloc[:, :2].groupby(level).mean()
+        for name, row in means.iterrows():
+            assert np.isclose(drawn, row.to_numpy()).all(axis=1).any(), name
+        texts = sorted(t.get_text() for t in ax.texts if t.get_gid() == "level-label")
+        assert texts == ["sediment: gravel (reference)", "sediment: mud", "sediment: sand"]
+
+    def test_nothing_environmental_kept(self):
+        sites, species, _, eig = _scores()
+        for scaling in (1, 2):
+            fig = triplot_figure(sites, species, None, eig, scaling=scaling)
+            words = " ".join(_texts(fig) + [fig.axes[0].get_title(loc="left")])
+            assert "Unconstrained ordination (no environmental variable kept)" in words
+            assert "arrows" not in words and "Triplot" not in words
+        fig = triplot_figure(sites, species, pd.DataFrame(columns=sites.columns, dtype=float),
+                             eig, scaling=2)
+        assert "arrows" not in fig.axes[0].get_title(loc="left")

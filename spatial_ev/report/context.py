@@ -88,6 +88,23 @@ def _along(grid_scores: pd.DataFrame | None, crs: Any) -> gpd.GeoDataFrame | Non
                             crs=crs)
 
 
+def _factor_levels(survey: Any, index: pd.Index) -> dict[str, pd.Series]:
+    """Each categorical variable's level at every site, rebuilt from its indicator columns."""
+    env = survey.environment
+    out: dict[str, pd.Series] = {}
+    if env is None:
+        return out
+    for var, cols in getattr(survey, "categorical", {}).items():
+        reference = survey.reference_levels.get(var)
+        if reference is None or not cols:
+            continue
+        labels = pd.Series(str(reference), index=env.index, dtype=object)
+        for col in cols:
+            labels[env[col].to_numpy() == 1] = col[len(var) + 1:-1]
+        out[str(var)] = labels.reindex(index)
+    return {k: v for k, v in out.items() if not v.isna().any()}
+
+
 def _site_frame(analysis: Analysis, values: pd.DataFrame) -> gpd.GeoDataFrame:
     sites = analysis.survey.sites
     return gpd.GeoDataFrame(values.copy(), geometry=sites.geometry.reindex(values.index),
@@ -248,6 +265,9 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
                 "species": rda.species_scores(scaling),
                 "variables": rda.biplot_scores(scaling) if len(rda.canonical_eigenvalues)
                 else None}
+        factors = _factor_levels(survey, rda.site_scores(1).index)
+        if factors:
+            triplot["factors"] = factors
     else:
         triplot = None
         reasons["triplot"] = ("the ordination has fewer than two axes (a single selected "

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import os
 import re
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 
 import matplotlib
@@ -30,6 +30,7 @@ from spatial_ev._validation import check_option, check_real
 from spatial_ev.errors import InputError
 from spatial_ev.report import _checks as ck
 from spatial_ev.report import _style as st
+from spatial_ev.report.labels import repel_labels, thin_tick_labels
 
 __all__ = ["save_figure", "partition_figure", "scalogram_figure", "triplot_figure",
            "weighting_figure", "moran_scale_figure", "unit_symbol"]
@@ -331,15 +332,17 @@ def scalogram_figure(r2: pd.Series, scale: pd.Series, *, selected: Iterable[str]
     ax = fig.add_subplot()
     ax.set_xscale("log")
     top = float(r2.max()) * 1.28 if r2.max() > 0 else 1.0
+    class_labels = []
     if bands is not None:
         trans = blended_transform_factory(ax.transData, ax.transAxes)
-        for i, row in enumerate(bands.sort_values("low").itertuples()):
-            ax.axvspan(row.low, row.high, color=st.BAND_COLOURS[i % len(st.BAND_COLOURS)],
-                       zorder=0, lw=0)
+        colours = st.scale_class_colours(bands["low"].tolist())
+        for row, (tint, strong) in zip(bands.itertuples(), colours):
+            ax.axvspan(row.low, row.high, color=tint, zorder=0, lw=0)
             for edge in (row.low, row.high):
                 ax.axvline(edge, color="#c3cad4", lw=0.8, ls=(0, (3, 3)), zorder=0.5)
-            ax.text(np.sqrt(row.low * row.high), 0.985, row.name, transform=trans,
-                    ha="center", va="top", fontsize=8, color=st.INK, gid="class-label")
+            class_labels.append(ax.text(np.sqrt(row.low * row.high), 0.985, row.name,
+                                        transform=trans, ha="center", va="top", fontsize=8,
+                                        color=strong, fontweight="bold", gid="class-label"))
     mask = r2.index.isin(sel)
     ax.vlines(scale[~mask], 0, r2[~mask], color=st.MUTED, lw=1.0, zorder=2)
     ax.scatter(scale[~mask], r2[~mask], s=12, color=st.MUTED, zorder=3, gid="other-vector")
@@ -348,10 +351,12 @@ def scalogram_figure(r2: pd.Series, scale: pd.Series, *, selected: Iterable[str]
     ax.scatter(scale[mask], r2[mask], s=34, color=accent, zorder=5, gid="selected-vector",
                edgecolor="white", linewidth=0.6)
     named = sel if len(sel) <= 15 else list(r2[sel].nlargest(10).index)  # avoid clutter
-    for k, name in enumerate(sorted(named, key=lambda v: scale[v])):
-        # neighbours on the axis get alternating heights so their names do not overlap
-        ax.annotate(str(name), (scale[name], r2[name]), xytext=(0, 4 + 9 * (k % 2)),
-                    textcoords="offset points", ha="center", fontsize=7, color=accent)
+    names = [ax.annotate(str(name), (scale[name], r2[name]), xytext=(0, 5),
+                         textcoords="offset points", ha="center", fontsize=7, color=accent,
+                         gid="vector-label",
+                         arrowprops=dict(arrowstyle="-", color=accent, lw=0.4, alpha=0.6,
+                                         shrinkA=0, shrinkB=3))
+             for name in sorted(named, key=lambda v: scale[v])]
     lo, hi = float(scale.min()), float(scale.max())
     if bands is not None:
         lo, hi = min(lo, bands["low"].min()), max(hi, bands["high"].max())
@@ -361,10 +366,14 @@ def scalogram_figure(r2: pd.Series, scale: pd.Series, *, selected: Iterable[str]
     ax.grid(axis="y", zorder=0)
     ax.set_xlabel(f"scale ({unit}, logarithmic)   fine  ←  →  broad")
     ax.set_ylabel("R²  (share of variation)")
-    ax.legend(handles=[Line2D([], [], marker="o", color=accent, lw=2, label="selected"),
-                       Line2D([], [], marker="o", color=st.MUTED, lw=1, label="not selected")],
-              loc="upper left", bbox_to_anchor=(0.0, 0.9))
+    legend = ax.legend(handles=[Line2D([], [], marker="o", color=accent, lw=2,
+                                       label="selected"),
+                                Line2D([], [], marker="o", color=st.MUTED, lw=1,
+                                       label="not selected")],
+                       loc="upper left", bbox_to_anchor=(0.0, 0.9))
     ax.set_title(title)
+    thin_tick_labels(fig, ax.xaxis)
+    repel_labels(fig, names, obstacles=[legend, *class_labels])
     return fig
 
 
@@ -386,29 +395,52 @@ def _check_scores(name: str, frame: object, axes: Sequence[int], columns: pd.Ind
     return frame
 
 
+def _check_factors(factors: object, sites: pd.DataFrame) -> dict[str, pd.Series]:
+    if factors is None:
+        return {}
+    if not isinstance(factors, Mapping):
+        raise InputError("`factors` must map each categorical variable's name to a Series of "
+                         f"its level at every site; got {type(factors).__name__}")
+    out = {}
+    for name, labels in factors.items():
+        if not isinstance(labels, pd.Series) or not labels.index.equals(sites.index):
+            raise InputError(f"`factors[{name!r}]` must be a Series indexed like "
+                             "`site_scores` (the level of that variable at each site)")
+        out[str(name)] = labels.astype(str)
+    return out
+
+
 @st.styled
 def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
                    variable_scores: pd.DataFrame | None, eigenvalues: pd.Series, *,
                    scaling: int, total_variance: float | None = None,
                    axes: tuple[int, int] = (0, 1), n_labels: int = 10,
-                   species_stretch: str = "auto", title: str | None = None) -> Figure:
-    """Draw an RDA triplot: sites (points), species (triangles), explanatory variables (arrows).
+                   species_stretch: str = "auto", title: str | None = None,
+                   factors: Mapping[str, pd.Series] | None = None) -> Figure:
+    """Draw an ordination of sites (points) and species (triangles), with the explanatory
+    variables kept: numeric ones as arrows, categorical ones as the centroids of their levels.
 
     The scores are drawn as given, already in the requested scaling. Only the ``n_labels``
-    species farthest from the origin in the plotted plane are named. Arrows (and, when they
-    huddle at the origin, species) are stretched by
-    one common factor so they span the cloud of points; their directions and relative lengths
-    are what matters (the factor is printed in the corner). In scaling 1 read distances among
-    sites (they approximate their distances in the transformed community table); in scaling 2
-    read angles among species and variable arrows (they approximate correlations).
+    species farthest from the origin in the plotted plane are named, and labels are nudged
+    apart so none overlaps another. Arrows (and, when they huddle at the origin, species) are
+    stretched by one common factor so they span the cloud of points; their directions and
+    relative lengths are what matters (the factor is printed in the corner). A categorical
+    variable (``factors``) is drawn as one diamond per level at the mean position of the sites
+    of that level, its reference level included and marked "(reference)"; its indicator
+    columns in ``variable_scores`` (named ``variable[level]``) are then not drawn as arrows.
+    Without ``variable_scores`` the figure is an unconstrained ordination (no environmental
+    variable kept) and is titled as such. In scaling 1 read distances among sites (they
+    approximate their distances in the transformed community table); in scaling 2 read angles
+    among species and variable arrows (they approximate correlations).
 
     Parameters
     ----------
-    site_scores : DataFrame, sites × axes (columns are axis names, e.g. ``RDA1``, ``RDA2``).
-        With a single constrained axis, pass the first residual axis (e.g. ``PC1``) as the
-        second column, with its eigenvalue in ``eigenvalues``.
+    site_scores : DataFrame, sites × axes (columns are axis names; they are labelled
+        "axis 1", "axis 2" … in order). With a single constrained axis, pass the first residual
+        axis as the second column, with its eigenvalue in ``eigenvalues``.
     species_scores : DataFrame, species × the same axes.
-    variable_scores : DataFrame, explanatory variables × the same axes, or None.
+    variable_scores : DataFrame, explanatory variables × the same axes, or None (no
+        environmental variable kept: an unconstrained ordination).
     eigenvalues : Series indexed by axis name (at least the plotted axes), variance of each axis.
     scaling : 1 or 2, used in the title and the reading note.
     total_variance : total variance of the (transformed) community table; axis labels then give
@@ -420,12 +452,14 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
         be read; angles and length ratios among species are unchanged and the factor is
         printed in the corner. ``"none"`` draws them as given.
     title : replaces the default title.
+    factors : categorical variable name → Series of its level at each site (indexed like
+        ``site_scores``), or None.
 
     Examples
     --------
     >>> import numpy as np, pandas as pd
     >>> rng = np.random.default_rng(20260512)
-    >>> ax_names = ["RDA1", "RDA2"]
+    >>> ax_names = ["canonical_1", "canonical_2"]
     >>> sites = pd.DataFrame(rng.normal(size=(20, 2)), columns=ax_names)
     >>> species = pd.DataFrame(rng.normal(size=(8, 2)), columns=ax_names,
     ...                        index=[f"sp{i}" for i in range(8)])
@@ -433,7 +467,7 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     >>> fig = triplot_figure(sites, species, env, pd.Series([0.3, 0.1], index=ax_names),
     ...                      scaling=2, total_variance=1.0, n_labels=3)
     >>> fig.axes[0].get_xlabel()
-    'RDA1 (30.0 % of total variation)'
+    'axis 1 (30.0 % of total variation)'
     """
     if scaling not in (1, 2):
         raise InputError(f"`scaling` must be 1 or 2; got {scaling!r}")
@@ -447,6 +481,7 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
     cols = sites.columns  # type: ignore[union-attr]
     species = _check_scores("species_scores", species_scores, axes, cols)
     variables = _check_scores("variable_scores", variable_scores, axes, cols)
+    levels_at = _check_factors(factors, sites)  # type: ignore[arg-type]
     if not isinstance(eigenvalues, pd.Series):
         raise InputError("`eigenvalues` must be a Series indexed by axis name")
     names = [cols[a] for a in axes]
@@ -460,6 +495,7 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
         denom, what = float(total_variance), "of total variation"
         if not np.isfinite(denom) or denom <= 0:
             raise InputError(f"`total_variance` must be > 0; got {total_variance!r}")
+    constrained = variables is not None and len(variables) > 0
 
     fig = Figure(figsize=(6.6, 6.2), layout="constrained")
     ax = fig.add_subplot()
@@ -483,43 +519,88 @@ def triplot_figure(site_scores: pd.DataFrame, species_scores: pd.DataFrame,
                label="sites", rasterized=len(s_xy) > 5000)
     ax.scatter(p_xy[:, 0], p_xy[:, 1], s=22, marker="^", color=st.group_colour(2),
                zorder=3, gid="species-scores", label="species")
+    halo = [withStroke(linewidth=2.5, foreground="white")]
+    labels = []
     length = np.hypot(p_xy[:, 0], p_xy[:, 1])
     for i in np.argsort(-length, kind="stable")[:n_labels]:
-        ax.annotate(str(species.index[i]), p_xy[i], xytext=(3, 3),  # type: ignore[union-attr]
-                    textcoords="offset points", fontsize=7.5, color="#00684c",
-                    gid="species-label", path_effects=[withStroke(linewidth=2.5,
-                                                                  foreground="white")])
+        labels.append(ax.annotate(
+            str(species.index[i]), p_xy[i], xytext=(3, 3),  # type: ignore[union-attr]
+            textcoords="offset points", fontsize=7.5, color="#00684c", gid="species-label",
+            path_effects=halo, arrowprops=dict(arrowstyle="-", color="#00684c", lw=0.4,
+                                               alpha=0.6, shrinkA=0, shrinkB=2)))
     radius = float(np.max(np.abs(np.vstack([s_xy, p_xy])))) or 1.0
-    if variables is not None and len(variables):
-        v_xy = variables.iloc[:, list(axes)].to_numpy(float)
-        longest = float(np.max(np.hypot(v_xy[:, 0], v_xy[:, 1]))) or 1.0
-        stretch = 0.85 * radius / longest
-        accent = st.group_colour(1)
-        for (name, (vx, vy)) in zip(variables.index, v_xy * stretch):
-            ax.annotate("", xy=(vx, vy), xytext=(0, 0), zorder=4, gid="variable-arrow",
-                        arrowprops=dict(arrowstyle="-|>", color=accent, lw=1.4,
-                                        shrinkA=0, shrinkB=0))
-            ax.text(vx * 1.08, vy * 1.08, str(name), color=accent, fontsize=8.5,
+    accent = st.group_colour(1)
+    indicator_names: set[str] = set()
+    if constrained:
+        kept = [str(v) for v in variables.index]  # type: ignore[union-attr]
+        for name, at in levels_at.items():
+            shown = [v for v in kept if v.startswith(f"{name}[") and v.endswith("]")]
+            if not shown:
+                continue
+            indicator_names.update(shown)
+            present = {v[len(name) + 1:-1] for v in shown}
+            for level in pd.unique(at.to_numpy()):
+                inside = (at == level).to_numpy()
+                if not inside.any():
+                    continue
+                cx, cy = s_xy[inside].mean(axis=0)
+                reference = level not in present
+                ax.scatter([cx], [cy], marker="D", s=48, color=accent, edgecolor="white",
+                           linewidth=0.8, zorder=5, gid="level-centroid")
+                labels.append(ax.annotate(
+                    f"{name}: {level}" + (" (reference)" if reference else ""), (cx, cy),
+                    xytext=(5, -9), textcoords="offset points", fontsize=8, color=accent,
+                    fontweight="bold", fontstyle="italic" if reference else "normal",
+                    gid="level-label", path_effects=[withStroke(linewidth=3,
+                                                                foreground="white")],
+                    arrowprops=dict(arrowstyle="-", color=accent, lw=0.4, alpha=0.6,
+                                    shrinkA=0, shrinkB=3)))
+        arrows = variables.loc[[v for v in kept  # type: ignore[union-attr]
+                                if v not in indicator_names]]
+        if len(arrows):
+            v_xy = arrows.iloc[:, list(axes)].to_numpy(float)
+            longest = float(np.max(np.hypot(v_xy[:, 0], v_xy[:, 1]))) or 1.0
+            stretch = 0.85 * radius / longest
+            for (name, (vx, vy)) in zip(arrows.index, v_xy * stretch):
+                ax.annotate("", xy=(vx, vy), xytext=(0, 0), zorder=4, gid="variable-arrow",
+                            arrowprops=dict(arrowstyle="-|>", color=accent, lw=1.4,
+                                            shrinkA=0, shrinkB=0))
+                norm = float(np.hypot(vx, vy)) or 1.0
+                labels.append(ax.annotate(
+                    str(name), (vx, vy), xytext=(8 * vx / norm, 8 * vy / norm),
+                    textcoords="offset points", color=accent, fontsize=8.5,
                     fontweight="bold", ha="center", va="center", zorder=5,
-                    path_effects=[withStroke(linewidth=3, foreground="white")])
-        notes.append(f"arrows × {stretch:.3g}")
+                    gid="variable-label",
+                    path_effects=[withStroke(linewidth=3, foreground="white")]))
+            notes.append(f"arrows × {stretch:.3g}")
     lim = radius * 1.18
     ax.set_xlim(-lim, lim)
     ax.set_ylim(-lim, lim)
     ax.set_aspect("equal")
-    for name, a in zip(names, ("x", "y")):
+    for k, (name, a) in enumerate(zip(names, ("x", "y"))):
         pct = 100.0 * float(eigenvalues[name]) / denom
-        getattr(ax, f"set_{a}label")(f"{name} ({pct:.1f} % {what})")
-    reading = ("distances between sites approximate their community differences"
-               if scaling == 1 else
-               "angles between species and arrows approximate their correlations")
+        getattr(ax, f"set_{a}label")(f"axis {axes[k] + 1} ({pct:.1f} % {what})")
+    if scaling == 1:
+        reading = "distances between sites approximate their community differences"
+    elif constrained:
+        reading = "angles between species and arrows approximate their correlations"
+    else:
+        reading = "angles between species approximate their correlations"
     ax.set_title(reading, fontsize=8.5, fontweight="normal", color=st.MUTED)
-    fig.suptitle(title or f"Triplot, scaling {scaling}", x=0.02, ha="left",
-                 fontsize=10.5, fontweight="bold")
-    ax.legend(loc="lower left", fontsize=7.5)
+    default = (f"Triplot, scaling {scaling}" if constrained else
+               f"Unconstrained ordination (no environmental variable kept), scaling {scaling}")
+    fig.suptitle(title or default, x=0.02, ha="left", fontsize=10.5, fontweight="bold")
+    handles, _ = ax.get_legend_handles_labels()
+    if indicator_names:
+        handles.append(Line2D([], [], marker="D", ls="", color=accent,
+                              label="level centroids"))
+    legend = ax.legend(handles=handles, loc="lower left", fontsize=7.5)
+    obstacles: list = [legend]
     if notes:
-        ax.text(0.99, 0.01, ", ".join(notes), transform=ax.transAxes, ha="right",
-                va="bottom", fontsize=7, color=st.MUTED, gid="stretch-note")
+        obstacles.append(ax.text(0.99, 0.01, ", ".join(notes), transform=ax.transAxes,
+                                 ha="right", va="bottom", fontsize=7, color=st.MUTED,
+                                 gid="stretch-note"))
+    repel_labels(fig, labels, obstacles=obstacles)
     return fig
 
 
@@ -586,13 +667,15 @@ def weighting_figure(table: pd.DataFrame, *, alpha: float = 0.05,
     ax_r.axvline(0, color=st.INK, lw=0.8)
     ax_r.set_yticks(y, schemes)
     ax_r.set_xlabel("adjusted R² of the spatial model")
+    ax_r.xaxis.set_label_coords(0.5, -0.12)
     ax_r.grid(axis="x", zorder=0)
     filled = p <= level
     above = np.isfinite(p) & ~filled
     ax_p.scatter(p[filled], y[filled], s=40, color=[c for c, f in zip(colours, filled) if f],
-                 zorder=3, gid="p-below-level")
+                 zorder=3, gid="p-below-level", label="p at or below the level used")
     ax_p.scatter(p[above], y[above], s=40, facecolor="white", zorder=3,
-                 edgecolor=[c for c, f in zip(colours, above) if f], gid="p-above-level")
+                 edgecolor=[c for c, f in zip(colours, above) if f], gid="p-above-level",
+                 label="p above it")
     ax_p.set_xscale("log")
     ax_p.axvline(alpha, color=st.MUTED, ls=":", lw=1.2, label=f"nominal α = {alpha:g}")
     if corrected_alpha is not None:
@@ -601,12 +684,17 @@ def weighting_figure(table: pd.DataFrame, *, alpha: float = 0.05,
     lo = min(np.nanmin(p) if np.isfinite(p).any() else level, level) / 3
     ax_p.set_xlim(lo, 1.5)
     log_axis(ax_p.xaxis, lo, 1.5)
-    ax_p.set_xlabel("p-value (log axis; filled = at or below the level used)")
+    ax_p.set_xlabel("p-value (log axis)")
+    ax_p.xaxis.set_label_coords(0.5, -0.12)
     ax_p.grid(axis="x", which="major", zorder=0)
-    ax_p.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0), ncols=2, fontsize=7.5,
-                borderaxespad=0.2)
+    handles = [h for h in ax_p.get_legend_handles_labels()[0]
+               if not (hasattr(h, "get_offsets") and len(h.get_offsets()) == 0)]
+    ax_p.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.0, 1.0), ncols=2,
+                fontsize=7.5, borderaxespad=0.2)
     ax_p.tick_params(axis="y", left=False)
     fig.suptitle(title, x=0.01, ha="left", fontsize=10.5, fontweight="bold")
+    thin_tick_labels(fig, ax_p.xaxis)
+    thin_tick_labels(fig, ax_r.xaxis)
     return fig
 
 

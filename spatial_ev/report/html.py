@@ -85,7 +85,9 @@ that breaks the contract raises :class:`spatial_ev.errors.InputError` naming the
     ``scale_maps``).
 ``triplot`` : Mapping or None
     ``eigenvalues`` (Series by axis name), ``total_variance`` (float), ``n_labels``
-    *(optional, int)*, and ``scaling_1`` / ``scaling_2`` (each a Mapping ``sites``,
+    *(optional, int)*, *(optional)* ``factors`` (categorical variable → Series of its level
+    at each site: drawn as level centroids), and ``scaling_1`` / ``scaling_2`` (each a
+    Mapping ``sites``,
     ``species``, ``variables`` of score DataFrames, as for
     :func:`spatial_ev.report.figures.triplot_figure`).
 ``limits`` : Mapping or None
@@ -270,7 +272,8 @@ def build_figures(context: Mapping[str, Any]) -> dict[str, Figure]:
                 out[f"triplot_scaling_{scaling}"] = figs.triplot_figure(
                     scores["sites"], scores["species"], scores.get("variables"),
                     tp["eigenvalues"], scaling=scaling,
-                    total_variance=tp.get("total_variance"), n_labels=tp.get("n_labels", 10))
+                    total_variance=tp.get("total_variance"), n_labels=tp.get("n_labels", 10),
+                    factors=tp.get("factors"))
     return out
 
 

@@ -56,6 +56,10 @@ class TestLoadPilot:
         changed.write_text(paths["species"].read_text().replace(",1,", ",2,", 1))
         manifest["inputs"]["species"]["path"] = str(changed)
         (copy / "manifest.json").write_text(json.dumps(manifest))
+        # the folder's own copy is intact: the analysed file is read from it
+        assert load_pilot(copy).survey.sources["species"] == str(copy / "inputs" / "species.csv")
+        kept = copy / "inputs" / "species.csv"
+        kept.write_text(kept.read_text() + "\n")
         with pytest.raises(DesignError, match=r"species.csv' \(species\) has changed since the "
                                               r"run: SHA-256"):
             load_pilot(copy)
@@ -67,9 +71,48 @@ class TestLoadPilot:
         manifest = json.loads((copy / "manifest.json").read_text())
         manifest["inputs"]["environment"]["path"] = str(tmp_path / "gone.csv")
         (copy / "manifest.json").write_text(json.dumps(manifest))
+        (copy / "inputs" / "environment.csv").unlink()
         with pytest.raises(DesignError, match=r"gone.csv' \(environment\) recorded in the "
                                               r"manifest is missing"):
             load_pilot(copy)
+
+    def test_inputs_copied_with_their_hashes(self, run_folder):
+        """Every input is copied into the run folder; its SHA-256 (hashlib as the oracle of
+        the FIPS 180-4 digest) is the original file's."""
+        import hashlib
+
+        out, paths = run_folder
+        manifest = json.loads((out / "manifest.json").read_text())
+        for role, path in paths.items():
+            entry = manifest["inputs"][role]
+            assert entry["copy"] == f"inputs/{path.name}"
+            digest = hashlib.sha256((out / entry["copy"]).read_bytes()).hexdigest()
+            assert digest == entry["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
+
+    def test_moved_folder_is_read_by_design(self, run_folder, tmp_path, capsys):
+        """A run folder moved away from its inputs (which are then gone) still rebuilds the
+        same pilot, and `design` reads it."""
+        out, paths = run_folder
+        moved = tmp_path / "elsewhere" / "run"
+        shutil.copytree(out, moved)
+        hidden = tmp_path / "hidden"
+        hidden.mkdir()
+        for path in paths.values():
+            shutil.move(path, hidden / path.name)
+        try:
+            pilot = load_pilot(moved)
+            assert str(moved / "inputs") in pilot.survey.sources["sites"]
+            summary = json.loads((moved / "summary.json").read_text())
+            assert summary_record(pilot)["fractions"] == pytest.approx(summary["fractions"],
+                                                                      abs=1e-9)
+            design = tmp_path / "design"
+            assert main(["design", "--pilot", str(moved), "--layout", "thin:every=2",
+                         "--simulations", "2", "--permutations", "99", "--seed", "7",
+                         "--quiet", "--out", str(design)]) == 0, capsys.readouterr().err
+            assert (design / "design.json").is_file()
+        finally:
+            for path in paths.values():
+                shutil.move(hidden / path.name, path)
 
     def test_not_a_run_folder(self, tmp_path):
         with pytest.raises(DesignError, match="has no manifest.json"):

@@ -1,16 +1,16 @@
 """``spatial-ev run`` and ``spatial-ev demo``: the whole analysis, written as a run folder.
 
 ``run`` reads the user's survey files (the same options as ``check``), or an ``analysis.toml``
-holding the same keys; ``demo`` generates the shipped demo survey files, analyses them and
-copies them into the run folder's ``inputs/``. On a terminal both show the stage, the latest
-test and the elapsed time; with ``--quiet`` or when output is not a terminal they print only
-the final lines.
+holding the same keys; ``demo`` generates the shipped demo survey files and analyses them.
+Both copy the analysed files into the run folder's ``inputs/`` (recorded with their SHA-256
+in ``manifest.json``), so the folder can be moved before ``design`` reads it. On a terminal
+both show the stage, the latest test and the elapsed time; with ``--quiet`` or when output is
+not a terminal they print only the final lines.
 """
 
 from __future__ import annotations
 
 import argparse
-import shutil
 import sys
 import tempfile
 import time
@@ -442,16 +442,11 @@ def execute_demo(args: argparse.Namespace) -> int:
         paths = write_demo_survey(tmp)
         survey = read_survey(paths["sites"], paths["species"], paths["environment"])
 
-        def copy_inputs(folder: Path) -> None:
-            (folder / "inputs").mkdir()
-            for path in paths.values():
-                shutil.copy2(path, folder / "inputs" / Path(path).name)
-
-        inputs = {k: v for k, v in paths.items()}
+        inputs = {k: v for k, v in paths.items()}  # copied into inputs/ with the truth
         if args.seed is None:
             args.seed = 20240917
         result, elapsed = _analyse_and_write(
-            survey, args, args.out, inputs=inputs, before_commit=copy_inputs,
+            survey, args, args.out, inputs=inputs,
             title="Demo: benthic cores on an invented estuarine mudflat")
         truth = json.loads(Path(paths["truth"]).read_text())["expected_fractions"]
     for line in _final_lines(result, args.out, elapsed):

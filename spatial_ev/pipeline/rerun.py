@@ -1,10 +1,10 @@
 """Rebuild a pilot :class:`~spatial_ev.pipeline.analysis.Analysis` from a run folder.
 
-A run folder's ``manifest.json`` records the absolute path and SHA-256 of every input file and
-every analysis parameter including the seed. :func:`load_pilot` checks each file (the
-recorded path first, then the folder's ``inputs/`` copy that demo runs keep), refuses a file
-that is missing or whose checksum changed, reads the survey with the options of the recorded
-command line and re-runs :func:`~spatial_ev.pipeline.analysis.analyse` with the recorded parameters,
+A run folder's ``manifest.json`` records the absolute path, SHA-256 and copy (``inputs/``) of
+every input file and every analysis parameter including the seed. :func:`load_pilot` checks
+each file (the recorded path first, then the folder's own copy, so a moved folder still
+loads), refuses a file that is missing or whose checksum changed, reads the survey with the
+options of the recorded command line and re-runs :func:`~spatial_ev.pipeline.analysis.analyse` with the recorded parameters,
 so the rebuilt pilot is the analysis that wrote the folder.
 """
 
@@ -56,19 +56,27 @@ def _check_folder(folder: Any) -> tuple[Path, dict]:
 
 
 def _input_file(folder: Path, role: str, entry: dict) -> Path:
+    """The recorded input file, else its copy in the run folder (``copy`` in the manifest,
+    or ``inputs/<name>``), whichever still has the recorded SHA-256."""
     recorded = Path(entry.get("path", ""))
     expected = entry.get("sha256")
-    candidates = [recorded, folder / "inputs" / recorded.name]
+    candidates = [recorded]
+    if isinstance(entry.get("copy"), str):
+        candidates.append(folder / entry["copy"])
+    candidates.append(folder / "inputs" / recorded.name)
+    changed = None
     for path in candidates:
         if path.is_file():
             found = _sha256(path)
             if found == expected:
                 return path
-            if path == candidates[-1] or not candidates[-1].is_file():
-                raise DesignError(f"input file {str(path)!r} ({role}) has changed since the "
-                                  f"run: SHA-256 {found[:12]}… but the manifest records "
-                                  f"{str(expected)[:12]}…; restore the original file or "
-                                  "re-run the analysis")
+            changed = (path, found)
+    if changed is not None:
+        path, found = changed
+        raise DesignError(f"input file {str(path)!r} ({role}) has changed since the "
+                          f"run: SHA-256 {found[:12]}… but the manifest records "
+                          f"{str(expected)[:12]}…; restore the original file or "
+                          "re-run the analysis")
     raise DesignError(f"input file {str(recorded)!r} ({role}) recorded in the manifest is "
                       f"missing (also not in {str(folder / 'inputs')!r}); restore it or "
                       "re-run the analysis")

@@ -8,7 +8,8 @@ Layout of a run folder::
     figures/          every figure as PNG and SVG
     tables/           CSV tables (fractions, selections, scalogram, LCBD, ...)
     maps.gpkg         one layer per scale class (sites), predicted grids, LCBD
-    inputs/           (demo only) the survey files that were analysed
+    inputs/           copies of the survey files that were analysed (a Shapefile with its
+                      companion files), so that the folder can be moved and re-read
 
 The folder is written inside :func:`~spatial_ev.report.folder.atomic_folder`: whole or absent.
 """
@@ -19,6 +20,7 @@ import hashlib
 import json
 import os
 import platform
+import shutil
 import sys
 from collections.abc import Callable, Mapping
 from importlib import metadata
@@ -35,7 +37,10 @@ from spatial_ev.report.html import write_report
 from spatial_ev.report.layers import write_layers, write_table
 from spatial_ev.report.summary import summary_record
 
-__all__ = ["write_run_folder", "manifest"]
+__all__ = ["write_run_folder", "manifest", "copy_inputs"]
+
+# files a GIS layer needs beside its main file (Shapefile parts), copied with it
+_COMPANIONS = {".shp": (".shx", ".dbf", ".prj", ".cpg", ".qix", ".sbn", ".sbx", ".shp.xml")}
 
 _LIBRARIES = ("numpy", "scipy", "pandas", "geopandas", "shapely", "pyproj", "pyogrio",
               "matplotlib", "jinja2", "rich", "threadpoolctl")
@@ -57,9 +62,55 @@ def _blas() -> list[dict[str, Any]]:
             for i in threadpool_info()]
 
 
+def _input_files(analysis: Analysis,
+                 inputs: Mapping[str, str | os.PathLike] | None) -> dict[str, Path]:
+    """Role -> existing input file (``inputs``, or the survey's sources that are files)."""
+    sources = dict(inputs) if inputs is not None else dict(analysis.survey.sources)
+    return {role: Path(path) for role, path in sources.items()
+            if path is not None and Path(path).is_file()}
+
+
+def copy_inputs(files: Mapping[str, str | os.PathLike],
+                folder: str | os.PathLike) -> dict[str, str]:
+    """Copy input files into ``folder/inputs/``; return role -> path of the copy relative to
+    ``folder`` (POSIX form, as recorded in the manifest).
+
+    A Shapefile's companion files (``.shx``, ``.dbf``, ``.prj`` …) are copied beside it. Two
+    inputs with the same file name are kept apart by prefixing the later one with its role.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> src = Path(tempfile.mkdtemp()); _ = (src / "sites.csv").write_text("site,x,y")
+    >>> copy_inputs({"sites": src / "sites.csv"}, tempfile.mkdtemp())
+    {'sites': 'inputs/sites.csv'}
+    """
+    folder = Path(folder)
+    target = folder / "inputs"
+    target.mkdir(exist_ok=True)
+    copies: dict[str, str] = {}
+    for role, path in files.items():
+        path = Path(path)
+        name = path.name
+        if (target / name).exists():
+            name = f"{role}_{name}"
+        shutil.copy2(path, target / name)
+        stem = name[:-len(path.suffix)] if path.suffix else name
+        for extra in _COMPANIONS.get(path.suffix.lower(), ()):
+            companion = path.with_name(path.name[:-len(path.suffix)] + extra)
+            if companion.is_file():
+                shutil.copy2(companion, target / (stem + extra))
+        copies[role] = f"inputs/{name}"
+    return copies
+
+
 def manifest(analysis: Analysis, *, inputs: Mapping[str, str | os.PathLike] | None = None,
-             parameters: Mapping[str, Any] | None = None) -> dict[str, Any]:
+             parameters: Mapping[str, Any] | None = None,
+             copies: Mapping[str, str] | None = None) -> dict[str, Any]:
     """Provenance of a run: versions, inputs' SHA-256, parameters and seed.
+
+    ``copies`` (role -> path inside the run folder, from :func:`copy_inputs`) is recorded
+    beside each input's original path.
 
     Examples
     --------
@@ -73,11 +124,11 @@ def manifest(analysis: Analysis, *, inputs: Mapping[str, str | os.PathLike] | No
         except metadata.PackageNotFoundError:  # pragma: no cover - optional
             versions[lib] = None
     files = {}
-    sources = dict(inputs) if inputs is not None else dict(analysis.survey.sources)
-    for role, path in sources.items():
-        if path is not None and Path(path).is_file():
-            files[role] = {"path": str(Path(path).resolve()), "sha256": _sha256(path),
-                           "bytes": Path(path).stat().st_size}
+    for role, path in _input_files(analysis, inputs).items():
+        files[role] = {"path": str(path.resolve()), "sha256": _sha256(path),
+                       "bytes": path.stat().st_size}
+        if copies is not None and role in copies:
+            files[role]["copy"] = copies[role]
     return {
         "package": {"name": "spatial_ev", "version": __version__},
         "python": sys.version.split()[0], "platform": platform.platform(),
@@ -142,8 +193,15 @@ def write_run_folder(analysis: Analysis, out: str | os.PathLike, *, overwrite: b
     title : str, optional
         Report title.
     before_commit : callable, optional
-        Called with the temporary folder before it is renamed into place (e.g. to copy the
-        analysed input files into it).
+        Called with the temporary folder before it is renamed into place (e.g. to add files
+        to it).
+
+    Notes
+    -----
+    The input files (``inputs``, or the survey's source files) are copied into ``inputs/``
+    and the manifest records, for each, its original path, its SHA-256 and its copy; a
+    re-read of the folder (:func:`spatial_ev.pipeline.rerun.load_pilot`) falls back to the
+    copy, so the folder can be moved.
 
     Returns
     -------
@@ -169,7 +227,8 @@ def write_run_folder(analysis: Analysis, out: str | os.PathLike, *, overwrite: b
         write_report(context, tmp)
         if before_commit is not None:
             before_commit(tmp)
-        record = manifest(analysis, inputs=inputs, parameters=parameters)
+        copies = copy_inputs(_input_files(analysis, inputs), tmp)
+        record = manifest(analysis, inputs=inputs, parameters=parameters, copies=copies)
         (tmp / "manifest.json").write_text(json.dumps(record, indent=2, default=str) + "\n",
                                            encoding="utf-8")
     return out

@@ -306,3 +306,60 @@ class TestWriteReport:
     def test_validation(self, context, tmp_path):
         with pytest.raises(InputError, match="is not an existing folder"):
             write_report(context, tmp_path / "missing")
+
+
+class TestReportWords:
+    def test_p_at_entry_flagged(self, context):
+        page = render_report(_light(context))
+        selected = _section(page, "selected")
+        assert selected.count("<th class=\"num\">p at entry</th>") + \
+            selected.count("<th>p at entry</th>") == 2
+        assert selected.count("p at entry: the permutation p-value") == 2
+        assert ">p</th>" not in selected
+
+    def test_moran_above_one_explained_only_when_present(self, context):
+        space = context["selected_space"]
+        assert (space["moran_i"] <= 1).all()
+        page = render_report(_light(context))
+        assert "can exceed 1" not in page and "On extreme values" not in page
+        # eigenvectors of a binary graph can have I above 1 (e.g. 1.033 in the demo run)
+        high = space.assign(moran_i=space["moran_i"] + 0.11)
+        assert (high["moran_i"] > 1).any()
+        page = render_report(_light(context, selected_space=high))
+        assert "Moran's I can exceed 1 here" in html.unescape(_section(page, "selected"))
+        # de Jong, Sprenger & van Veen (1984, Geogr. Anal. 16:17-24) [memory]: the bounds of
+        # I are set by the extreme eigenvalues of the weights, so the reference is listed
+        assert "On extreme values of Moran's I and Geary's c" in html.unescape(page)
+
+    def test_scale_described_one_way(self, context):
+        page = html.unescape(re.sub(r"<[^>]+>", " ", render_report(_light(context))))
+        assert "equivalent wavelength" in page and "half of it is roughly the size" in page
+        assert "size of the structure a vector describes" not in page
+
+    def test_spectral_explanation_once(self):
+        limits = {"finest_scale": 10.0, "broadest_scale": 500.0, "n_positive_vectors": 20,
+                  "notes": ["The community–environment link was also tested by Moran spectral "
+                            "randomisation of the environmental table (Wagner & Dray 2015).",
+                            "How the spectral randomisation works: random signs."]}
+        page = render_report({"title": "t", **dict.fromkeys(
+            ("data", "methods", "partition", "selected_environment", "selected_space",
+             "scalogram", "basis_moran", "weighting", "scale_maps", "lcbd", "triplot")),
+            "limits": limits})
+        text = html.unescape(re.sub(r"<[^>]+>", " ", page))
+        assert text.count("tested by Moran spectral randomisation") == 1
+
+    def test_nothing_environmental_kept(self, context):
+        tp = context["triplot"]
+        bare = dict(tp, scaling_1=dict(tp["scaling_1"], variables=None),
+                    scaling_2=dict(tp["scaling_2"], variables=None))
+        page = render_report(_light(context, triplot=bare))
+        section = _section(page, "triplot")
+        assert "No environmental variable was kept" in section
+        assert "variable arrows" not in section
+        figures = build_figures(_light(context, triplot=bare))
+        for key in ("triplot_scaling_1", "triplot_scaling_2"):
+            ax = figures[key].axes[0]
+            assert "arrows" not in ax.get_title(loc="left")
+            assert figures[key]._suptitle.get_text().startswith("Unconstrained ordination")
+        page = render_report(_light(context, triplot=tp))
+        assert "variable arrows approximate their correlations" in _section(page, "triplot")

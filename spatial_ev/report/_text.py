@@ -60,6 +60,8 @@ REFERENCES: dict[str, str] = {
                             "submodels. Ecology 93: 1234–1240.",
     "Moran 1950": "Moran, P. A. P. (1950). Notes on continuous stochastic phenomena. "
                   "Biometrika 37: 17–23.",
+    "de Jong et al. 1984": "de Jong, P., Sprenger, C. & van Veen, F. (1984). On extreme values "
+                           "of Moran's I and Geary's c. Geographical Analysis 16: 17–24.",
     "Peres-Neto et al. 2006": "Peres-Neto, P. R., Legendre, P., Dray, S. & Borcard, D. (2006). "
                               "Variation partitioning of species data matrices: estimation "
                               "and comparison of fractions. Ecology 87: 2614–2625.",

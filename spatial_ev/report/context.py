@@ -275,14 +275,14 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
 
     notes = list(a.notes)
     if methods["environment_test"] is not None:
-        notes.append("Besides free permutations, the community–environment link was tested by "
-                     "Moran spectral randomisation of the environmental table (Wagner & Dray "
-                     "2015, Methods Ecol. Evol. 6:1169–1178): random signs on the environment's "
-                     "coefficients over all spatial eigenvectors of a distance-decay "
-                     "weighting exp(−d/t) (t the truncation distance of the distance-based "
-                     "eigenvectors), the same signs for every variable, keep each variable's "
-                     "Moran's I and the correlations among variables; only this spatial "
-                     "spectrum is kept, not higher-order structure such as patch shapes.")
+        # the analysis's own note says what was tested and its result; this one only adds
+        # how the randomisation works, so the explanation is not given twice
+        notes.append("How the spectral randomisation works: the environment's coefficients "
+                     "on all spatial eigenvectors of a distance-decay weighting exp(−d/t) (t the "
+                     "truncation distance of the distance-based eigenvectors) get random signs, "
+                     "the same for every variable, which keeps each variable's Moran's I and "
+                     "the correlations among variables; only this spatial spectrum is kept, "
+                     "not higher-order structure such as patch shapes.")
     limits = {"finest_scale": float(basis.scale.min()),
               "broadest_scale": float(basis.scale.max()),
               "n_positive_vectors": int(basis.n_vectors), "notes": notes}

@@ -308,11 +308,12 @@ def _tables(context: Mapping[str, Any], unit: str) -> dict[str, Any]:
                                   for _, r in part["fractions"].iterrows()]}
     environment = _table("selected_environment", context["selected_environment"], [
         (("variable", "name"), "variable", str),
-        (("r2_adj_cum", "r2_adj"), "cumulative adjusted R²", num), (("p",), "p", pvalue)])
+        (("r2_adj_cum", "r2_adj"), "cumulative adjusted R²", num),
+        (("p",), "p at entry", pvalue)])
     space = _table("selected_space", context["selected_space"], [
         (("vector", "name"), "vector", str), (("moran_i",), "Moran's I", num),
         (("scale",), f"scale ({unit})", lambda v: distance(v, unit)),
-        (("scale_class", "class"), "scale class", str), (("p",), "p", pvalue)])
+        (("scale_class", "class"), "scale class", str), (("p",), "p at entry", pvalue)])
     return {"partition_table": partition, "env_table": environment, "space_table": space}
 
 
@@ -331,6 +332,46 @@ def _scale_map_captions(context: Mapping[str, Any], unit: str, uris: Mapping[str
                                    f"{num(entry.get('r2_adj'))}"
                                    + (f", p = {pvalue(p)}" if p is not None else "")})
     return out
+
+
+# what the p column of the selection tables means (shown under both tables)
+ENTRY_NOTE = ("p at entry: the permutation p-value of each variable or vector at the step of "
+              "forward selection where it entered, given those chosen before it. These values "
+              "decided the selection; they are not tests of the final model and are not "
+              "corrected for the many candidates tried, so read them as a record of the "
+              "selection, not as evidence on their own.")
+# the one description of "scale" used by the report
+SCALE_WORDS = ("Scale is a vector's equivalent wavelength in map units: the distance over "
+               "which its pattern repeats once; half of it is roughly the size of one patch.")
+
+
+def _moran_note(context: Mapping[str, Any], cite: Citations) -> str | None:
+    """A sentence on Moran's I above 1, when a listed vector has one."""
+    values = []
+    space = context.get("selected_space")
+    if isinstance(space, pd.DataFrame) and "moran_i" in space.columns:
+        values.extend(pd.to_numeric(space["moran_i"], errors="coerce").dropna().tolist())
+    bm = context.get("basis_moran")
+    if isinstance(bm, Mapping) and bm.get("moran_i") is not None:
+        values.extend(pd.Series(bm["moran_i"], dtype=float).dropna().tolist())
+    if not values or max(values) <= 1.0:
+        return None
+    return ("Moran's I can exceed 1 here: its bounds are not −1 and 1 but depend on the "
+            "spatial weights (the extreme eigenvalues of the weighting matrix)"
+            f"{cite('de Jong et al. 1984')}, and spatial eigenvectors sit at those extremes "
+            "by construction.")
+
+
+def _triplot_constrained(tp: Mapping[str, Any] | None) -> bool:
+    """True when the ordination has explanatory variables to draw (a triplot)."""
+    if tp is None:
+        return False
+    for scaling in (1, 2):
+        scores = tp.get(f"scaling_{scaling}")
+        if scores is not None:
+            v = scores.get("variables")
+            return v is not None and len(v) > 0
+    return False
 
 
 def class_colours(context: Mapping[str, Any]) -> dict[str, tuple[str, str]]:
@@ -470,6 +511,7 @@ def render_report(context: Mapping[str, Any], *,
     tables = _tables(context, unit)  # validates the tabular entries first
     scale_maps = _scale_map_captions(context, unit, uris)
     glance = glance_items(context, unit)
+    moran_note = _moran_note(context, cite)
     refs = [REFERENCES[k] for k in sorted(cite.keys)]
     view = {
         "title": context["title"], "subtitle": context.get("subtitle"),
@@ -480,6 +522,8 @@ def render_report(context: Mapping[str, Any], *,
         "glance": glance,
         "figures": uris, "scale_maps": scale_maps,
         "lcbd_note": _lcbd_note(context["lcbd"]), "limits": limits, "references": refs,
+        "entry_note": ENTRY_NOTE, "scale_words": SCALE_WORDS, "moran_note": moran_note,
+        "triplot_constrained": _triplot_constrained(context["triplot"]),
         **tables,
     }
     return _environment().get_template("report.html").render(**view)

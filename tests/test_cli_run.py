@@ -217,3 +217,42 @@ def test_manifest_records_read_options(small_survey_files, tmp_path):
     recorded = json.loads((out / "manifest.json").read_text())["parameters"]["read_options"]
     assert recorded["x"] == "easting" and recorded["y"] == "northing"
     assert recorded["crs"] == "EPSG:32633"
+
+
+def test_progress_lines_in_a_log(small_survey_files, tmp_path, capsys):
+    """Standard error that is not a terminal (pytest's capture) gets plain timestamped
+    progress lines; --quiet silences them."""
+    import re
+    from datetime import datetime, timezone
+
+    args = [a for a in run_args(small_survey_files, tmp_path / "logged") if a != "--quiet"]
+    assert main(args) == 0
+    err = capsys.readouterr().err.splitlines()
+    stamped = [line for line in err if not line.startswith("warning (")]
+    assert stamped, err
+    pattern = re.compile(r"^\[(\d{4}-\d\d-\d\d \d\d:\d\d:\d\d) UTC, +(\d+\.\d) s\] \S")
+    for line in stamped:
+        match = pattern.match(line)
+        assert match, line
+        when = datetime.strptime(match.group(1), "%Y-%m-%d %H:%M:%S").replace(
+            tzinfo=timezone.utc)
+        assert abs((datetime.now(timezone.utc) - when).total_seconds()) < 600
+    seconds = [float(pattern.match(line).group(2)) for line in stamped]
+    assert all(b - a >= 10.0 - 0.05 for a, b in zip(seconds, seconds[1:]))  # throttled
+    assert main(run_args(small_survey_files, tmp_path / "quiet")) == 0  # FAST has --quiet
+    assert capsys.readouterr().err == ""
+
+
+def test_progress_log_throttles_to_its_interval():
+    import io
+
+    from spatial_ev.cli.common import ProgressLog
+
+    times = iter([0.0, 0.5, 3.0, 10.4, 10.6, 12.0, 25.0, 25.2])
+    out = io.StringIO()
+    log = ProgressLog(out, interval=10.0, clock=lambda: next(times))
+    for message in ("a", "b", "c", "d", "e", "f"):
+        log(message)
+    log.finish("end")
+    said = [line.split("] ", 1)[1] for line in out.getvalue().splitlines()]
+    assert said == ["a", "d", "f", "end"]

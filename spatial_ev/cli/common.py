@@ -16,8 +16,11 @@ from __future__ import annotations
 
 import argparse
 import re
-from collections.abc import Mapping
-from typing import TYPE_CHECKING
+import sys
+import time
+from collections.abc import Callable, Mapping
+from datetime import datetime, timezone
+from typing import TYPE_CHECKING, TextIO
 
 from spatial_ev._validation import check_option
 
@@ -25,7 +28,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from spatial_ev.input.survey import Survey
 
 __all__ = ["add_survey_options", "read_options", "survey_from_args", "PARAMETER_OPTIONS",
-           "option_names", "in_option_words"]
+           "option_names", "in_option_words", "ProgressLog"]
 
 _ANALYSIS_PARAMETERS = {"schemes": "--weighting", "spatial_weighting": "--weighting",
                         "n_permutations": "--permutations", "n_workers": "--workers"}
@@ -259,3 +262,57 @@ def in_option_words(message: str, options: Mapping[str, str]) -> str:
     for pattern, replacement in _SAID_TWICE:
         text = pattern.sub(replacement, text)
     return text
+
+
+class ProgressLog:
+    """Progress as plain timestamped lines, for standard error that is not a terminal (a
+    batch log), where a live display cannot redraw itself.
+
+    A line is written for the first message and then at most once every ``interval``
+    seconds (the latest message at that moment); :meth:`finish` always writes its line.
+
+    Parameters
+    ----------
+    stream : file, optional
+        Where the lines go (default: standard error at the time of each line).
+    interval : float
+        Fewest seconds between two progress lines.
+    clock : callable
+        Seconds, monotonic (:func:`time.monotonic`; replaceable in tests).
+
+    Examples
+    --------
+    >>> import io
+    >>> t = iter([0.0, 1.0, 12.0, 13.0]); out = io.StringIO()
+    >>> log = ProgressLog(out, interval=10.0, clock=lambda: next(t))
+    >>> log("reading"); log("testing 1"); log("testing 2"); log.finish("done")
+    >>> [line.split("] ", 1)[1] for line in out.getvalue().splitlines()]
+    ['reading', 'testing 2', 'done']
+    """
+
+    def __init__(self, stream: TextIO | None = None, *, interval: float = 10.0,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        if not interval >= 0:
+            from spatial_ev.errors import InputError
+
+            raise InputError(f"`interval` must be a number of seconds >= 0; got {interval!r}")
+        self.stream = stream
+        self.interval = float(interval)
+        self.clock = clock
+        self.start = clock()
+        self.last: float | None = None
+
+    def _write(self, now: float, message: str) -> None:
+        stamp = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+        print(f"[{stamp}, {now - self.start:7.1f} s] {message}",
+              file=self.stream or sys.stderr, flush=True)
+        self.last = now
+
+    def __call__(self, message: str) -> None:
+        now = self.clock()
+        if self.last is None or now - self.last >= self.interval:
+            self._write(now, message)
+
+    def finish(self, message: str) -> None:
+        """Write ``message`` whatever the time since the last line."""
+        self._write(self.clock(), message)

@@ -25,6 +25,7 @@ import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from spatial_ev.cli.common import ProgressLog
 from spatial_ev.errors import InputError
 
 if TYPE_CHECKING:  # the command's imports stay lazy; the type is for readers and checkers
@@ -97,10 +98,12 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 class _Progress:
-    """A rich status for the pilot rebuild and a progress bar for the simulations (tty only)."""
+    """A rich status for the pilot rebuild and a progress bar for the simulations on a
+    terminal; plain timestamped lines, throttled, when standard error is not a terminal."""
 
     def __init__(self, quiet: bool) -> None:
         self.live = not quiet and sys.stderr.isatty()
+        self.log = ProgressLog() if not quiet and not self.live else None
         self.start = time.perf_counter()
         self.status = self.bar = self.task = None
         if self.live:
@@ -113,8 +116,12 @@ class _Progress:
     def stage(self, message: str) -> None:
         if self.status is not None:
             self.status.update(f"[{time.perf_counter() - self.start:6.1f} s] pilot: {message}")
+        elif self.log is not None:
+            self.log(f"pilot: {message}")
 
     def step(self, done: int, total: int) -> None:
+        if self.log is not None:
+            self.log(f"simulations {done} of {total}")
         if not self.live:
             return
         if self.bar is None:

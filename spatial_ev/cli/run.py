@@ -4,8 +4,9 @@
 holding the same keys; ``demo`` generates the shipped demo survey files and analyses them.
 Both copy the analysed files into the run folder's ``inputs/`` (recorded with their SHA-256
 in ``manifest.json``), so the folder can be moved before ``design`` reads it. On a terminal
-both show the stage, the latest test and the elapsed time; with ``--quiet`` or when output is
-not a terminal they print only the final lines.
+both show the stage, the latest test and the elapsed time; when standard error is not a
+terminal (a batch log) they write a timestamped progress line at most every 10 s; with
+``--quiet`` they print only the final lines.
 """
 
 from __future__ import annotations
@@ -17,7 +18,8 @@ import time
 from pathlib import Path
 from typing import Any
 
-from spatial_ev.cli.common import add_survey_options, read_options, survey_from_args
+from spatial_ev.cli.common import (ProgressLog, add_survey_options, read_options,
+                                   survey_from_args)
 from spatial_ev.cli.network import (
     add_network_options,
     check_network_options,
@@ -170,10 +172,13 @@ def load_config(path: str, parser: argparse.ArgumentParser,
 
 
 class _Progress:
-    """Stage messages with elapsed time on a terminal (rich), silent otherwise."""
+    """Stage messages with elapsed time: a live status on a terminal (rich), plain
+    timestamped lines, throttled, when standard error is not a terminal (a batch log);
+    nothing with ``--quiet``."""
 
     def __init__(self, quiet: bool) -> None:
         self.live = not quiet and sys.stderr.isatty()
+        self.log = ProgressLog() if not quiet and not self.live else None
         self.start = time.perf_counter()
         self.status = None
         if self.live:
@@ -186,6 +191,8 @@ class _Progress:
     def __call__(self, message: str) -> None:
         if self.status is not None:
             self.status.update(f"[{time.perf_counter() - self.start:6.1f} s] {message}")
+        elif self.log is not None:
+            self.log(message)
 
     def stop(self) -> float:
         if self.status is not None:

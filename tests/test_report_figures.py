@@ -317,7 +317,8 @@ class TestTriplotFigure:
         fig = triplot_figure(sites, small, None, eig, scaling=2)
         drawn = _collection(fig, "species-scores").get_offsets()
         factor = drawn[0, 0] / small.iloc[0, 0]
-        np.testing.assert_allclose(drawn, small[["canonical_1", "canonical_2"]].to_numpy() * factor)
+        np.testing.assert_allclose(drawn,
+                                   small[["canonical_1", "canonical_2"]].to_numpy() * factor)
         site_r = np.hypot(sites["canonical_1"], sites["canonical_2"]).max()
         assert np.hypot(drawn[:, 0], drawn[:, 1]).max() == pytest.approx(0.8 * site_r)
         note = [t.get_text() for t in fig.axes[0].texts if t.get_gid() == "stretch-note"]
@@ -340,8 +341,8 @@ class TestTriplotFigure:
         with pytest.raises(InputError, match="`scaling` must be 1 or 2; got 3"):
             triplot_figure(sites, species, variables, eig, scaling=3)
         with pytest.raises(InputError, match="must start with the axes of `site_scores`"):
-            triplot_figure(sites, species.rename(columns={"canonical_1": "residual_1"}), variables, eig,
-                           scaling=1)
+            triplot_figure(sites, species.rename(columns={"canonical_1": "residual_1"}),
+                           variables, eig, scaling=1)
         with pytest.raises(InputError, match="`eigenvalues` has no value for axis 'canonical_2'"):
             triplot_figure(sites, species, variables, eig.iloc[:1], scaling=1)
         with pytest.raises(InputError, match="`n_labels` must be a non-negative integer"):

@@ -18,7 +18,8 @@ import matplotlib
 from matplotlib.colors import LinearSegmentedColormap
 
 __all__ = ["INK", "MUTED", "GRID", "UNEXPLAINED", "SHARED", "HIGHLIGHT", "GROUP_COLOURS",
-           "BAND_COLOURS", "CLASS_COLOURS", "DIVERGING", "SEQUENTIAL", "RC", "styled", "group_colour",
+           "BAND_COLOURS", "CLASS_COLOURS", "DIVERGING", "SEQUENTIAL", "RC", "styled",
+           "group_colour",
            "scale_class_colours"]
 
 INK = "#1d2530"          # text, axes, outlines

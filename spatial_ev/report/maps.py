@@ -280,8 +280,9 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
         given (NaN cells are always hidden).
     wavelength : finest equivalent wavelength (map units) of the structure the surface shows;
         the surface then fades out with distance from the sites and is transparent where no
-        site has it within its reach, ``max(2 × local spacing, wavelength / 4)``: opaque within half
-        of it, transparent beyond it (:mod:`spatial_ev.report.surface`). None: no fading.
+        site has it within its reach, ``max(2 × local spacing, wavelength / 4)``: opaque
+        within half of it, transparent beyond it (:mod:`spatial_ev.report.surface`). None:
+        no fading.
     class_colour : colour of the scale class mapped (drawn as the map's frame), or None.
     weak_highlight : name of a boolean column; its True sites get a thin open ring and the
         legend entry ``weak_label`` (e.g. sites significant before a multiple-test
@@ -374,8 +375,8 @@ def site_map_figure(sites: gpd.GeoDataFrame, *, column: str, palette: str = "div
                    rasterized=True)
     if grid is not None:
         gx, gy, gz = grid
-        rgba, extent = _surface_image(given, sites, clip=clip, wavelength=wavelength,  # type: ignore[arg-type]
-                                      cmap=cmap, norm=norm)
+        rgba, extent = _surface_image(given, sites, clip=clip,  # type: ignore[arg-type]
+                                      wavelength=wavelength, cmap=cmap, norm=norm)
         ax.imshow(rgba, extent=extent, origin="lower", interpolation="bilinear", zorder=1,
                   gid="surface", rasterized=True, aspect="equal")
         xmin, xmax = min(xmin, gx[0]), max(xmax, gx[-1])

@@ -111,6 +111,10 @@ class TestRiverRun:
         copied = river_run.parent / "channels.gpkg"
         assert network["sha256"] == hashlib.sha256(copied.read_bytes()).hexdigest()
         assert Path(network["path"]) == copied.resolve()          # relative to the config
+        # the run folder keeps a copy of the network beside the survey files
+        kept = river_run / network["copy"]
+        assert kept.parent.name == "inputs"
+        assert hashlib.sha256(kept.read_bytes()).hexdigest() == network["sha256"]
         assert manifest["parameters"]["network_options"]["snap_tolerance"] == 30
 
 

@@ -103,6 +103,8 @@ class TestRiverRun:
             assert (figures / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
         html = (river_run / "report.html").read_text(encoding="utf-8")
         assert "asymmetric eigenvector maps" in html
+        assert "predicted at points spaced along the network" in html     # the maps' lead
+        assert "The background surface is the same fit" not in html
         assert "Blanchet, F. G., Legendre, P. &amp; Borcard, D. (2008). Modelling" in html
 
     def test_manifest_hashes_the_network(self, river_run):

@@ -524,6 +524,8 @@ def render_report(context: Mapping[str, Any], *,
         "lcbd_note": _lcbd_note(context["lcbd"]), "limits": limits, "references": refs,
         "entry_note": ENTRY_NOTE, "scale_words": SCALE_WORDS, "moran_note": moran_note,
         "triplot_constrained": _triplot_constrained(context["triplot"]),
+        "along_network": any(isinstance(e, Mapping) and e.get("along") is not None
+                             for e in context["scale_maps"] or ()),
         **tables,
     }
     return _environment().get_template("report.html").render(**view)

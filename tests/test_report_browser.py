@@ -65,6 +65,38 @@ class TestInspectInBrowser:
         for part in np.array_split(pixels, 4):
             assert part.std() > 5.0
 
+    def test_hard_cases_display_and_are_kept_as_screenshots(self, chromium, tmp_path):
+        # the figures fixed for readability, in their hard cases: nothing selected by any
+        # weighting scheme, no environmental variable kept (unconstrained ordination), LCBD
+        # sites significant before the Holm correction only; with SPATIAL_EV_SCREENSHOT_DIR
+        # set (CI keeps it as an artifact) the screenshot is copied there for review
+        import os
+        import shutil
+
+        from statsmodels.stats.multitest import multipletests
+
+        context = example_context()
+        wt = context["weighting"]["table"]
+        context["weighting"] = dict(context["weighting"], table=wt.assign(
+            r2_adj=np.nan, p=np.linspace(0.2, 0.9, len(wt))), chosen=None)
+        tp = context["triplot"]
+        context["triplot"] = dict(tp, scaling_1=dict(tp["scaling_1"], variables=None),
+                                  scaling_2=dict(tp["scaling_2"], variables=None))
+        sites = context["lcbd"]["sites"].copy()
+        # Holm (1979, Scand. J. Stat. 6:65-70) adjustment by statsmodels
+        sites["p_holm"] = multipletests(sites["p"].to_numpy(), method="holm")[1]
+        context["lcbd"] = dict(context["lcbd"], sites=sites, p_corrected_column="p_holm")
+        page = tmp_path / "hard_cases.html"
+        page.write_text(render_report(context), encoding="utf-8")
+        check = inspect_in_browser(page)
+        assert check.problems() == [] and check.ok
+        assert check.images_total == 10 and check.images_broken == ()
+        assert check.screenshot.is_file() and check.screenshot_std > 10.0
+        keep = os.environ.get("SPATIAL_EV_SCREENSHOT_DIR")
+        if keep:
+            Path(keep).mkdir(parents=True, exist_ok=True)
+            shutil.copy2(check.screenshot, Path(keep) / "report_hard_cases.png")
+
     def test_broken_page_is_reported(self, chromium, tmp_path):
         page = render_report({"title": "Broken on purpose", **dict.fromkeys(CONTEXT_PARTS)})
         injected = ('<img src="data:image/png;base64,AAAA" alt="deliberately broken">'

@@ -21,6 +21,7 @@ __all__ = [
     "check_int",
     "check_real",
     "as_matrix",
+    "significant",
 ]
 
 
@@ -148,3 +149,26 @@ def as_matrix(name: str, data: Any, *, min_rows: int = 1, min_cols: int = 1,
         raise InputError(f"`{name}` has a missing or infinite value at row {rlab!r}, "
                          f"column {clab!r}; remove or fill it")
     return arr, rows, cols
+
+
+def significant(value: float, digits: int = 3) -> str:
+    """``value`` rounded to ``digits`` significant figures, for text shown to people.
+
+    Whole numbers of ``digits`` figures or more are written in full with thousands
+    separators (never in exponent form); non-finite values as Python writes them.
+
+    Examples
+    --------
+    >>> [significant(v) for v in (6.21289, 26.497, 255.99, 999.7, 15.0032, 0.000123456)]
+    ['6.21', '26.5', '256', '1,000', '15', '0.000123']
+    >>> significant(19.794, 4), significant(123456.7, 4)
+    ('19.79', '123,500')
+    """
+    digits = check_int("digits", digits, low=1)
+    value = float(value)
+    if not np.isfinite(value) or value == 0:
+        return f"{value:g}"
+    rounded = float(f"{value:.{digits}g}")
+    if abs(rounded) >= 10 ** (digits - 1):
+        return f"{rounded:,.0f}"
+    return f"{rounded:.{digits}g}"

@@ -54,7 +54,10 @@ class TestCheckCommand:
         assert "categorical 'sediment_class': indicators sediment_class[muddy sand], " \
                "sediment_class[sand] (reference level 'mud')" in out
         assert "working CRS EPSG:32630 (WGS 84 / UTM zone 30N); distances in metre" in out
-        assert "nearest-neighbour spacing (metre): min 15.0032, median 37.1131, max 42.1043" in out
+        # the demo's spacing 15.0032 / 37.1131 / 42.1043 m, to three significant figures
+        assert "nearest-neighbour spacing (metre): min 15, median 37.1, max 42.1" in out
+        # 5 numeric columns and a 3-level category coded as 2 indicator columns
+        assert "environment: 6 column(s) (7 after coding categorical levels)" in out
         assert "dropped: nothing" in out and "nothing was written" in out
         assert _listing(workdir) == before
 

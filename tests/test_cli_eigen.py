@@ -78,3 +78,24 @@ class TestEigenCommand:
                             str(tmp_path / "c")]) == 2
         assert "gives every edge weight 0" in capsys.readouterr().err
         assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
+
+
+def test_printed_numbers_to_sensible_figures(transect_csv, tmp_path, capsys):
+    """Eigenvalues to 4 significant figures, scales to 3 (Python's own '.4g'/'.3g' rounding
+    as the reference), Moran's I to 4 decimals."""
+    out = tmp_path / "basis"
+    assert main(["eigen", "--sites", str(transect_csv), "--local-unit", "metre",
+                 "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    props = pd.read_csv(out / "vector_properties.csv", index_col=0)
+    rows = {line.split()[0]: line.split()[1:] for line in text.splitlines()
+            if line.startswith("sv")}
+    assert len(rows) >= 5
+    for name, (eigenvalue, moran, scale) in rows.items():
+        assert float(eigenvalue.replace(",", "")) == float(f"{props.loc[name, 'eigenvalue']:.4g}")
+        assert float(scale.replace(",", "")) == float(f"{props.loc[name, 'scale']:.3g}")
+        assert moran == f"{props.loc[name, 'moran_i']:.4f}"
+        mantissa = eigenvalue.split("e")[0].replace(",", "").replace(".", "").lstrip("0-")
+        assert len(mantissa.rstrip("0") if "." not in eigenvalue else mantissa) <= 4
+    first = text.splitlines()[0]
+    assert "threshold 25," in first  # 25 m spacing: the MST's longest edge

@@ -283,7 +283,7 @@ class ProgressLog:
     Examples
     --------
     >>> import io
-    >>> t = iter([0.0, 1.0, 12.0, 13.0]); out = io.StringIO()
+    >>> t = iter([0.0, 1.0, 5.0, 12.0, 13.0]); out = io.StringIO()
     >>> log = ProgressLog(out, interval=10.0, clock=lambda: next(t))
     >>> log("reading"); log("testing 1"); log("testing 2"); log.finish("done")
     >>> [line.split("] ", 1)[1] for line in out.getvalue().splitlines()]

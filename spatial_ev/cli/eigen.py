@@ -201,6 +201,8 @@ def _network_layers(basis, network, crs) -> dict:
 
 
 def _print_summary(basis, survey, out) -> None:
+    from spatial_ev._validation import significant
+
     unit = getattr(survey, "distance_unit", "map units") or "map units"
     table = basis.to_frame()
     lines = [basis.summary(),
@@ -211,8 +213,8 @@ def _print_summary(basis, survey, out) -> None:
         shown += list(range(len(table) - 3, len(table)))
     for pos, row in enumerate(table.itertuples()):
         if pos in shown:
-            lines.append(f"{row.Index:<8}{row.eigenvalue:>14.6g}{row.moran_i:>10.4f}"
-                         f"{row.scale:>14.6g}")
+            lines.append(f"{row.Index:<8}{significant(row.eigenvalue, 4):>14}"
+                         f"{row.moran_i:>10.4f}{significant(row.scale):>14}")
         elif pos == 5:
             lines.append(f"{'...':<8}")
     lines.append(f"written: {out}/spatial_vectors.csv, vector_properties.csv, "

@@ -20,7 +20,7 @@ import shapely
 
 from spatial_ev.input import tables as T
 from spatial_ev.input.assembly import assemble
-from spatial_ev._validation import check_option
+from spatial_ev._validation import check_option, significant
 from spatial_ev.input.crs import crs_label, looks_geographic_name, normalise_local_unit, parse_crs
 from spatial_ev.errors import CRSError, InputError
 from spatial_ev.input.io import file_format, numeric_hint, parse_numeric, read_csv_table, read_vector
@@ -197,9 +197,12 @@ class Survey:
         if self.environment is None:
             lines.append("environment: none given")
         else:
-            lines.append(f"environment: {self.environment.shape[1]} column(s)")
             indicator = {c for cols in self.categorical.values() for c in cols}
             numeric = [c for c in self.environment.columns if c not in indicator]
+            n_columns = len(numeric) + len(self.categorical)
+            coded = self.environment.shape[1]
+            lines.append(f"environment: {n_columns} column(s)" + (
+                f" ({coded} after coding categorical levels)" if coded != n_columns else ""))
             if numeric:
                 lines.append(f"  numeric: {', '.join(map(str, numeric))}")
             for var, cols in self.categorical.items():
@@ -209,9 +212,10 @@ class Survey:
                      f"working CRS {s['crs']}; distances in {u}")
         lines.append(f"  {self.projection_note}")
         lines.append(f"extent: x {e['xmin']:.8g} to {e['xmax']:.8g}, y {e['ymin']:.8g} to "
-                     f"{e['ymax']:.8g} ({e['width']:.6g} x {e['height']:.6g} {u})")
-        lines.append(f"nearest-neighbour spacing ({u}): min {sp['min']:.6g}, median "
-                     f"{sp['median']:.6g}, max {sp['max']:.6g}")
+                     f"{e['ymax']:.8g} ({significant(e['width'])} x "
+                     f"{significant(e['height'])} {u})")
+        lines.append(f"nearest-neighbour spacing ({u}): min {significant(sp['min'])}, median "
+                     f"{significant(sp['median'])}, max {significant(sp['max'])}")
         reasons = {"species": "never present (all zero)",
                    "variables": "constant across sites",
                    "sites": "incomplete environment (dropped on request)",

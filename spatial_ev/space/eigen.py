@@ -38,7 +38,7 @@ from scipy.sparse.linalg import LinearOperator, eigsh
 from scipy.spatial import ConvexHull, cKDTree
 from threadpoolctl import threadpool_limits
 
-from spatial_ev._validation import check_int, check_option, check_real
+from spatial_ev._validation import check_int, check_option, check_real, significant
 from spatial_ev.space.geometry import (Layout, band_pairs, check_coordinates, chord_to_distance,
                                        distance_to_chord, layout_points, mst_threshold,
                                        plane_coordinates, symmetric_matrix)
@@ -128,11 +128,12 @@ class SpatialBasis:
         i = self.moran_i.to_numpy()
         s = self.scale.to_numpy()
         text = (f"{self.n_vectors} spatial eigenvectors ({self.method}"
-                + (f", threshold {self.threshold:.6g}" if self.threshold else "")
+                + (f", threshold {significant(self.threshold, 4)}" if self.threshold else "")
                 + f", {self.solver} solver) for {self.vectors.shape[0]} sites")
         if self.n_vectors:
             text += (f"; Moran's I from {i.max():.4f} to {i.min():.4f}; scales from "
-                     f"{s.max():.6g} to {s.min():.6g} map units (equivalent wavelength)")
+                     f"{significant(s.max())} to {significant(s.min())} map units "
+                     f"(equivalent wavelength)")
         return text + ". Scales assume roughly isotropic, stationary patterns."
 
     def extend(self, new_coords: Any) -> pd.DataFrame:

@@ -178,7 +178,7 @@ class TestPythonNamesDetector:
 
     def test_knows_the_parameters(self):
         assert {"n_permutations", "schemes", "k", "threshold", "crs", "local_unit",
-                "max_vectors", "sign"} <= PARAMETERS
+                "max_vectors", "keep"} <= PARAMETERS
 
 
 class TestManifest:

@@ -128,8 +128,7 @@ class TestOptionWords:
         ("eigen", "give `max_vectors` (e.g. 200) or `finest_scale` (map units), or "
                   "solver='dense' (needs O(n²) memory)",
          "give --max-vectors (e.g. 200) or --finest-scale (map units)"),
-        ("eigen", "sign='all' needs every eigenvector", "--autocorrelation all needs every "
-                                                       "eigenvector"),
+        ("eigen", "keep='all' needs every eigenvector", "--keep all needs every eigenvector"),
         ("check", "pass crs= (EPSG code or WKT, --crs) or local_unit= for local planar "
                   "coordinates (--local-unit metre)",
          "pass --crs (EPSG code or WKT) or --local-unit for local planar coordinates "

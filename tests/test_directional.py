@@ -148,7 +148,7 @@ class TestAemEigenvalues:
     def test_equal_the_principal_components_of_the_hand_matrix(self, y_net):
         hand = np.array([[1, 0, 0, 0, 0, 0], [0, 0, 1, 0, 0, 0], [1, 1, 1, 1, 1, 0],
                          [1, 1, 1, 1, 1, 1]], dtype=float)
-        basis = D.aem_eigenvectors(y_net, sign="all")
+        basis = D.aem_eigenvectors(y_net, keep="all")
         # AEM = PCA of E (Blanchet et al. 2008); scikit-learn's explained variance is s²/(n−1)
         pca = PCA().fit(hand)
         mu = pca.explained_variance_ * (hand.shape[0] - 1)
@@ -161,7 +161,7 @@ class TestAemEigenvalues:
 
     @pytest.mark.parametrize("n", [5, 12, 30])
     def test_single_channel_closed_form(self, n):
-        basis = D.aem_eigenvectors(chain(n), sign="all")
+        basis = D.aem_eigenvectors(chain(n), keep="all")
         k = np.arange(1, n)
         # μ_k = 1/(4 sin²(πk/2n)) [derived: pseudo-inverse of the path Laplacian]
         assert basis.eigenvalues == pytest.approx(1 / (4 * np.sin(np.pi * k / (2 * n)) ** 2),
@@ -179,7 +179,7 @@ class TestAemEigenvalues:
         assert basis.scale.is_monotonic_decreasing
 
     def test_moran_on_the_network_neighbours(self, y_net):
-        basis = D.aem_eigenvectors(y_net, sign="all")
+        basis = D.aem_eigenvectors(y_net, keep="all")
         g = basis.directional
         # neighbours: sites whose connecting channel passes no other site (by hand)
         hand = np.zeros((4, 4))
@@ -293,11 +293,11 @@ class TestBearing:
         n = 8
         g = neighbour_graph(np.column_stack([np.arange(n, dtype=float), np.zeros(n)]),
                             "delaunay")
-        east = D.aem_eigenvectors(D.bearing_graph(g, bearing=90.0), sign="all")
+        east = D.aem_eigenvectors(D.bearing_graph(g, bearing=90.0), keep="all")
         k = np.arange(1, n)
         # the origin edge of the first site plus n − 1 edges: E lower-triangular [derived]
         assert east.eigenvalues == pytest.approx(1 / (4 * np.sin(np.pi * k / (2 * n)) ** 2))
-        west = D.aem_eigenvectors(D.bearing_graph(g, bearing=270.0), sign="all")
+        west = D.aem_eigenvectors(D.bearing_graph(g, bearing=270.0), keep="all")
         np.testing.assert_allclose(np.abs(west.vectors.to_numpy()[::-1]),
                                    np.abs(east.vectors.to_numpy()), atol=1e-10)
         e = D.site_edge_matrix(D.bearing_graph(g, bearing=90.0))
@@ -332,7 +332,7 @@ class TestBearing:
             D.bearing_graph(g, bearing=float("nan"))
         with pytest.raises(InputError, match="network_distance"):
             D.site_edge_matrix(D.bearing_graph(g, bearing=10.0), weight_by="network_distance")
-        b = D.aem_eigenvectors(D.bearing_graph(g, bearing=10.0), sign="all")
+        b = D.aem_eigenvectors(D.bearing_graph(g, bearing=10.0), keep="all")
         assert b.method == "aem_bearing"
         with pytest.raises(InputError, match="river-network bases only"):
             b.extend([[0.5, 0.5]])
@@ -407,7 +407,7 @@ class TestValuesAlongTheNetwork:
 
     def test_between_two_sites_on_a_channel_values_are_interpolated(self):
         net = chain(6)
-        b = D.aem_eigenvectors(net, sign="all")
+        b = D.aem_eigenvectors(net, keep="all")
         pts = pd.DataFrame({"x": [2.25, 4.5], "y": [0.0, 0.0]})
         got = b.extend(pts).to_numpy()
         u = b.vectors.to_numpy()

@@ -52,7 +52,7 @@ class TestDistanceEigenvectors:
     def test_transect_n10_check_values(self):
         # REFERENCES [derived] from Borcard & Legendre 2002 (Ecol. Model. 153:51-68) and the
         # sparse equivalence of Dray et al. 2006 (Ecol. Model. 196:483-493).
-        b = distance_eigenvectors(_transect(10), sign="all")
+        b = distance_eigenvectors(_transect(10), keep="all")
         lam = b.pcoa_eigenvalues[b.pcoa_eigenvalues > 1e-9]
         assert np.allclose(lam, [20.6188, 18.2413, 14.2312, 10.4220, 5.8653, 1.9156], atol=1e-4)
         assert np.allclose(b.moran_i.to_numpy()[:6],
@@ -64,7 +64,7 @@ class TestDistanceEigenvectors:
         (_transect(100), 67, 49), (_transect(30), 20, 14), (_grid(10, 10), 69, 44)])
     def test_counts_of_positive_eigenvalues_and_moran(self, xy, n_pos_lambda, n_pos_i):
         # REFERENCES [derived]: transect n = 100 → 67 / 49, n = 30 → 20 / 14; grid 69 / 44.
-        b = distance_eigenvectors(xy, sign="all")
+        b = distance_eigenvectors(xy, keep="all")
         assert int((b.pcoa_eigenvalues > 1e-9 * b.pcoa_eigenvalues.max()).sum()) == n_pos_lambda
         assert distance_eigenvectors(xy).n_vectors == n_pos_i
         assert b.n_vectors == len(xy) - 1
@@ -74,7 +74,7 @@ class TestDistanceEigenvectors:
         # λ = 8t²(μ + 1) and identical eigenvectors [derived] vs the PCoA of the truncated
         # distance matrix (Borcard & Legendre 2002; Dray et al. 2006).
         xy = np.random.default_rng(seed).uniform(0, 100, size=(70, 2))
-        b = distance_eigenvectors(xy, sign="all", distance="euclidean")
+        b = distance_eigenvectors(xy, keep="all", distance="euclidean")
         t = mst_threshold(xy, distance="euclidean")
         assert b.threshold == t
         lam, u = _pcoa_truncated(xy, t)
@@ -231,7 +231,7 @@ class TestDistanceEigenvectors:
 
     def test_negative_and_finest_scale(self):
         xy = np.random.default_rng(SEEDS[0]).uniform(0, 1000, size=(300, 2))
-        neg = distance_eigenvectors(xy, sign="negative", distance="euclidean")
+        neg = distance_eigenvectors(xy, keep="negative", distance="euclidean")
         assert np.all(neg.moran_i < 0)
         fine = distance_eigenvectors(xy, finest_scale=250.0, distance="euclidean")
         allv = distance_eigenvectors(xy, distance="euclidean")
@@ -261,7 +261,7 @@ class TestGraphEigenvectors:
     def test_moran_bounds(self, xy, method, kw, imax, imin):
         # de Jong, Sprenger & van Veen 1984 (Geogr. Anal. 16:17-24) [memory]: bounds
         # (n/S₀)μ_max, (n/S₀)μ_min; values [derived] in REFERENCES.
-        b = graph_eigenvectors(neighbour_graph(xy, method, **kw), sign="all")
+        b = graph_eigenvectors(neighbour_graph(xy, method, **kw), keep="all")
         assert b.n_vectors == len(xy) - 1
         assert b.moran_i.iloc[0] == pytest.approx(imax, abs=1e-6)
         assert b.moran_i.iloc[-1] == pytest.approx(imin, abs=1e-6)
@@ -272,7 +272,7 @@ class TestGraphEigenvectors:
         ang = 2 * np.pi * np.arange(10) / 10
         g = neighbour_graph(np.column_stack([np.cos(ang), np.sin(ang)]) * 10, "k_nearest", k=2,
                             distance="euclidean")
-        b = graph_eigenvectors(g, sign="all")
+        b = graph_eigenvectors(g, keep="all")
         expected = np.sort(np.cos(2 * np.pi * np.r_[1, 1, 2, 2, 3, 3, 4, 4, 5] / 10))[::-1]
         assert np.allclose(b.moran_i.to_numpy(), expected, atol=1e-12)
         assert b.moran_i.iloc[0] == pytest.approx(0.809017, abs=1e-6)
@@ -315,16 +315,16 @@ class TestGraphEigenvectors:
 class TestInputValidation:
     def test_messages(self):
         xy = _grid(4, 4)
-        with pytest.raises(InputError, match="parameter `sign` must be one of"):
-            distance_eigenvectors(xy, sign="both")
+        with pytest.raises(InputError, match="parameter `keep` must be one of"):
+            distance_eigenvectors(xy, keep="both")
         with pytest.raises(InputError, match="parameter `solver` must be one of"):
             distance_eigenvectors(xy, solver="arpack")
         with pytest.raises(InputError, match="parameter `max_vectors` must be >= 1"):
             distance_eigenvectors(xy, max_vectors=0)
         with pytest.raises(InputError, match="give `max_vectors`"):
             distance_eigenvectors(xy, solver="sparse")
-        with pytest.raises(InputError, match="sign='all' needs every eigenvector"):
-            distance_eigenvectors(xy, solver="sparse", sign="all", max_vectors=3)
+        with pytest.raises(InputError, match="keep='all' needs every eigenvector"):
+            distance_eigenvectors(xy, solver="sparse", keep="all", max_vectors=3)
         with pytest.raises(InputError, match="must be a NeighbourGraph"):
             graph_eigenvectors(xy)
         with pytest.raises(InputError, match="no edges"):

@@ -39,7 +39,7 @@ PARAMETER_OPTIONS: dict[str, dict[str, str]] = {
     "check": {},
     "run": dict(_ANALYSIS_PARAMETERS),
     "demo": dict(_ANALYSIS_PARAMETERS),
-    "eigen": {"method": "--graph", "k": "--neighbours", "sign": "--autocorrelation"},
+    "eigen": {"method": "--graph", "k": "--neighbours"},
     "design": {"n_simulations": "--simulations", "n_permutations": "--permutations",
                "n_workers": "--workers"},
 }

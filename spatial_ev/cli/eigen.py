@@ -63,9 +63,11 @@ def configure(parser: argparse.ArgumentParser) -> None:
     basis.add_argument("--finest-scale", type=float, default=None, metavar="DIST",
                        help="keep vectors whose scale (equivalent wavelength, map units) is at "
                             "least DIST")
-    basis.add_argument("--autocorrelation", choices=("positive", "negative", "all"),
+    basis.add_argument("--keep", choices=("positive", "negative", "all"),
                        default="positive",
-                       help="keep vectors with positive Moran's I (default), negative, or all")
+                       help="which vectors to keep by the sign of their Moran's I: positive "
+                            "(default: patches and gradients), negative (contrasts between "
+                            "neighbours) or all")
     add_network_options(parser, one_basis=True)
     out = parser.add_argument_group("output")
     out.add_argument("--out", required=True, metavar="DIR", help="output folder to create")
@@ -101,7 +103,7 @@ def execute(args: argparse.Namespace) -> int:
         _refuse_straight_line_options(args)
     survey = survey_from_args(args)
     common = dict(max_vectors=args.max_vectors, finest_scale=args.finest_scale,
-                  sign=args.autocorrelation)
+                  keep=args.keep)
     network = network_from_args(args, survey)
     if directional:
         basis = _directional_basis(args, survey, network)
@@ -119,8 +121,8 @@ def execute(args: argparse.Namespace) -> int:
         basis = graph_eigenvectors(graph, weighting=args.weighting, exponent=args.exponent,
                                    max_distance=args.max_distance, **common)
     if basis.n_vectors == 0:
-        raise InputError("no spatial vector met the request (sign / finest scale); relax "
-                         "--finest-scale or choose --autocorrelation all")
+        raise InputError("no spatial vector met the request (--keep / --finest-scale); relax "
+                         "--finest-scale or choose --keep all")
     layer = gpd.GeoDataFrame(basis.vectors, geometry=survey.sites.geometry.reindex(
         basis.vectors.index), crs=survey.crs)
     layers = {"spatial_vectors": layer}
@@ -172,13 +174,13 @@ def _directional_basis(args: argparse.Namespace, survey, network):
     orientation = "against_flow" if args.against_flow else "with_flow"
     if network is not None and args.network_basis == "distance":
         return network_distance_eigenvectors(network, threshold=args.threshold,
-                                             sign=args.autocorrelation,
+                                             keep=args.keep,
                                              max_vectors=args.max_vectors)
     graph = network if network is not None else bearing_graph(
         neighbour_graph(survey, "delaunay"), bearing=args.bearing)
     return aem_eigenvectors(graph, orientation=orientation, weighting=name, exponent=exponent,
                             weight_by=args.weight_by, max_distance=args.max_distance,
-                            sign=args.autocorrelation, max_vectors=args.max_vectors)
+                            keep=args.keep, max_vectors=args.max_vectors)
 
 
 def _network_layers(basis, network, crs) -> dict:

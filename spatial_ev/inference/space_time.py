@@ -122,7 +122,7 @@ def temporal_eigenvectors(times: Any) -> pd.DataFrame:
                          f"{values.shape}")
     if not np.isfinite(values).all() or np.unique(values).size != values.size:
         raise InputError(f"`times` must be finite and distinct; got {values.tolist()}")
-    basis = distance_eigenvectors(np.column_stack([values, np.zeros_like(values)]), sign="all",
+    basis = distance_eigenvectors(np.column_stack([values, np.zeros_like(values)]), keep="all",
                                   solver="dense", distance="euclidean")
     lam = basis.pcoa_eigenvalues
     keep = lam > 1e-9 * lam.max()

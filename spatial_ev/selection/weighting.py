@@ -138,7 +138,7 @@ def compare_weighting_schemes(
     n_permutations: int = 999,
     seed: None | int | np.random.Generator = None,
     conditioning: Any = None,
-    sign: str = "positive",
+    keep: str = "positive",
     ceiling: str = "strict",
     max_vectors: int | None = None,
     engine: str = "local",
@@ -166,7 +166,7 @@ def compare_weighting_schemes(
         linear, concave_down, concave_up — the concave ones as ``"gabriel/concave_down:0.5"``
         with the exponent) or ``"distance"`` (distance-based eigenvectors). A mapping names
         each scheme and may give a prebuilt basis (e.g. a k-nearest-neighbour graph's, whose
-        ``sign`` is then the caller's choice). Default :data:`DEFAULT_SCHEMES` (8 schemes).
+        ``keep`` is then the caller's choice). Default :data:`DEFAULT_SCHEMES` (8 schemes).
     alpha : float, default 0.05
         Family-wise level.
     n_permutations : int, default 999
@@ -176,7 +176,7 @@ def compare_weighting_schemes(
         scheme's p-values do not depend on which other schemes are compared.
     conditioning : array-like or DataFrame, optional
         Variables removed first (all tests partial).
-    sign : {"positive", "negative", "all"}
+    keep : {"positive", "negative", "all"}
         Which eigenvectors are candidates (by the sign of their Moran's I).
     ceiling : {"strict", "keep_last"}
         Adjusted-R² stopping rule of the forward selections (see :func:`forward_selection`).
@@ -216,7 +216,7 @@ def compare_weighting_schemes(
     parsed = check_schemes(schemes)
     alpha = check_real("alpha", alpha, low=0, high=1, low_inclusive=False, high_inclusive=False)
     n_permutations = check_int("n_permutations", n_permutations, low=1)
-    check_option("sign", sign, ["positive", "negative", "all"])
+    check_option("keep", keep, ["positive", "negative", "all"])
     if max_vectors is not None:
         max_vectors = check_int("max_vectors", max_vectors, low=1)
     check_option("ceiling", ceiling, ["strict", "keep_last"])
@@ -244,7 +244,7 @@ def compare_weighting_schemes(
     # on worker engines each scheme is one task (its permutation tests run inside it); locally
     # the schemes run one after the other and their permutation batches use the threads
     run = SchemeRun(Yc=Yc, coords=coords, conditioning=cond, y_rows=y_rows, k=k, level=level,
-                    alpha=alpha, n_permutations=n_permutations, root=root, sign=sign,
+                    alpha=alpha, n_permutations=n_permutations, root=root, keep=keep,
                     ceiling=ceiling, max_vectors=max_vectors,
                     engine="local" if parallel else engine,
                     scheduler=None if parallel else scheduler,
@@ -308,7 +308,7 @@ class SchemeRun:
     alpha: float
     n_permutations: int
     root: np.random.SeedSequence
-    sign: str = "positive"
+    keep: str = "positive"
     ceiling: str = "strict"
     max_vectors: int | None = None
     engine: str = "local"
@@ -340,12 +340,12 @@ class SchemeRun:
                 if prebuilt is not None:
                     basis = prebuilt
                 elif graph_method is None:
-                    basis = distance_eigenvectors(self.coords, sign=self.sign,
+                    basis = distance_eigenvectors(self.coords, keep=self.keep,
                                                   max_vectors=self.max_vectors)
                 else:
                     graph = neighbour_graph(self.coords, method=graph_method)
                     basis = graph_eigenvectors(graph, weighting=weighting, exponent=exponent,
-                                               sign=self.sign, max_vectors=self.max_vectors)
+                                               keep=self.keep, max_vectors=self.max_vectors)
         except InputError as exc:  # recorded in the table, the scheme still counts in k
             row["note"] = f"not built: {exc}"
             return row, None, None

@@ -688,7 +688,7 @@ class NetworkBasis(SpatialBasis):
 def aem_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
                      orientation: str = "with_flow", weighting: str = "binary",
                      weight_by: str = "edge_length", exponent: float | None = None,
-                     max_distance: float | None = None, sign: str = "positive",
+                     max_distance: float | None = None, keep: str = "positive",
                      max_vectors: int | None = None, solver: str = "auto") -> NetworkBasis:
     """Asymmetric eigenvector maps (AEM) of a river network or a bearing-oriented graph.
 
@@ -698,15 +698,15 @@ def aem_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
         A river network is converted with :func:`river_graph`.
     orientation, weighting, weight_by, exponent, max_distance
         See :func:`site_edge_matrix`.
-    sign : {"positive", "negative", "all"}
+    keep : {"positive", "negative", "all"}
         Keep the vectors whose Moran's I (on the network neighbour graph) is positive
         (default), negative, or all of them. Names ``aem001``, … follow the rank by
         eigenvalue among all vectors, so a kept vector keeps its name.
     max_vectors : int, optional
-        Keep at most this many (largest eigenvalues first, after ``sign``).
+        Keep at most this many (largest eigenvalues first, after ``keep``).
     solver : {"auto", "dense", "sparse"}
         Dense eigensolver on C·Ẽ·Ẽᵀ·C (≤ 3000 sites under "auto") or Lanczos on the
-        implicitly centred Ẽ·Ẽᵀ (needs ``max_vectors``; ``sign="all"`` is refused).
+        implicitly centred Ẽ·Ẽᵀ (needs ``max_vectors``; ``keep="all"`` is refused).
 
     Returns
     -------
@@ -727,13 +727,13 @@ def aem_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
     >>> from spatial_ev.input.network import build_river_network
     >>> line = shapely.LineString([(0, 0), (10, 0)])
     >>> xy = pd.DataFrame({"x": [1.0, 3, 4, 6, 9], "y": 0.0}, index=list("abcde"))
-    >>> b = aem_eigenvectors(build_river_network([line], xy, snap_tolerance=1), sign="all")
+    >>> b = aem_eigenvectors(build_river_network([line], xy, snap_tolerance=1), keep="all")
     >>> b.eigenvalues.round(4).tolist()   # 1 / (4 sin²(πk/10)), k = 1..4 [derived]
     [2.618, 0.7236, 0.382, 0.2764]
     """
     if isinstance(graph, RiverNetwork):
         graph = river_graph(graph)
-    sign = check_option("sign", sign, _SIGNS)
+    keep = check_option("keep", keep, _SIGNS)
     solver = check_option("solver", solver, _SOLVERS)
     if max_vectors is not None:
         max_vectors = check_int("max_vectors", max_vectors, low=1)
@@ -742,7 +742,7 @@ def aem_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
     n = graph.n_sites
     if n < 3:
         raise InputError(f"an AEM needs at least 3 sites; got {n}")
-    solver = _pick_solver(solver, n, max_vectors, sign)
+    solver = _pick_solver(solver, n, max_vectors, keep)
     means = np.asarray(e.matrix.mean(axis=0)).ravel()
     if solver == "dense":
         # eigenvalues of C·Ẽ·Ẽᵀ·C by the dense solver of the MEM families (Ẽ·Ẽᵀ: shared
@@ -754,14 +754,14 @@ def aem_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
     names = np.array([f"aem{i + 1:03d}" for i in range(len(mu))])
     w = graph.neighbour_weights()
     moran = _moran(u, w)
-    keep = {"positive": moran > 0, "negative": moran < 0, "all": np.ones(len(mu), bool)}[sign]
-    mu, u, moran, names = mu[keep], u[:, keep], moran[keep], names[keep]
+    kept = {"positive": moran > 0, "negative": moran < 0, "all": np.ones(len(mu), bool)}[keep]
+    mu, u, moran, names = mu[kept], u[:, kept], moran[kept], names[kept]
     if max_vectors is not None:
         mu, u, moran, names = (mu[:max_vectors], u[:, :max_vectors], moran[:max_vectors],
                                names[:max_vectors])
     if len(mu) == 0:
-        raise InputError(f"no AEM vector has sign={sign!r} Moran's I on this network; use "
-                         f"sign='all'")
+        raise InputError(f"no AEM vector has {keep} Moran's I on this network; use "
+                         f"keep='all'")
     ec_t_u = np.asarray(e.matrix.T @ u) - np.outer(means, u.sum(axis=0))
     loadings = ec_t_u / mu
     scale = equivalent_wavelength(u, w, graph.neighbours, one_dimensional=graph.kind ==
@@ -809,7 +809,7 @@ def network_distances(graph: DirectionalGraph | RiverNetwork) -> pd.DataFrame:
 
 
 def network_distance_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
-                                  threshold: float | None = None, sign: str = "positive",
+                                  threshold: float | None = None, keep: str = "positive",
                                   max_vectors: int | None = None,
                                   solver: str = "auto") -> NetworkBasis:
     """Distance-based MEM of along-network distances (the symmetric alternative to AEM).
@@ -822,7 +822,7 @@ def network_distance_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
         Truncation distance t (map units along the network); default the longest edge of
         the minimum spanning tree of the along-network distances, the smallest t keeping all
         sites connected.
-    sign, max_vectors, solver
+    keep, max_vectors, solver
         As in :func:`spatial_ev.space.eigen.distance_eigenvectors`.
 
     Returns
@@ -846,14 +846,14 @@ def network_distance_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
     if not isinstance(graph, DirectionalGraph) or graph.kind != "river_network":
         raise InputError("`graph` must be a river network (RiverNetwork or river_graph); "
                          f"got {type(graph).__name__}")
-    sign = check_option("sign", sign, _SIGNS)
+    keep = check_option("keep", keep, _SIGNS)
     solver = check_option("solver", solver, _SOLVERS)
     if max_vectors is not None:
         max_vectors = check_int("max_vectors", max_vectors, low=1)
     n = graph.n_sites
     if n < 3:
         raise InputError(f"network eigenvectors need at least 3 sites; got {n}")
-    solver = _pick_solver(solver, n, max_vectors, sign)
+    solver = _pick_solver(solver, n, max_vectors, keep)
     if threshold is None:
         threshold = _network_mst_threshold(graph)
     else:
@@ -864,8 +864,8 @@ def network_distance_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
         mu, u = solve_dense(w, None, "LA")
     else:
         mu, u = _lanczos(_centred_similarity(w), max_vectors,
-                         "SA" if sign == "negative" else "LA")
-    mu, u = finish_vectors(mu, u, sign)
+                         "SA" if keep == "negative" else "LA")
+    mu, u = finish_vectors(mu, u, keep)
     if max_vectors is not None:
         mu, u = mu[:max_vectors], u[:, :max_vectors]
     names = pd.Index([f"ndb{k + 1:03d}" for k in range(len(mu))])
@@ -880,15 +880,15 @@ def network_distance_eigenvectors(graph: DirectionalGraph | RiverNetwork, *,
         solver=solver, coords=_site_xy(graph), metric="network", directional=graph)
 
 
-def _pick_solver(solver: str, n: int, max_vectors, sign: str) -> str:
+def _pick_solver(solver: str, n: int, max_vectors, keep: str) -> str:
     if solver == "auto":
         solver = "dense" if n <= DENSE_LIMIT else "sparse"
     if solver == "sparse":
         if max_vectors is None:
             raise InputError(f"{n} sites: the Lanczos solver computes only the broadest "
                              f"vectors; give `max_vectors` (e.g. 200), or solver='dense'")
-        if sign == "all":
-            raise InputError("sign='all' needs every eigenvector: use solver='dense'")
+        if keep == "all":
+            raise InputError("keep='all' needs every eigenvector: use solver='dense'")
     return solver
 
 
@@ -1069,7 +1069,7 @@ def river_schemes(network: RiverNetwork | DirectionalGraph, *,
                   orientations: tuple[str, ...] = ("with_flow",),
                   weightings: tuple[str, ...] = ("binary", "linear"),
                   weight_by: str = "edge_length", network_distance: bool = True,
-                  sign: str = "positive",
+                  keep: str = "positive",
                   max_vectors: int | None = None) -> dict[str, NetworkBasis]:
     """Named directional bases of a river network, ready to compare as weighting schemes.
 
@@ -1090,7 +1090,7 @@ def river_schemes(network: RiverNetwork | DirectionalGraph, *,
         What the non-binary weightings are a function of (see :func:`site_edge_matrix`).
     network_distance : bool
         Also the symmetric along-network distance-based basis.
-    sign, max_vectors
+    keep, max_vectors
         As in :func:`aem_eigenvectors`.
 
     Returns
@@ -1121,9 +1121,9 @@ def river_schemes(network: RiverNetwork | DirectionalGraph, *,
             weighting, exponent = _weighting_spec(spec)
             out[f"{prefix}/{spec}"] = aem_eigenvectors(
                 graph, orientation=orientation, weighting=weighting, exponent=exponent,
-                weight_by=weight_by, sign=sign, max_vectors=max_vectors)
+                weight_by=weight_by, keep=keep, max_vectors=max_vectors)
     if network_distance:
-        out["river_distance"] = network_distance_eigenvectors(graph, sign=sign,
+        out["river_distance"] = network_distance_eigenvectors(graph, keep=keep,
                                                               max_vectors=max_vectors)
     if not out:
         raise InputError("no scheme requested: give at least one orientation and weighting, "
@@ -1133,7 +1133,7 @@ def river_schemes(network: RiverNetwork | DirectionalGraph, *,
 
 def bearing_schemes(graph: NeighbourGraph, *, bearing: float,
                     orientations: tuple[str, ...] = ("with_flow",),
-                    weightings: tuple[str, ...] = ("binary",), sign: str = "positive",
+                    weightings: tuple[str, ...] = ("binary",), keep: str = "positive",
                     max_vectors: int | None = None) -> dict[str, NetworkBasis]:
     """Named AEM bases of a neighbour graph oriented along a bearing (currents, winds).
 
@@ -1147,7 +1147,7 @@ def bearing_schemes(graph: NeighbourGraph, *, bearing: float,
     graph : NeighbourGraph
     bearing : float
         Direction of travel, degrees clockwise from grid north.
-    orientations, weightings, sign, max_vectors
+    orientations, weightings, keep, max_vectors
         As in :func:`river_schemes`.
 
     Returns
@@ -1174,7 +1174,7 @@ def bearing_schemes(graph: NeighbourGraph, *, bearing: float,
             weighting, exponent = _weighting_spec(spec)
             out[f"{prefix}/{spec}"] = aem_eigenvectors(
                 directed, orientation=orientation, weighting=weighting, exponent=exponent,
-                sign=sign, max_vectors=max_vectors)
+                keep=keep, max_vectors=max_vectors)
     if not out:
         raise InputError("no scheme requested: give at least one orientation and weighting")
     return out

@@ -258,11 +258,12 @@ def _solve_sparse(w: sparse.csr_matrix, k: int, which: str) -> tuple[np.ndarray,
     return mu[order], u[:, order]
 
 
-def finish_vectors(mu: np.ndarray, u: np.ndarray, sign: str) -> tuple[np.ndarray, np.ndarray]:
-    """Keep the wanted sign, order by decreasing μ, centre, normalise, fix signs."""
+def finish_vectors(mu: np.ndarray, u: np.ndarray, keep: str) -> tuple[np.ndarray, np.ndarray]:
+    """Keep the vectors of the wanted Moran's I sign (``keep``), order by decreasing μ,
+    centre, normalise, fix signs."""
     tol = 1e-9 * max(float(np.abs(mu).max(initial=0.0)), 1e-300)
-    keep = {"positive": mu > tol, "negative": mu < -tol, "all": np.ones(len(mu), bool)}[sign]
-    mu, u = mu[keep], u[:, keep]
+    kept = {"positive": mu > tol, "negative": mu < -tol, "all": np.ones(len(mu), bool)}[keep]
+    mu, u = mu[kept], u[:, kept]
     order = np.argsort(-mu, kind="stable")
     mu, u = mu[order], u[:, order]
     u = u - u.mean(axis=0)
@@ -382,8 +383,8 @@ def _count_for_scale(layout: Layout, finest_scale: float) -> int:
 
 # ---------------------------------------------------------------- public functions
 
-def _check_basis_options(n: int, max_vectors, finest_scale, sign, solver):
-    sign = check_option("sign", sign, _SIGNS)
+def _check_basis_options(n: int, max_vectors, finest_scale, keep, solver):
+    keep = check_option("keep", keep, _SIGNS)
     solver = check_option("solver", solver, _SOLVERS)
     if max_vectors is not None:
         max_vectors = check_int("max_vectors", max_vectors, low=1)
@@ -396,32 +397,32 @@ def _check_basis_options(n: int, max_vectors, finest_scale, sign, solver):
             raise InputError(f"{n} sites: the Lanczos solver computes only the broadest vectors;"
                              " give `max_vectors` (e.g. 200) or `finest_scale` (map units), or "
                              "solver='dense' (needs O(n²) memory)")
-        if sign == "all":
-            raise InputError("sign='all' needs every eigenvector: use solver='dense', or ask "
-                             "for sign='positive' or 'negative' with the sparse solver")
+        if keep == "all":
+            raise InputError("keep='all' needs every eigenvector: use solver='dense', or ask "
+                             "for keep='positive' or 'negative' with the sparse solver")
         if n < 4:
             raise InputError(f"solver='sparse' needs at least 4 sites; got {n}")
-    return max_vectors, finest_scale, sign, solver
+    return max_vectors, finest_scale, keep, solver
 
 
 def _basis(w: sparse.csr_matrix, layout: Layout, lengths: sparse.spmatrix,
            raw_weights: sparse.spmatrix,
-           *, max_vectors, finest_scale, sign, solver, **fields) -> SpatialBasis:
+           *, max_vectors, finest_scale, keep, solver, **fields) -> SpatialBasis:
     n = layout.n
     if w.nnz == 0:
         raise InputError("the similarity matrix has no edges: no spatial structure can be "
                          "described; use a larger threshold or another graph")
-    which = "SA" if sign == "negative" else "LA"
+    which = "SA" if keep == "negative" else "LA"
     k = max_vectors
     if finest_scale is not None:
         k_scale = min(n - 1, int(1.25 * _count_for_scale(layout, finest_scale)) + 10)
         k = k_scale if k is None else min(k, k_scale)
     while True:
         if solver == "dense":
-            mu, u = solve_dense(w, None if sign == "all" else k, which)
+            mu, u = solve_dense(w, None if keep == "all" else k, which)
         else:
             mu, u = _solve_sparse(w, k, which)
-        mu, u = finish_vectors(mu, u, sign)
+        mu, u = finish_vectors(mu, u, keep)
         scale = _scales(u, mu, w, lengths, raw_weights, layout.collinear)
         if finest_scale is None:
             break
@@ -448,7 +449,7 @@ def _basis(w: sparse.csr_matrix, layout: Layout, lengths: sparse.spmatrix,
 
 def distance_eigenvectors(coords: Any, *, threshold: float | None = None,
                           max_vectors: int | None = None, finest_scale: float | None = None,
-                          sign: str = "positive", solver: str = "auto",
+                          keep: str = "positive", solver: str = "auto",
                           distance: str = "auto") -> SpatialBasis:
     """Distance-based MEM (PCNM): eigenvectors of the truncated distance matrix.
 
@@ -464,7 +465,7 @@ def distance_eigenvectors(coords: Any, *, threshold: float | None = None,
         on the sparse path.
     finest_scale : float, optional
         Keep only vectors whose ``scale`` (equivalent wavelength, map units) is at least this.
-    sign : {"positive", "negative", "all"}
+    keep : {"positive", "negative", "all"}
         Keep vectors with positive Moran's I (default; the MEM view), negative, or all n − 1.
         Note PCNM's "positive PCoA eigenvalue" set (λ > 0, i.e. μ > −1) also holds some
         negatively autocorrelated vectors; use ``pcoa_eigenvalues`` to recover it.
@@ -493,8 +494,8 @@ def distance_eigenvectors(coords: Any, *, threshold: float | None = None,
     (4, 0.93473)
     """
     layout = check_coordinates(coords, distance=distance)
-    max_vectors, finest_scale, sign, solver = _check_basis_options(
-        layout.n, max_vectors, finest_scale, sign, solver)
+    max_vectors, finest_scale, keep, solver = _check_basis_options(
+        layout.n, max_vectors, finest_scale, keep, solver)
     if threshold is None:
         threshold = mst_threshold(layout)
     else:
@@ -502,7 +503,7 @@ def distance_eigenvectors(coords: Any, *, threshold: float | None = None,
     i, j, d = band_pairs(layout, threshold)
     w = symmetric_matrix(layout.n, i, j, 1.0 - (d / (4.0 * threshold)) ** 2)
     basis = _basis(w, layout, symmetric_matrix(layout.n, i, j, d), w,
-                   max_vectors=max_vectors, finest_scale=finest_scale, sign=sign,
+                   max_vectors=max_vectors, finest_scale=finest_scale, keep=keep,
                    solver=solver, method="distance_based", threshold=threshold)
     # a frozen result: the PCoA eigenvalues go into a new instance, never set afterwards
     return replace(basis, pcoa_eigenvalues=8.0 * threshold ** 2 * (basis.eigenvalues + 1.0))
@@ -528,7 +529,7 @@ def _check_zero_weights(graph: NeighbourGraph, w: sparse.csr_matrix, weighting: 
 def graph_eigenvectors(graph: NeighbourGraph, *, weighting: str = "binary",
                        exponent: float | None = None, max_distance: float | None = None,
                        max_vectors: int | None = None, finest_scale: float | None = None,
-                       sign: str = "positive", solver: str = "auto") -> SpatialBasis:
+                       keep: str = "positive", solver: str = "auto") -> SpatialBasis:
     """Graph-based MEM: eigenvectors of C·W·C for W = connectivity ∘ edge weights.
 
     Parameters
@@ -537,7 +538,7 @@ def graph_eigenvectors(graph: NeighbourGraph, *, weighting: str = "binary",
         From :func:`spatial_ev.space.graphs.neighbour_graph`.
     weighting, exponent, max_distance
         Edge weighting (see :meth:`NeighbourGraph.weights`).
-    max_vectors, finest_scale, sign, solver
+    max_vectors, finest_scale, keep, solver
         As in :func:`distance_eigenvectors`.
 
     Returns
@@ -557,8 +558,8 @@ def graph_eigenvectors(graph: NeighbourGraph, *, weighting: str = "binary",
         raise InputError("`graph` must be a NeighbourGraph (from neighbour_graph); got "
                          f"{type(graph).__name__}")
     weighting, exponent, _ = check_weighting(graph, weighting, exponent, max_distance)
-    max_vectors, finest_scale, sign, solver = _check_basis_options(
-        graph.n_sites, max_vectors, finest_scale, sign, solver)
+    max_vectors, finest_scale, keep, solver = _check_basis_options(
+        graph.n_sites, max_vectors, finest_scale, keep, solver)
     full = graph.weights(weighting, exponent=exponent, max_distance=max_distance)
     w = full.copy()
     w.eliminate_zeros()
@@ -568,7 +569,7 @@ def graph_eigenvectors(graph: NeighbourGraph, *, weighting: str = "binary",
     layout = layout._replace(site_ids=graph.site_ids)
     self_weight = 1.0 if weighting != "concave_up" else float(w.data.max())
     basis = _basis(w, layout, graph.lengths, full, max_vectors=max_vectors,
-                   finest_scale=finest_scale, sign=sign, solver=solver, method=graph.method,
+                   finest_scale=finest_scale, keep=keep, solver=solver, method=graph.method,
                    threshold=graph.threshold, weighting=weighting, exponent=exponent,
                    graph=graph, self_weight=self_weight,
                    max_distance=graph.longest_edge if max_distance is None else max_distance)

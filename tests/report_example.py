@@ -78,14 +78,14 @@ def example_context(*, seed: int = 20261202) -> dict[str, Any]:
     centred = hellinger - hellinger.mean(axis=0)
     total_variance = float((centred ** 2).sum() / (n - 1))
 
-    # an RDA-like ordination of the synthetic table on three variables (illustrative scores)
+    # a redundancy-analysis-like ordination of the synthetic table on three variables (illustrative scores)
     chosen_env = ["soil_moisture", "soil_pH", "canopy_cover"]
     xs = environment[chosen_env].to_numpy()
     xs = (xs - xs.mean(axis=0)) / xs.std(axis=0)
     coef, *_ = np.linalg.lstsq(xs, centred, rcond=None)
     fitted = xs @ coef
     left, sing, right_t = np.linalg.svd(fitted, full_matrices=False)
-    axes = ["RDA1", "RDA2", "RDA3"]
+    axes = ["canonical_1", "canonical_2", "canonical_3"]  # the library's own axis names
     eigenvalues = pd.Series(sing[:3] ** 2 / (n - 1), index=axes)
     site_fit = fitted @ right_t[:3].T
     biplot = np.array([[np.corrcoef(xs[:, j], site_fit[:, k])[0, 1] for k in range(3)]

@@ -78,7 +78,7 @@ def example_context(*, seed: int = 20261202) -> dict[str, Any]:
     centred = hellinger - hellinger.mean(axis=0)
     total_variance = float((centred ** 2).sum() / (n - 1))
 
-    # a redundancy-analysis-like ordination of the synthetic table on three variables (illustrative scores)
+    # an RDA-like ordination of the synthetic table on three variables (illustrative scores)
     chosen_env = ["soil_moisture", "soil_pH", "canopy_cover"]
     xs = environment[chosen_env].to_numpy()
     xs = (xs - xs.mean(axis=0)) / xs.std(axis=0)

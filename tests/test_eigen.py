@@ -351,3 +351,37 @@ class TestGreatCircle:
         assert sphere.threshold == pytest.approx(plane.threshold, rel=1e-5)
         assert np.allclose(sphere.moran_i, plane.moran_i, rtol=1e-4)
         assert np.allclose(sphere.scale, plane.scale, rtol=1e-3)
+
+
+class TestExtendAtEigenvalueMinusOne:
+    def test_binary_gabriel_grid_reproduces_its_sites(self):
+        """4 x 4 integer grid, Gabriel graph = the lattice (networkx grid_2d_graph as the
+        oracle). The lattice is the Cartesian product of two 4-site paths, whose adjacency
+        eigenvalues are 2cos(kπ/5) (Cvetković, Doob & Sachs 1980, Spectra of Graphs), so it has
+        2cos(2π/5) + 2cos(4π/5) = −1 exactly [derived], twice, on vectors orthogonal to the
+        constant; the Nyström form divides by μ + 1 there. At the sites the extension must
+        still be the vectors themselves."""
+        import networkx as nx
+
+        xy = np.array([[i, j] for i in range(4) for j in range(4)], dtype=float)
+        graph = neighbour_graph(xy, "gabriel")
+        lattice = nx.grid_2d_graph(4, 4)
+        index = {(int(x), int(y)): k for k, (x, y) in enumerate(xy)}
+        expected = {tuple(sorted((index[a], index[b]))) for a, b in lattice.edges}
+        w = graph.weights("binary").tocoo()
+        assert {tuple(sorted(e)) for e in zip(w.row.tolist(), w.col.tolist())} == expected
+        basis = graph_eigenvectors(graph, keep="all")
+        minus_one = np.isclose(basis.eigenvalues, -1.0, atol=1e-12)
+        assert minus_one.sum() == 2
+        at_sites = basis.extend(xy)
+        assert np.isfinite(at_sites.to_numpy()).all()
+        np.testing.assert_allclose(at_sites.to_numpy(), basis.vectors.to_numpy(), atol=1e-12)
+        # between sites those two vectors cannot be extended; the others can
+        between = basis.extend(np.array([[0.5, 0.5], [1.5, 2.0]])).to_numpy()
+        assert np.isnan(between[:, minus_one]).all() and np.isfinite(between[:, ~minus_one]).all()
+
+    def test_distance_based_point_on_a_site(self):
+        xy = np.array([[i, j] for i in range(4) for j in range(4)], dtype=float)
+        basis = distance_eigenvectors(xy, keep="all")
+        np.testing.assert_allclose(basis.extend(xy).to_numpy(), basis.vectors.to_numpy(),
+                                   atol=1e-12)

@@ -146,7 +146,9 @@ class SpatialBasis:
         reproduces the vector exactly. Distance-based: k_p = 1 − (d/4t)² for d ≤ t.
         Graph-based: the point gets the edges it would have if inserted in the graph (see
         :func:`spatial_ev.space.graphs.insertion_neighbours`), weighted alike. Vectors with
-        μ_k + c near 0 (strongly negative Moran's I) are unstable and returned as NaN.
+        μ_k + c near 0 (strongly negative Moran's I; exactly −1 is common for binary graphs
+        on regular layouts) cannot be extended: NaN at new points, the site's own value at a
+        point on a site.
 
         Examples
         --------
@@ -160,6 +162,7 @@ class SpatialBasis:
         c = self.self_weight
         if self.method == "distance_based":
             kp = _distance_kernel_rows(self, new_xy)
+            coincident = _coincident_sites(self, new_xy)
         else:
             p, s, d, coincident = insertion_neighbours(self.graph, new_xy)
             w = edge_weight_values(d, self.weighting, self.exponent, self.max_distance or 1.0) \
@@ -174,8 +177,14 @@ class SpatialBasis:
             kp = base + sel @ rows + self_part
         row_mean = (np.asarray(self.weights.sum(axis=1)).ravel() + c) / n
         denom = self.eigenvalues + c
-        values = (kp @ u - row_mean @ u) / np.where(np.abs(denom) > 1e-8 * max(c, 1e-300),
-                                                    denom, np.nan)
+        singular = np.abs(denom) <= 1e-8 * max(c, 1e-300)
+        values = (kp @ u - row_mean @ u) / np.where(singular, np.nan, denom)
+        # μ_k + c = 0 (e.g. μ_k = −1 for a binary graph) leaves the Nyström form 0/0; at a
+        # point on a site the vector's value there is known: the site's own
+        hit = np.flatnonzero(coincident >= 0)
+        if singular.any() and hit.size:
+            values[np.ix_(hit, np.flatnonzero(singular))] = \
+                u[np.ix_(coincident[hit], np.flatnonzero(singular))]
         return pd.DataFrame(values, index=new_ids, columns=self.vectors.columns)
 
 
@@ -194,6 +203,16 @@ def _check_new_coords(new_coords: Any) -> tuple[np.ndarray, pd.Index]:
     if xy.ndim != 2 or xy.shape[1] != 2 or not np.isfinite(xy).all():
         raise InputError(f"`new_coords` must be a finite (m, 2) array; got shape {xy.shape}")
     return xy, pd.RangeIndex(len(xy), name="point")
+
+
+def _coincident_sites(basis: SpatialBasis, new_xy: np.ndarray) -> np.ndarray:
+    """Site each point coincides with (within 1e-9 of the layout's extent, the rule of
+    :func:`spatial_ev.space.graphs.insertion_neighbours`), −1 where none."""
+    layout = check_coordinates(basis.coords, distance=basis.metric)
+    new = layout_points(layout, new_xy)
+    extent = max(np.ptp(layout.points, axis=0).max(), 1e-300)
+    nearest_d, nearest = cKDTree(layout.points).query(new, k=1)
+    return np.where(nearest_d <= 1e-9 * extent, nearest, -1)
 
 
 def _distance_kernel_rows(basis: SpatialBasis, new_xy: np.ndarray) -> sparse.csr_matrix:
@@ -429,8 +448,8 @@ def _basis(w: sparse.csr_matrix, layout: Layout, lengths: sparse.spmatrix,
         enough = (scale.size == 0 or scale.min() < finest_scale or len(mu) < (k or n) * 0.8
                   or (k or n) >= n - 2 or (max_vectors is not None and k >= max_vectors))
         if enough:
-            keep = scale >= finest_scale
-            mu, u, scale = mu[keep], u[:, keep], scale[keep]
+            fine_enough = scale >= finest_scale
+            mu, u, scale = mu[fine_enough], u[:, fine_enough], scale[fine_enough]
             if max_vectors is not None:
                 mu, u, scale = mu[:max_vectors], u[:, :max_vectors], scale[:max_vectors]
             break

@@ -232,8 +232,12 @@ class TestWorkedExample:
         section = _own_files_section()
         documented = set(re.findall(r"^\| `([^`]+)` \|", section, re.M))
         written = {str(p.relative_to(out)) for p in out.rglob("*")
-                   if p.is_file() and p.parent.name != "figures"}
+                   if p.is_file() and p.parent.name not in ("figures", "inputs")}
         assert written - documented == set(), "files written but not described in the guide"
+        assert "inputs/" in documented
+        copied = {p.name for p in (out / "inputs").iterdir()}
+        assert {Path(argv[argv.index(f"--{role}") + 1]).name
+                for role in ("sites", "species", "environment")} == copied
         assert {"report.html", "summary.json", "manifest.json", "maps.gpkg",
                 "tables/fractions.csv"} <= written
         assert (out / "figures").is_dir()

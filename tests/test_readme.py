@@ -175,3 +175,70 @@ class TestHooksInASession:
     def test_unclear_value_stops_the_session(self, session):
         result = session(chromium_present=True, **{RUN_SLOW: "yes"})
         assert result.ret == pytest.ExitCode.USAGE_ERROR
+
+
+# ------------------------------------------------------------- the README's quoted demo numbers
+
+def _readme_demo_table(text: str) -> dict[str, tuple[float, float | None]]:
+    section = text.split("## The demo survey recovers its truth", 1)[1].split("\n## ", 1)[0]
+    rows = {}
+    for key, label in (("environment_only", "[a]"), ("shared", "[b]"),
+                       ("space_only", "[c]"), ("unexplained", "[d]")):
+        line = next(row for row in section.splitlines() if row.startswith(f"| {label}"))
+        cells = [c.strip() for c in line.strip("|").split("|")]
+        estimate = re.match(r"(-?\d+\.\d+)(?: \(p = (\d+\.\d+)\))?", cells[2])
+        rows[key] = (float(estimate.group(1)),
+                     float(estimate.group(2)) if estimate.group(2) else None)
+    return rows
+
+
+def test_demo_table_is_what_the_quick_start_demo_prints(repo_root, tmp_path, capsys):
+    """The README's demo table comes from `spatial-ev demo` (the Quick start's command, 999
+    permutations, the demo's fixed seed): run it and compare every quoted number."""
+    import json
+
+    from spatial_ev.cli.main import main
+
+    assert main(["demo", "--out", str(tmp_path / "demo-run")]) == 0
+    printed = capsys.readouterr().out
+    summary = json.loads((tmp_path / "demo-run" / "summary.json").read_text(encoding="utf-8"))
+    quoted = _readme_demo_table((repo_root / "README.md").read_text(encoding="utf-8"))
+    for key, (value, p) in quoted.items():
+        assert round(summary["fractions"][key], 3) == value, key
+        assert f"{key.replace('_', ' ')} {value:.3f}" in printed, key
+        if p is not None:
+            assert round(summary["fraction_tests"][key]["p"], 3) == p, key
+    assert summary["permutations"] == 999 and summary["seed"] == 20240917
+    assert "permutations, seed 20240917" in (repo_root / "README.md").read_text(encoding="utf-8")
+
+
+def test_validation_numbers_are_those_of_the_published_study(repo_root):
+    """The README's type I and power numbers are the rates of validation/error_rates.md (written
+    by `python validation/error_rates.py --replicates 2000 --permutations 199 --seed 20261202`),
+    rounded half up to three decimals."""
+    from decimal import ROUND_HALF_UP, Decimal
+
+    readme = (repo_root / "README.md").read_text(encoding="utf-8")
+    study = (repo_root / "validation" / "error_rates.md").read_text(encoding="utf-8")
+    assert "--replicates 2000 --permutations 199 --seed 20261202" in study
+
+    def rate(study_row: str, layout: str) -> str:
+        line = next(r for r in study.splitlines()
+                    if r.startswith(f"| {study_row}") and f"| {layout} |" in r)
+        value = Decimal(line.split("|")[5].strip())
+        return str(value.quantize(Decimal("0.001"), rounding=ROUND_HALF_UP))
+
+    def quoted(readme_row: str) -> list[str]:
+        line = next(r for r in readme.splitlines() if r.startswith(f"| {readme_row}"))
+        return [c.strip() for c in line.strip("|").split("|")[1:]]
+
+    for readme_row, study_row in (
+            ("type I: global test of all positive-I MEM", "type I: global test of"),
+            ("type I: forward selection with global test", "type I: forward selection"),
+            ("type I: environment-only fraction [a]", "type I: environment-only fraction")):
+        assert quoted(readme_row) == [rate(study_row, "grid"), rate(study_row, "irregular")]
+    text = " ".join(readme.split())
+    assert f"from {rate('power: broad structure', 'grid 6×6')} (6 × 6 grid) to " \
+           f"{rate('power: broad structure', 'grid 10×10')} (10 × 10)" in text
+    assert f"6 × 6 grid ({rate('power: fine structure', 'grid 6×6')})" in text
+    assert f"10 × 10 grid ({rate('power: fine structure', 'grid 10×10')})" in text

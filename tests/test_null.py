@@ -210,6 +210,8 @@ class TestRunOptions:
             RunOptions.checked(9, engine="spark")
         with pytest.raises(InputError, match="only used with engine='dask'"):
             RunOptions.checked(9, scheduler="tcp://127.0.0.1:8786")
+        with pytest.raises(InputError, match="engine='processes'"):
+            RunOptions.checked(9, engine="processes", scheduler="tcp://127.0.0.1:8786")
         with pytest.raises(InputError, match="n_workers"):
             RunOptions.checked(9, n_workers=0)
         with pytest.raises(InputError, match="progress"):

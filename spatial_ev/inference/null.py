@@ -426,9 +426,9 @@ class RunOptions:
         engine = check_option("engine", engine, ENGINES)
         if n_workers is not None:
             n_workers = check_int("n_workers", n_workers, low=1)
-        if engine == "local" and scheduler is not None:
+        if engine != "dask" and scheduler is not None:
             raise InputError("parameter `scheduler` is only used with engine='dask'; got "
-                             f"{scheduler!r} with engine='local'")
+                             f"{scheduler!r} with engine={engine!r}")
         if scheduler is not None and not isinstance(scheduler, str) \
                 and type(scheduler).__name__ != "Client":
             raise InputError("parameter `scheduler` must be a scheduler address such as "

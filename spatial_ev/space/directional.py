@@ -50,7 +50,7 @@ from spatial_ev._validation import check_int, check_option, check_real
 from spatial_ev.errors import InputError
 from spatial_ev.input.network import RiverNetwork
 from spatial_ev.space.eigen import DENSE_LIMIT, SpatialBasis, finish_vectors, solve_dense
-from spatial_ev.space.graphs import NeighbourGraph, edge_weight_values
+from spatial_ev.space.graphs import NeighbourGraph, check_weighting_exponent, edge_weight_values
 
 __all__ = ["DirectionalGraph", "river_graph", "bearing_graph", "SiteEdgeMatrix",
            "site_edge_matrix", "NetworkBasis", "aem_eigenvectors", "network_distances",
@@ -520,14 +520,7 @@ def site_edge_matrix(graph: DirectionalGraph, *, orientation: str = "with_flow",
 def _check_edge_weighting(graph, weighting, exponent, weight_by, max_distance):
     weighting = check_option("weighting", weighting, EDGE_WEIGHTINGS)
     weight_by = check_option("weight_by", weight_by, WEIGHT_BY)
-    if weighting in ("concave_down", "concave_up"):
-        if exponent is None:
-            raise InputError(f"weighting={weighting!r} needs `exponent` (a number > 0, e.g. "
-                             "0.5, 1 or 2); got None")
-        exponent = check_real("exponent", exponent, low=0, low_inclusive=False)
-    elif exponent is not None:
-        raise InputError(f"`exponent` applies only to the concave weightings; got "
-                         f"exponent={exponent!r} with weighting={weighting!r}; drop it")
+    exponent = check_weighting_exponent(weighting, exponent)
     if max_distance is not None:
         if weighting == "binary":
             raise InputError("`max_distance` applies to the linear and concave weightings; "

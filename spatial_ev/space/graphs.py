@@ -30,7 +30,8 @@ from spatial_ev.space.geometry import (REL_TOL, Layout, band_pairs, check_coordi
                                        layout_points, mst_edges, pair_lengths, symmetric_matrix)
 
 __all__ = ["NeighbourGraph", "neighbour_graph", "insertion_neighbours", "edge_weight_values",
-           "check_weighting", "METHODS", "WEIGHTINGS"]
+           "check_weighting", "check_weighting_exponent", "METHODS",
+           "WEIGHTINGS"]
 
 METHODS = ("delaunay", "gabriel", "relative_neighbourhood", "minimum_spanning_tree",
            "k_nearest", "distance_band", "contiguity")
@@ -147,17 +148,30 @@ class NeighbourGraph:
         return w
 
 
-def check_weighting(graph: NeighbourGraph, weighting: str, exponent: Any,
-                     max_distance: Any) -> tuple[str, float | None, float]:
-    weighting = check_option("weighting", weighting, WEIGHTINGS)
+def check_weighting_exponent(weighting: str, exponent: Any) -> float | None:
+    """The exponent of a concave edge weighting: required (> 0) for ``concave_down`` and
+    ``concave_up``, refused for the others.
+
+    Examples
+    --------
+    >>> check_weighting_exponent("concave_down", 0.5), check_weighting_exponent("linear", None)
+    (0.5, None)
+    """
     if weighting in ("concave_down", "concave_up"):
         if exponent is None:
             raise InputError(f"weighting={weighting!r} needs `exponent` (a number > 0, e.g. "
                              "0.5, 1 or 2); got None")
-        exponent = check_real("exponent", exponent, low=0, low_inclusive=False)
-    elif exponent is not None:
+        return check_real("exponent", exponent, low=0, low_inclusive=False)
+    if exponent is not None:
         raise InputError(f"`exponent` applies only to the concave weightings; got "
                          f"exponent={exponent!r} with weighting={weighting!r}; drop it")
+    return None
+
+
+def check_weighting(graph: NeighbourGraph, weighting: str, exponent: Any,
+                     max_distance: Any) -> tuple[str, float | None, float]:
+    weighting = check_option("weighting", weighting, WEIGHTINGS)
+    exponent = check_weighting_exponent(weighting, exponent)
     d_max = graph.longest_edge
     if max_distance is not None:
         max_distance = check_real("max_distance", max_distance, low=0, low_inclusive=False)

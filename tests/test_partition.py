@@ -250,5 +250,5 @@ class TestPartitionValidation:
     def test_options(self):
         with pytest.raises(InputError, match=r"`n_permutations` must be >= 0; got -1"):
             partition_variation(self.Y, {"X": self.X, "W": self.W}, n_permutations=-1)
-        with pytest.raises(InputError, match=r"`engine` must be one of 'local', 'dask'"):
+        with pytest.raises(InputError, match=r"`engine` must be one of 'local', 'processes', 'dask'"):
             partition_variation(self.Y, {"X": self.X, "W": self.W}, engine="cloud")

@@ -7,7 +7,8 @@ pass on a machine with nothing but Python, and CI must run everything:
 * ``browser`` tests need headless Chromium. Where it is missing they skip with a one-line
   reason; with ``SPATIAL_EV_REQUIRE_BROWSER=1`` (set by ``.ci/run``, which installs Chromium)
   a missing browser fails them instead.
-* ``slow`` tests are seeded statistical studies (minutes). They skip with a one-line reason
+* ``slow`` tests are seeded statistical studies and end-to-end runs (notebooks, the demo
+  command) that take tens of seconds to minutes. They skip with a one-line reason
   unless ``SPATIAL_EV_RUN_SLOW=1`` (set by ``.ci/run``).
 
 Both variables accept ``1`` (on) or ``0`` / empty / unset (off); any other value stops the
@@ -58,7 +59,7 @@ def marker_decision(markers: set[str], environ: Mapping[str, str],
     """What to do with a test carrying ``markers``: None (run it), ("skip", reason) or
     ("fail", reason). ``chromium`` is asked (lazily) why the browser is unavailable."""
     if "slow" in markers and not switch_is_on(environ, RUN_SLOW):
-        return "skip", f"slow statistical study; set {RUN_SLOW}=1 to run it (CI does)"
+        return "skip", f"slow study or end-to-end run; set {RUN_SLOW}=1 to run it (CI does)"
     if "browser" in markers:
         problem = chromium()
         if problem is not None:

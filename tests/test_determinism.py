@@ -77,6 +77,7 @@ class TestRepeatedRuns:
         assert not np.array_equal(b.trend.null_distribution, a.trend.null_distribution)
         pd.testing.assert_series_equal(c.beta.p_value, a.beta.p_value)
 
+    @pytest.mark.slow   # two whole runs on two engines; CI runs it
     def test_run_folder_summary_json_identical(self, tmp_path, cluster):
         """Two local runs, one on a dask cluster and two on 1 and 2 local worker processes
         write the same summary.json, byte for byte (the engine is recorded in manifest.json,

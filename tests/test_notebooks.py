@@ -69,6 +69,7 @@ def out_folder(tmp_path_factory):
     return tmp_path_factory.mktemp("executed_notebooks")
 
 
+@pytest.mark.slow          # executes every notebook end to end (about a minute); CI runs it
 class TestNotebooksRun:
     @pytest.mark.parametrize("name", EXPECTED)
     def test_runs_without_error(self, name, out_folder):

@@ -306,6 +306,7 @@ class TestSequentialDecision:
             else:
                 assert out.p_value == fixed and out.n_used == 999
 
+    @pytest.mark.slow   # a seeded simulation of the decision risk; CI runs it
     def test_risk_bound_at_the_boundary(self):
         # p over all permutations exactly α (exceedances Bernoulli(α)): the chance of an early
         # significant stop is at most ε (Gandy 2009); 4000 streams, binomial 99.9 % margin

@@ -159,7 +159,7 @@ class TestHooksInASession:
     def test_readme_command_on_a_bare_machine(self, session):
         result = session(chromium_present=False)
         result.assert_outcomes(passed=1, skipped=2)
-        result.stdout.fnmatch_lines([f"SKIPPED*slow statistical study; set {RUN_SLOW}=1*",
+        result.stdout.fnmatch_lines([f"SKIPPED*slow study or end-to-end run; set {RUN_SLOW}=1*",
                                      f"SKIPPED*sets {REQUIRE_BROWSER}=1"])
 
     def test_ci_with_chromium_runs_everything(self, session):
@@ -192,6 +192,7 @@ def _readme_demo_table(text: str) -> dict[str, tuple[float, float | None]]:
     return rows
 
 
+@pytest.mark.slow   # runs the Quick start's demo (999 permutations); CI runs it
 def test_demo_table_is_what_the_quick_start_demo_prints(repo_root, tmp_path, capsys):
     """The README's demo table comes from `spatial-ev demo` (the Quick start's command, 999
     permutations, the demo's fixed seed): run it and compare every quoted number."""

@@ -11,6 +11,7 @@ naming the file.
 from __future__ import annotations
 
 import codecs
+import hashlib
 import io as _stdio
 import os
 import re
@@ -23,7 +24,25 @@ import pandas as pd
 from spatial_ev.errors import InputError
 
 __all__ = ["file_format", "read_csv_table", "read_vector", "parse_numeric", "numeric_hint",
-           "CSV_SUFFIXES", "GIS_SUFFIXES"]
+           "file_sha256", "CSV_SUFFIXES", "GIS_SUFFIXES"]
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """SHA-256 of a file's bytes (hex), read in 1 MiB blocks; recorded for every input of a run.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.NamedTemporaryFile(delete=False) as f:
+    ...     _ = f.write(b"abc")
+    >>> file_sha256(f.name)[:16]
+    'ba7816bf8f01cfea'
+    """
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
 
 CSV_SUFFIXES = {".csv": "CSV", ".txt": "CSV", ".tsv": "CSV (tab-separated)"}
 GIS_SUFFIXES = {".gpkg": "GeoPackage", ".geojson": "GeoJSON", ".json": "GeoJSON",

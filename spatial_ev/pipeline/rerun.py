@@ -10,7 +10,6 @@ so the rebuilt pilot is the analysis that wrote the folder.
 
 from __future__ import annotations
 
-import hashlib
 import inspect
 import json
 import os
@@ -20,20 +19,13 @@ from pathlib import Path
 from typing import Any
 
 from spatial_ev.errors import DesignError, InputError
+from spatial_ev.input.io import file_sha256
 from spatial_ev.input.survey import read_survey
 from spatial_ev.pipeline.analysis import Analysis, analyse
 
 __all__ = ["load_pilot"]
 
 _ROLES = ("sites", "species", "environment")
-
-
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _check_folder(folder: Any) -> tuple[Path, dict]:
@@ -67,7 +59,7 @@ def _input_file(folder: Path, role: str, entry: dict) -> Path:
     changed = None
     for path in candidates:
         if path.is_file():
-            found = _sha256(path)
+            found = file_sha256(path)
             if found == expected:
                 return path
             changed = (path, found)

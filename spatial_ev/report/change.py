@@ -26,7 +26,6 @@ figures embedded as data URIs); :func:`write_change_folder` writes the whole run
 from __future__ import annotations
 
 import base64
-import hashlib
 import io
 import json
 import math
@@ -35,7 +34,6 @@ import platform
 import sys
 import warnings
 from collections.abc import Mapping
-from importlib import metadata
 from pathlib import Path
 from typing import Any
 
@@ -49,12 +47,14 @@ from matplotlib.patheffects import withStroke
 
 from spatial_ev import __version__
 from spatial_ev.errors import InputError
+from spatial_ev.input.io import file_sha256
 from spatial_ev.pipeline.repeated import RepeatedAnalysis
 from spatial_ev.report import _style as st
 from spatial_ev.report.figures import save_figure, unit_symbol
 from spatial_ev.report.folder import atomic_folder
 from spatial_ev.report.layers import write_layers, write_table
 from spatial_ev.report.maps import nice_scale_bar
+from spatial_ev.report.run_folder import library_versions
 
 __all__ = ["change_map_figure", "loss_gain_figure", "change_summary", "change_layer",
            "change_tables", "render_change_report", "write_change_folder", "LOSS_RAMP",
@@ -64,8 +64,6 @@ LOSS_RAMP = LinearSegmentedColormap.from_list("spatial_ev_losses",
                                               ["#fbf7f3", "#f0b27f", "#d55e00", "#7a2f00"])
 GAIN_RAMP = LinearSegmentedColormap.from_list("spatial_ev_gains",
                                               ["#f4f9f7", "#8fd0b8", "#009e73", "#00513a"])
-_LIBRARIES = ("numpy", "scipy", "pandas", "geopandas", "shapely", "pyproj", "pyogrio",
-              "matplotlib", "jinja2", "threadpoolctl")
 
 
 def _check_analysis(analysis: Any) -> RepeatedAnalysis:
@@ -448,26 +446,13 @@ def _figures(a: RepeatedAnalysis) -> dict[str, Figure]:
 
 # -------------------------------------------------------------------------------- run folder
 
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
 def _manifest(a: RepeatedAnalysis, inputs: Mapping[str, Any] | None,
               parameters: Mapping[str, Any] | None) -> dict[str, Any]:
-    versions = {}
-    for lib in _LIBRARIES:
-        try:
-            versions[lib] = metadata.version(lib)
-        except metadata.PackageNotFoundError:  # pragma: no cover - optional
-            versions[lib] = None
+    versions = library_versions()
     files = {}
     for role, path in (dict(inputs) if inputs else {}).items():
         paths = path if isinstance(path, (list, tuple)) else [path]
-        entries = [{"path": str(Path(p).resolve()), "sha256": _sha256(Path(p)),
+        entries = [{"path": str(Path(p).resolve()), "sha256": file_sha256(Path(p)),
                     "bytes": Path(p).stat().st_size} for p in paths if Path(p).is_file()]
         if entries:
             files[role] = entries if isinstance(path, (list, tuple)) else entries[0]

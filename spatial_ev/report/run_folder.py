@@ -16,7 +16,6 @@ The folder is written inside :func:`~spatial_ev.report.folder.atomic_folder`: wh
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import platform
@@ -30,6 +29,7 @@ from typing import Any
 import pandas as pd
 
 from spatial_ev import __version__
+from spatial_ev.input.io import file_sha256
 from spatial_ev.pipeline.analysis import Analysis
 from spatial_ev.report.context import analysis_context, map_layers
 from spatial_ev.report.folder import atomic_folder
@@ -37,7 +37,7 @@ from spatial_ev.report.html import write_report
 from spatial_ev.report.layers import write_layers, write_table
 from spatial_ev.report.summary import summary_record
 
-__all__ = ["write_run_folder", "manifest", "copy_inputs"]
+__all__ = ["write_run_folder", "manifest", "copy_inputs", "library_versions"]
 
 # files a GIS layer needs beside its main file (Shapefile parts), copied with it
 _COMPANIONS = {".shp": (".shx", ".dbf", ".prj", ".cpg", ".qix", ".sbn", ".sbx", ".shp.xml")}
@@ -46,12 +46,21 @@ _LIBRARIES = ("numpy", "scipy", "pandas", "geopandas", "shapely", "pyproj", "pyo
               "matplotlib", "jinja2", "rich", "threadpoolctl")
 
 
-def _sha256(path: str | os.PathLike) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
+def library_versions() -> dict[str, str | None]:
+    """Installed versions of the libraries a run depends on (None where one is missing).
+
+    Examples
+    --------
+    >>> "numpy" in library_versions()
+    True
+    """
+    versions: dict[str, str | None] = {}
+    for lib in _LIBRARIES:
+        try:
+            versions[lib] = metadata.version(lib)
+        except metadata.PackageNotFoundError:  # pragma: no cover - optional
+            versions[lib] = None
+    return versions
 
 
 def _blas() -> list[dict[str, Any]]:
@@ -117,15 +126,10 @@ def manifest(analysis: Analysis, *, inputs: Mapping[str, str | os.PathLike] | No
     >>> manifest(result)["package"]["version"]  # doctest: +SKIP
     '0.1.0'
     """
-    versions = {}
-    for lib in _LIBRARIES:
-        try:
-            versions[lib] = metadata.version(lib)
-        except metadata.PackageNotFoundError:  # pragma: no cover - optional
-            versions[lib] = None
+    versions = library_versions()
     files = {}
     for role, path in _input_files(analysis, inputs).items():
-        files[role] = {"path": str(path.resolve()), "sha256": _sha256(path),
+        files[role] = {"path": str(path.resolve()), "sha256": file_sha256(path),
                        "bytes": path.stat().st_size}
         if copies is not None and role in copies:
             files[role]["copy"] = copies[role]

@@ -45,6 +45,8 @@ import time
 import numpy as np
 import pandas as pd
 
+import eigen_scaling  # the layout generator shared with the eigenvector benchmark (same folder)
+
 SEED_LAYOUT = 20_261_202
 SEED_COMMUNITY = 42_424_242
 SEED_ANALYSIS = 20_240_917
@@ -56,14 +58,8 @@ MODES = ("threads", "processes1", "processes2")
 # ----------------------------------------------------------------------------------------------
 
 def clustered_layout(n: int, seed: int = SEED_LAYOUT) -> np.ndarray:
-    """Irregular layout of constant density: uniform background plus Gaussian clusters."""
-    rng = np.random.default_rng(seed)
-    side = 100_000.0 * np.sqrt(n / 10_000)
-    n_clusters = max(n // 250, 4)
-    parents = rng.uniform(0, side, size=(n_clusters, 2))
-    xy = parents[rng.integers(n_clusters, size=n)] + rng.normal(scale=2_500.0, size=(n, 2))
-    xy[: n // 5] = rng.uniform(0, side, size=(n // 5, 2))
-    return xy
+    """Irregular layout of constant density: the eigen benchmark's generator, this seed."""
+    return eigen_scaling.clustered_layout(n, seed=seed)
 
 
 def smooth_field(xy: np.ndarray, wavelength: float, rng: np.random.Generator,

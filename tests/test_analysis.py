@@ -269,7 +269,34 @@ class TestTypedResults:
         assert alone.kept == result.trend_kept
         assert all(note in result.notes for note in alone.notes)
 
+    def test_default_trend_rule_tests_a_planar_trend(self, result):
+        # without a river network the default rule ("auto") is the planar trend test
+        assert result.settings.trend == "test" and result.trend is not None
+
     def test_summary_record_needs_an_analysis(self):
         with pytest.raises(InputError, match="`analysis` must be an Analysis"):
             summary_record({"n_sites": 3})
         assert Analysis.__dataclass_params__.frozen
+
+
+class TestTrendRule:
+    def test_auto_resolves_by_network(self):
+        from spatial_ev.pipeline.steps import resolve_trend
+
+        assert resolve_trend("auto", on_network=False) == ("test", None)
+        mode, note = resolve_trend("auto", on_network=True)
+        assert mode == "ignore" and "tributaries" in note
+        for given in ("test", "ignore"):
+            assert resolve_trend(given, on_network=True) == (given, None)
+
+    def test_bad_rule_is_named(self):
+        from spatial_ev.pipeline.steps import resolve_trend, trend_step
+
+        with pytest.raises(InputError, match="trend"):
+            resolve_trend("planar", on_network=False)
+        with pytest.raises(InputError, match="on_network"):
+            resolve_trend("auto", on_network="yes")
+        # the step itself runs only a resolved rule
+        coords = pd.DataFrame({"x": np.arange(12.0), "y": np.zeros(12)})
+        with pytest.raises(InputError, match="mode"):
+            trend_step(np.ones((12, 2)), coords, mode="auto")

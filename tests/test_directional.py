@@ -473,6 +473,12 @@ class TestSchemes:
         out = D.bearing_schemes(g, bearing=-270, orientations=("with_flow", "against_flow"))
         assert list(out) == ["bearing_90/binary", "bearing_90_against/binary"]
         assert out["bearing_90/binary"].method == "aem_bearing"
+        # scales are reported in the survey's unit, not a generic one
+        metres = D.bearing_schemes(g, bearing=90, distance_unit="metre")["bearing_90/binary"]
+        assert "metre (equivalent wavelength)" in metres.summary()
+        assert "map unit" not in metres.summary()
+        with pytest.raises(InputError, match="distance_unit"):
+            D.bearing_graph(g, bearing=90, distance_unit="")
 
     def test_equal_edges_under_a_linear_weighting_are_refused_clearly(self):
         with pytest.raises(InputError, match=r"every edge weight 0.*`max_distance`"):

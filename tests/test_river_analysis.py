@@ -165,8 +165,15 @@ def test_comparison_counts_directional_schemes():
     survey = read_survey(RIVER / "sites.gpkg", RIVER / "species.csv",
                          RIVER / "environment.csv")
     net = read_river_network(RIVER / "network.gpkg", survey, snap_tolerance=30)
+    # the default trend rule ("auto") leaves a planar trend out on a river network
     result = analyse(survey, network=net, n_permutations=239, seed=SEED,
-                     environment_test="permutation", trend="ignore")
+                     environment_test="permutation")
+    assert result.settings.trend == "ignore" and result.trend is None
+    assert any("trend rule 'auto' on a river network" in n for n in result.notes)
+    # the drift travels with the flow: the comparison picks a directional basis and selects
+    # its vectors (the shipped scenario; data_demo/river/README.md)
+    assert result.settings.chosen_scheme.startswith("river_aem")
+    assert len(result.space_selection.selected) > 0
     table = result.weighting.table
     directional = ["river_aem/binary", "river_aem/linear", "river_distance"]
     assert list(table.index[:3]) == directional and len(table) == 11
@@ -220,6 +227,9 @@ class TestBadNetworks:
 
         xs = [float(x) for x in re.findall(r"\((\d+(?:\.\d+)?), ", line)]
         assert xs and all(a[0] <= x <= b[0] for x in xs)
+        # UTM northings in plain decimals a user can paste into a GIS, not 5.92e+06
+        ys = [float(y) for y in re.findall(r", (\d+(?:\.\d+)?)\)", line)]
+        assert ys and all(y > 5e6 for y in ys) and "e+" not in line
 
     def test_options_in_their_own_words(self, tmp_path, capsys):
         out = str(tmp_path / "run")

@@ -177,7 +177,8 @@ def _directional_basis(args: argparse.Namespace, survey, network):
                                              keep=args.keep,
                                              max_vectors=args.max_vectors)
     graph = network if network is not None else bearing_graph(
-        neighbour_graph(survey, "delaunay"), bearing=args.bearing)
+        neighbour_graph(survey, "delaunay"), bearing=args.bearing,
+        distance_unit=survey.distance_unit)
     return aem_eigenvectors(graph, orientation=orientation, weighting=name, exponent=exponent,
                             weight_by=args.weight_by, max_distance=args.max_distance,
                             keep=args.keep, max_vectors=args.max_vectors)

@@ -51,9 +51,10 @@ def _analysis_options(parser: argparse.ArgumentParser) -> None:
                                 "presence_absence", "none"),
                        help="community transformation (default: hellinger)")
     group.add_argument("--weighting", default="compare", metavar="SCHEME", help=_SCHEMES_HELP)
-    group.add_argument("--trend", default="test", choices=("test", "ignore"),
+    group.add_argument("--trend", default="auto", choices=("auto", "test", "ignore"),
                        help="test a linear trend on the coordinates and keep it as a "
-                            "covariable when significant (default), or ignore trends")
+                            "covariable when significant (test), or ignore trends; auto "
+                            "(default) tests it, except along a river network")
     group.add_argument("--alpha", type=float, default=0.05,
                        help="significance level of every test (default 0.05)")
     group.add_argument("--permutations", type=int, default=999, metavar="N",

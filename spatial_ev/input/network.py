@@ -369,9 +369,8 @@ def build_river_network(lines: Any, sites: pd.DataFrame, *, snap_tolerance: floa
         short = shapely.length(geoms[loops]) <= 2 * node_tolerance
         if (~short).any():
             j = loops[~short][0]
-            x, y = node_xy[tail[j]]
             raise InputError(f"{source}: line (feature {feature[j]}) starts and ends at the "
-                             f"same point ({x:.6g}, {y:.6g}): a closed loop cannot be part of "
+                             f"same point {_xy(node_xy[tail[j]])}: a closed loop cannot be part of "
                              f"a dendritic network; remove or split it")
         keep = np.ones(n_lines, bool)
         keep[loops] = False
@@ -611,7 +610,10 @@ def _undirected(tail: np.ndarray, head: np.ndarray, k: int) -> sparse.csr_matrix
 
 
 def _xy(p: np.ndarray) -> str:
-    return f"({p[0]:.6g}, {p[1]:.6g})"
+    """A point as written in messages: plain decimals to the centimetre (no exponent)."""
+    def plain(v: float) -> str:
+        return f"{v:.2f}".rstrip("0").rstrip(".")
+    return f"({plain(p[0])}, {plain(p[1])})"
 
 
 def _check_loops(und, tail, head, label, n_comp, node_xy, feature, source, unit) -> None:

@@ -57,6 +57,7 @@ from spatial_ev.pipeline.steps import (
     space_step,
     spectral_environment_step,
     spectral_fraction_step,
+    resolve_trend,
     trend_step,
 )
 from spatial_ev.selection.forward import ForwardSelection
@@ -133,6 +134,8 @@ class AnalysisSettings:
     ----------
     transformation : str
     trend : {"test", "ignore"}
+        The trend rule that ran (``"auto"`` resolved; see
+        :func:`~spatial_ev.pipeline.steps.resolve_trend`).
     spatial_weighting : {"compare", "single"}
     schemes : tuple of str
         The weighting schemes compared (or the one used).
@@ -362,7 +365,7 @@ def _check_directional(network, bearing, orientations, edge_weightings, weight_b
 def analyse(survey: Survey, *, transformation: str = "hellinger",
             spatial_weighting: str = "compare", schemes: Sequence[str] | str | None = None,
             alpha: float = 0.05, n_permutations: int = 999, seed: int | None = None,
-            scale_breaks: Sequence[float] | None = None, trend: str = "test",
+            scale_breaks: Sequence[float] | None = None, trend: str = "auto",
             engine: str = "local", scheduler: Any = None,
             progress: Callable[[str], None] | None = None,
             environment_test: str = "spectral", max_vectors: int | None = None,
@@ -395,9 +398,11 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
     scale_breaks : sequence of float, optional
         Boundaries of the scale classes in map units (default: three equal-size classes of the
         basis, broad / medium / fine).
-    trend : {"test", "ignore"}
+    trend : {"auto", "test", "ignore"}
         ``"test"``: test a linear trend on the coordinates and keep it as a covariable when
-        significant; ``"ignore"``: do not model a trend.
+        significant; ``"ignore"``: do not model a trend; ``"auto"`` (default): ``"test"``,
+        except with a river ``network``, where a planar trend is not modelled (recorded in the
+        notes; see :func:`~spatial_ev.pipeline.steps.resolve_trend`).
     engine, scheduler : str, optional
         Where the work runs: ``"local"`` (threads of this process), ``"processes"`` (local
         worker processes, one BLAS thread each; the weighting schemes are compared in
@@ -463,6 +468,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         scale_breaks, trend, engine, environment_test)
     directional = _check_directional(network, bearing, orientations, edge_weightings,
                                      weight_by)
+    trend, trend_note = resolve_trend(trend, on_network=network is not None)
     if max_vectors is not None:
         max_vectors = check_int("max_vectors", max_vectors, low=1)
     if n_workers is not None:
@@ -533,7 +539,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         partition=partition.partition, fractions=partition.fractions,
         fraction_tests=partition.fraction_tests, scale_fits=scales.fits,
         scalogram=scales.scalogram, beta=beta, ordination=ordination,
-        notes=tuple(note for note in (small,) if note is not None)
+        notes=tuple(note for note in (small, trend_note) if note is not None)
         + tuple(note for step in steps if step is not None for note in step.notes),
         warnings=tuple(f"{w.category.__name__}: {w.message}" for w in caught
                        if issubclass(w.category, SpatialEVWarning)),

@@ -107,10 +107,13 @@ __all__ = [
     "space_step",
     "spectral_environment_step",
     "spectral_fraction_step",
+    "resolve_trend",
     "trend_step",
 ]
 
-TREND_OPTIONS = ("test", "ignore")
+#: trend rules of the analysis; ``"auto"`` resolves to ``"test"``, or to ``"ignore"`` on a
+#: river network (see :func:`resolve_trend`)
+TREND_OPTIONS = ("auto", "test", "ignore")
 LARGE_SURVEY_VECTORS = 200  # fewest broad vectors offered per scheme above the dense limit
 #: values (sites × vectors) of one scheme's candidate table above the dense limit (16 MB):
 #: 666 vectors at 3,001 sites, 400 at 5,000, the floor of 200 from 10,000 sites on
@@ -130,6 +133,48 @@ def _level(alpha: float) -> float:
 
 
 # ------------------------------------------------------------------------------ trend
+
+def resolve_trend(mode: str, *, on_network: bool) -> tuple[str, str | None]:
+    """The trend rule that runs, and a note when ``"auto"`` chose to leave the trend out.
+
+    ``"auto"`` tests a linear trend on the coordinates, except on a river network: there a
+    plane through the site coordinates puts tributaries that lie side by side on one
+    gradient, and the upstream–downstream structure it would take out first is what the
+    directional (AEM) and along-network vectors are built to describe. ``"test"`` and
+    ``"ignore"`` are kept as given.
+
+    Parameters
+    ----------
+    mode : {"auto", "test", "ignore"}
+    on_network : bool
+        Whether the analysis has a river network.
+
+    Returns
+    -------
+    mode : {"test", "ignore"}
+    note : str or None
+
+    Examples
+    --------
+    >>> resolve_trend("auto", on_network=False)
+    ('test', None)
+    >>> resolve_trend("auto", on_network=True)[0]
+    'ignore'
+    """
+    check_option("trend", mode, TREND_OPTIONS)
+    if not isinstance(on_network, (bool, np.bool_)):
+        raise InputError(f"`on_network` must be True or False; got {on_network!r}")
+    if mode != "auto":
+        return mode, None
+    if not on_network:
+        return "test", None
+    return "ignore", ("No linear trend on the site coordinates was tested (trend rule "
+                      "'auto' on a river network): a plane through the coordinates would put "
+                      "tributaries that lie side by side on one gradient, and the "
+                      "upstream–downstream structure it would remove first is what the "
+                      "directional and along-network vectors describe. Give the trend rule "
+                      "'test' to test and keep a planar trend anyway.")
+
 
 @dataclass(frozen=True)
 class TrendStep:
@@ -179,7 +224,7 @@ def trend_step(Y: pd.DataFrame | np.ndarray, coords: pd.DataFrame, *, mode: str 
     >>> step.kept  # doctest: +SKIP
     True
     """
-    check_option("mode", mode, TREND_OPTIONS)
+    check_option("mode", mode, ("test", "ignore"))
     alpha = _level(alpha)
     if not isinstance(coords, pd.DataFrame) or list(coords.columns) != ["x", "y"]:
         raise InputError("`coords` must be a DataFrame with columns ['x', 'y'] (map units); "
@@ -634,7 +679,8 @@ def directional_candidates(survey: Survey, *, network: RiverNetwork | None = Non
     if bearing is not None:
         graph = neighbour_graph(survey, "delaunay")
         built = bearing_schemes(graph, bearing=bearing, orientations=tuple(orientations),
-                                weightings=tuple(edge_weightings), max_vectors=max_vectors)
+                                weightings=tuple(edge_weightings), max_vectors=max_vectors,
+                                distance_unit=survey.distance_unit)
         out.update(built if wanted is None else
                    {k: v for k, v in built.items() if k in wanted})
     if wanted is not None:

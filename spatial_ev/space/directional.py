@@ -225,7 +225,8 @@ def river_graph(network: RiverNetwork) -> DirectionalGraph:
                             distance_unit=network.distance_unit)
 
 
-def bearing_graph(graph: NeighbourGraph, *, bearing: float) -> DirectionalGraph:
+def bearing_graph(graph: NeighbourGraph, *, bearing: float,
+                  distance_unit: str = "map unit") -> DirectionalGraph:
     """Orient a neighbour graph along a prevailing current or wind.
 
     Each edge i–j is directed so that it points with the bearing (from i to j when the
@@ -242,6 +243,8 @@ def bearing_graph(graph: NeighbourGraph, *, bearing: float) -> DirectionalGraph:
         Direction the current or wind moves *towards*, in degrees clockwise from grid north
         (the map's +y axis): 0 = northward, 90 = eastward. A wind reported as "from the
         west" blows towards 90.
+    distance_unit : str
+        Unit of the graph's coordinates, used in summaries (``Survey.distance_unit``).
 
     Returns
     -------
@@ -262,6 +265,8 @@ def bearing_graph(graph: NeighbourGraph, *, bearing: float) -> DirectionalGraph:
         raise InputError("`graph` must use planar coordinates (a bearing needs a grid north); "
                          "project the survey first")
     bearing = check_real("bearing", bearing)
+    if not isinstance(distance_unit, str) or not distance_unit.strip():
+        raise InputError(f"`distance_unit` must be a non-empty name; got {distance_unit!r}")
     theta = np.radians(bearing)
     direction = np.array([np.sin(theta), np.cos(theta)])
     up = sparse.triu(graph.lengths, k=1).tocoo()
@@ -277,7 +282,7 @@ def bearing_graph(graph: NeighbourGraph, *, bearing: float) -> DirectionalGraph:
                             node_xy=np.asarray(graph.coords, dtype=np.float64),
                             site_nodes=np.arange(n), site_ids=graph.site_ids,
                             neighbours=sparse.csr_matrix(graph.lengths), kind="bearing",
-                            bearing=bearing % 360.0)
+                            bearing=bearing % 360.0, distance_unit=distance_unit)
 
 
 def _symmetric_with_zeros(n: int, i: np.ndarray, j: np.ndarray, d: np.ndarray
@@ -1127,7 +1132,8 @@ def river_schemes(network: RiverNetwork | DirectionalGraph, *,
 def bearing_schemes(graph: NeighbourGraph, *, bearing: float,
                     orientations: tuple[str, ...] = ("with_flow",),
                     weightings: tuple[str, ...] = ("binary",), keep: str = "positive",
-                    max_vectors: int | None = None) -> dict[str, NetworkBasis]:
+                    max_vectors: int | None = None,
+                    distance_unit: str = "map unit") -> dict[str, NetworkBasis]:
     """Named AEM bases of a neighbour graph oriented along a bearing (currents, winds).
 
     Names: ``"bearing_<degrees>/<weighting>"`` (``"bearing_90/binary"``), and
@@ -1142,6 +1148,8 @@ def bearing_schemes(graph: NeighbourGraph, *, bearing: float,
         Direction of travel, degrees clockwise from grid north.
     orientations, weightings, keep, max_vectors
         As in :func:`river_schemes`.
+    distance_unit : str
+        As in :func:`bearing_graph`.
 
     Returns
     -------
@@ -1154,7 +1162,7 @@ def bearing_schemes(graph: NeighbourGraph, *, bearing: float,
     >>> list(bearing_schemes(g, bearing=90))
     ['bearing_90/binary']
     """
-    directed = bearing_graph(graph, bearing=bearing)
+    directed = bearing_graph(graph, bearing=bearing, distance_unit=distance_unit)
     if isinstance(orientations, str) or isinstance(weightings, str):
         raise InputError("`orientations` and `weightings` must be tuples of names, e.g. "
                          "('with_flow',) and ('binary',)")

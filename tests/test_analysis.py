@@ -279,6 +279,30 @@ class TestTypedResults:
         assert Analysis.__dataclass_params__.frozen
 
 
+class TestSequentialStepTests:
+    def test_every_selection_follows_the_rule(self, repo_root):
+        folder = repo_root / "data_demo"
+        survey = read_survey(folder / "sites.gpkg", folder / "species.csv",
+                             folder / "environment.csv")
+        kwargs = dict(n_permutations=199, seed=5, environment_test="permutation",
+                      schemes=["distance", "gabriel/binary"])
+        full = analyse(survey, **kwargs)
+        early = analyse(survey, **kwargs, step_tests="sequential")
+        assert early.settings.step_tests == "sequential" and full.settings.step_tests == "full"
+        for a, b in ((full.environment_selection, early.environment_selection),
+                     (full.space_selection, early.space_selection)):
+            assert b.sequential and not a.sequential
+            assert b.selected == a.selected
+            assert (b.steps["permutations"] <= 199).all()
+        # the fraction tests keep the full count and the same draws
+        assert early.fraction_tests == full.fraction_tests
+        assert early.fractions == full.fractions
+
+    def test_bad_rule_is_named(self):
+        with pytest.raises(InputError, match="step_tests"):
+            analyse(small_survey(), n_permutations=99, seed=1, step_tests="early")
+
+
 class TestTrendRule:
     def test_auto_resolves_by_network(self):
         from spatial_ev.pipeline.steps import resolve_trend

@@ -256,3 +256,22 @@ def test_progress_log_throttles_to_its_interval():
     log.finish("end")
     said = [line.split("] ", 1)[1] for line in out.getvalue().splitlines()]
     assert said == ["a", "d", "f", "end"]
+
+
+def test_sequential_step_tests_are_recorded_and_reported(repo_root, tmp_path, capsys):
+    demo = repo_root / "data_demo"
+    out = tmp_path / "run"
+    code = main(["run", "--sites", str(demo / "sites.gpkg"), "--species",
+                 str(demo / "species.csv"), "--environment", str(demo / "environment.csv"),
+                 "--weighting", "distance", "--permutations", "99", "--seed", "3",
+                 "--step-tests", "sequential", "--quiet", "--out", str(out)])
+    assert code == 0, capsys.readouterr().err
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["parameters"]["step_tests"] == "sequential"
+    import pandas as pd
+
+    steps = pd.read_csv(out / "tables" / "space_selection_steps.csv")
+    assert "permutations" in steps.columns and steps["permutations"].le(99).all()
+    report = (out / "report.html").read_text(encoding="utf-8")
+    assert "stopped drawing permutations once the decision" in report
+    assert "Besag" in report and "Gandy" in report

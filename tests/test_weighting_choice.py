@@ -224,6 +224,43 @@ class TestSchemesInParallel:
             compare_weighting_schemes(Y, xy, engine="processes", scheduler="tcp://h:8786")
 
 
+class TestSequentialStepTests:
+    """Sequential step decisions inside the scheme comparison: the same choices as drawing the
+    full count (the rule's risk is 0.001 per decision), fewer permutations, and the same
+    outcome on every engine."""
+
+    @pytest.fixture(scope="class")
+    def early(self, broad_data):
+        xy, Y = broad_data
+        return compare_weighting_schemes(Y, xy, n_permutations=199, seed=11,
+                                         sequential_steps=True)
+
+    def test_same_choices_fewer_permutations(self, early, sequential):
+        # the global tests draw the full count: their columns are unchanged
+        cols = ["global_pseudo_f", "global_p", "significant"]
+        pd.testing.assert_frame_equal(early.table[cols], sequential.table[cols])
+        assert early.best == sequential.best
+        assert early.selection.selected == sequential.selection.selected
+        assert early.selection.sequential and not sequential.selection.sequential
+        drawn = early.selection.steps["permutations"]
+        assert drawn.max() <= 199 and drawn.min() < 199
+        assert early.selection.step_permutations < 199 * len(drawn)
+
+    def test_same_on_worker_processes(self, broad_data, early):
+        xy, Y = broad_data
+        out = compare_weighting_schemes(Y, xy, n_permutations=199, seed=11,
+                                        sequential_steps=True, engine="processes",
+                                        n_workers=2)
+        _assert_same_comparison(out, early)
+
+    def test_validation(self, broad_data):
+        xy, Y = broad_data
+        with pytest.raises(InputError, match="`sequential_steps` must be True or False"):
+            compare_weighting_schemes(Y, xy, sequential_steps="yes")
+        with pytest.raises(InputError, match="decision_risk"):
+            compare_weighting_schemes(Y, xy, sequential_steps=True, decision_risk=0.9)
+
+
 class TestCompareWeightingSchemesValidation:
     def setup_method(self):
         self.xy, self.Y = _broad_scale_survey(25, 1234, signal=1.0)

@@ -51,6 +51,10 @@ def _analysis_options(parser: argparse.ArgumentParser) -> None:
                                 "presence_absence", "none"),
                        help="community transformation (default: hellinger)")
     group.add_argument("--weighting", default="compare", metavar="SCHEME", help=_SCHEMES_HELP)
+    group.add_argument("--step-tests", default="full", choices=("full", "sequential"),
+                       help="forward-selection step tests draw every permutation (full, "
+                            "default) or stop once p <= alpha is settled with resampling "
+                            "risk <= 0.001 (sequential; faster on large surveys)")
     group.add_argument("--trend", default="auto", choices=("auto", "test", "ignore"),
                        help="test a linear trend on the coordinates and keep it as a "
                             "covariable when significant (test), or ignore trends; auto "
@@ -371,7 +375,8 @@ def _analyse_and_write(survey, args: argparse.Namespace, out: str, *, inputs=Non
                          scale_breaks=args.scale_breaks, trend=args.trend, engine=args.engine,
                          scheduler=args.scheduler, progress=progress,
                          environment_test=args.environment_test, max_vectors=args.max_vectors,
-                         n_workers=args.workers, **directional_arguments(args, network))
+                         n_workers=args.workers, step_tests=args.step_tests,
+                         **directional_arguments(args, network))
         _check_breaks_within_basis(args.scale_breaks, result)
         progress("writing the run folder")
         params = {"command_line": sys.argv[1:] if sys.argv else [],

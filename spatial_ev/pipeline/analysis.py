@@ -155,6 +155,8 @@ class AnalysisSettings:
         Directional schemes' settings when a river network or a bearing was given:
         ``network`` (its source or None), ``bearing``, ``orientations``, ``edge_weightings``,
         ``weight_by``.
+    step_tests : {"full", "sequential"}
+        How forward-selection step tests drew permutations (see :func:`analyse`).
 
     Examples
     --------
@@ -178,6 +180,7 @@ class AnalysisSettings:
     environment_test: str
     max_vectors: int | None
     directional: dict | None = None
+    step_tests: str = "full"
 
     def __getitem__(self, name: str) -> Any:
         """Read-only lookup by name (``settings["alpha"]``), as for the recorded parameters."""
@@ -372,7 +375,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
             n_workers: int | None = None, network: RiverNetwork | None = None,
             bearing: float | None = None, orientations: Sequence[str] = ("with_flow",),
             edge_weightings: Sequence[str] = ("binary", "linear"),
-            weight_by: str = "edge_length") -> Analysis:
+            weight_by: str = "edge_length", step_tests: str = "full") -> Analysis:
     """Run the whole spatial-structure analysis of a survey.
 
     Parameters
@@ -449,6 +452,14 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         ``"concave_down:<α>"``, ``"concave_up:<β>"``; default binary and linear).
     weight_by : {"edge_length", "network_distance"}
         What a river AEM's non-binary edge weighting is a function of.
+    step_tests : {"full", "sequential"}
+        ``"full"`` (default): every forward-selection step test draws ``n_permutations``.
+        ``"sequential"``: a step test stops drawing once "p ≤ α?" is settled with resampling
+        risk ≤ 0.001 (Besag & Clifford 1991, Biometrika 78:301–304, for non-significant
+        steps; Gandy 2009, JASA 104:1504–1511, either way); each step's p-value then rests on
+        the permutations it drew (column ``permutations`` of the step tables). Global, fraction
+        and class tests always draw the full count. The decisions are the same on every
+        engine and worker count.
 
     Returns
     -------
@@ -474,7 +485,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
     if n_workers is not None:
         n_workers = check_int("n_workers", n_workers, low=1)
     options = StepOptions(n_permutations=n_permutations, engine=engine, scheduler=scheduler,
-                          n_workers=n_workers, progress=progress)
+                          n_workers=n_workers, progress=progress, step_tests=step_tests)
     # the seventh stream is new; the first six are unchanged by spawning one more
     streams = dict(zip(["trend", "environment", "space", "partition", "classes", "lcbd",
                         "spectral"], check_rng(seed).spawn(7)))
@@ -531,7 +542,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         schemes=tuple(schemes), chosen_scheme=space.chosen, alpha=alpha,
         n_permutations=n_permutations, seed=seed, scale_breaks=scales.breaks, engine=engine,
         crs=survey.summary()["crs"], environment_test=environment_test,
-        max_vectors=space.max_vectors, directional=directional)
+        max_vectors=space.max_vectors, directional=directional, step_tests=step_tests)
     return Analysis(
         survey=survey, settings=settings, response=Y, environment=env, trend=trend_.test,
         trend_kept=trend_.kept, environment_selection=environment.selection,

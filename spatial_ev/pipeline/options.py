@@ -11,7 +11,10 @@ from spatial_ev._validation import check_int, check_option
 from spatial_ev.errors import InputError
 from spatial_ev.inference.engines import ENGINES
 
-__all__ = ["DEFAULT_OPTIONS", "StepOptions"]
+__all__ = ["DEFAULT_OPTIONS", "STEP_TESTS", "StepOptions"]
+
+#: how forward-selection step tests draw permutations (:attr:`StepOptions.step_tests`)
+STEP_TESTS = ("full", "sequential")
 
 
 @dataclass(frozen=True)
@@ -30,12 +33,19 @@ class StepOptions:
         Worker threads or processes (default: the engine's, one per core).
     progress : callable, optional
         Called with a short message at each stage and test; the steps never print.
+    step_tests : {"full", "sequential"}
+        Forward-selection step tests draw every permutation (``"full"``) or stop once
+        "p ≤ α?" is settled with a bounded resampling risk (``"sequential"``;
+        :class:`~spatial_ev.inference.null.SequentialRule`). Global and fraction tests always
+        draw the full count.
 
     Examples
     --------
     >>> options = StepOptions(n_permutations=199)
     >>> options.tests()
     {'n_permutations': 199, 'engine': 'local', 'scheduler': None}
+    >>> StepOptions(step_tests="sequential").selection_tests()["sequential_steps"]
+    True
     """
 
     n_permutations: int = 999
@@ -43,9 +53,11 @@ class StepOptions:
     scheduler: Any = field(default=None, repr=False, compare=False)
     n_workers: int | None = field(default=None, compare=False)
     progress: Callable[[str], None] | None = field(default=None, repr=False, compare=False)
+    step_tests: str = "full"
 
     def __post_init__(self) -> None:
         check_int("n_permutations", self.n_permutations, low=1)
+        check_option("step_tests", self.step_tests, STEP_TESTS)
         check_option("engine", self.engine, ENGINES)
         if self.n_workers is not None:
             check_int("n_workers", self.n_workers, low=1)
@@ -58,6 +70,11 @@ class StepOptions:
         ``scheduler``)."""
         return {"n_permutations": self.n_permutations, "engine": self.engine,
                 "scheduler": self.scheduler}
+
+    def selection_tests(self) -> dict[str, Any]:
+        """Keyword arguments of a forward selection or scheme comparison: those of
+        :meth:`tests` and ``sequential_steps``."""
+        return {**self.tests(), "sequential_steps": self.step_tests == "sequential"}
 
     def say(self, message: str) -> None:
         """Pass a stage message to ``progress`` (nothing when it is None)."""

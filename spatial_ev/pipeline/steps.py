@@ -294,7 +294,8 @@ def environment_step(Y: pd.DataFrame | np.ndarray, environment: pd.DataFrame | N
                          f"{type(environment).__name__}")
     options.say(f"forward selection among {environment.shape[1]} environmental variables")
     return EnvironmentStep(forward_selection(Y, environment, alpha=alpha, seed=seed,
-                                             progress=options.progress, **options.tests()))
+                                             progress=options.progress,
+                                             **options.selection_tests()))
 
 
 # ------------------------------------------------------------------------------ spectral tests
@@ -570,7 +571,7 @@ def space_step(Y: pd.DataFrame | np.ndarray, survey: Survey | None = None, *,
     weighting = compare_weighting_schemes(Y, survey, schemes=schemes, alpha=alpha, seed=seed,
                                           conditioning=conditioning, max_vectors=max_vectors,
                                           progress=options.progress, n_workers=options.n_workers,
-                                          **options.tests())
+                                          **options.selection_tests())
     chosen_basis = weighting.basis
     if chosen_basis is None:
         notes.append("No spatial weighting scheme had a significant global test at the "
@@ -891,7 +892,8 @@ def _one_basis(Y, basis, *, level, global_permutations, alpha, conditioning, see
         if global_p <= level:
             selection = forward_selection(Y, vectors, conditioning=conditioning, alpha=alpha,
                                           seed=rng, global_test="skip",
-                                          progress=options.progress, **options.tests())
+                                          progress=options.progress,
+                                          **options.selection_tests())
     return SpaceStep(basis, selection, None, "given", global_p)
 
 

@@ -94,6 +94,11 @@ REFERENCES: dict[str, str] = {
                             "never be zero: calculating exact P-values when permutations are "
                             "randomly drawn. Statistical Applications in Genetics and "
                             "Molecular Biology 9: article 39.",
+    "Besag & Clifford 1991": "Besag, J. & Clifford, P. (1991). Sequential Monte Carlo "
+                             "p-values. Biometrika 78: 301–304.",
+    "Gandy 2009": "Gandy, A. (2009). Sequential implementation of Monte Carlo tests with "
+                  "uniformly bounded resampling risk. Journal of the American Statistical "
+                  "Association 104: 1504–1511.",
 }
 
 _TRANSFORMS = {
@@ -279,6 +284,12 @@ def methods_paragraphs(context: Mapping, cite: Citations, unit: str) -> list[str
         tests.append(f"Tests used {int(n_perm):,} random permutations {how}; p-values count "
                      "the observed statistic among the permuted ones"
                      f"{cite('Phipson & Smyth 2010')}.{repeat}")
+        if m.get("step_tests") == "sequential":
+            tests.append("Forward-selection step tests stopped drawing permutations once the "
+                         "decision p ≤ α was settled, with a resampling risk of at most 0.001"
+                         f"{cite('Besag & Clifford 1991', 'Gandy 2009')}; each step's p-value "
+                         "rests on the permutations it drew (step tables, column "
+                         "'permutations'); global and fraction tests drew the full count.")
     return [" ".join(p) for p in (prep, space, selection, fractions, tests) if p]
 
 

@@ -168,6 +168,7 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
         "chosen_scheme": chosen, "alpha": settings.alpha,
         "selection": "forward_double_stop",
         "n_permutations": settings.n_permutations,
+        "step_tests": settings.step_tests,
         "permutation_method": "reduced_residual", "seed": settings.seed,
         "environment_test": _environment_test(a),
     }

@@ -23,6 +23,7 @@ from spatial_ev._validation import as_matrix, check_int, check_option, check_rea
 from spatial_ev.inference.engines import ENGINES, run_tasks
 from spatial_ev.errors import DisconnectedGraphWarning, InputError
 from spatial_ev.stats.linear import check_rows
+from spatial_ev.inference.null import SequentialRule
 from spatial_ev.inference.permutation import permutation_test
 from spatial_ev.selection.forward import ForwardSelection, run_selection
 
@@ -145,6 +146,8 @@ def compare_weighting_schemes(
     scheduler: Any = None,
     n_workers: int | None = None,
     progress: Callable[[str], None] | None = None,
+    sequential_steps: bool = False,
+    decision_risk: float = 1e-3,
 ) -> WeightingComparison:
     """Choose the spatial weighting scheme whose selected eigenvectors explain most variation.
 
@@ -197,6 +200,12 @@ def compare_weighting_schemes(
     progress : callable, optional
         Called with a short message: each scheme's stages (``"local"``), or how many schemes
         are done (worker engines).
+    sequential_steps : bool, default False
+        Step tests of the forward selections stop drawing once "p ≤ α?" is settled, as in
+        :func:`~spatial_ev.selection.forward.forward_selection`; the global tests of the
+        schemes always draw the full count.
+    decision_risk : float, default 0.001
+        The bound ε of the sequential rule.
 
     Returns
     -------
@@ -226,6 +235,10 @@ def compare_weighting_schemes(
                          f"{scheduler!r} with engine={engine!r}")
     if n_workers is not None:
         n_workers = check_int("n_workers", n_workers, low=1)
+    if not isinstance(sequential_steps, (bool, np.bool_)):
+        raise InputError(f"parameter `sequential_steps` must be True or False; got "
+                         f"{sequential_steps!r}")
+    decision = SequentialRule.checked(alpha, risk=decision_risk) if sequential_steps else None
     k = len(parsed)
     level = sidak_level(alpha, k)
     if 1.0 / (n_permutations + 1) > level:
@@ -245,7 +258,7 @@ def compare_weighting_schemes(
     # the schemes run one after the other and their permutation batches use the threads
     run = SchemeRun(Yc=Yc, coords=coords, conditioning=cond, y_rows=y_rows, k=k, level=level,
                     alpha=alpha, n_permutations=n_permutations, root=root, keep=keep,
-                    ceiling=ceiling, max_vectors=max_vectors,
+                    ceiling=ceiling, max_vectors=max_vectors, decision=decision,
                     engine="local" if parallel else engine,
                     scheduler=None if parallel else scheduler,
                     progress=None if parallel else progress)
@@ -311,6 +324,7 @@ class SchemeRun:
     keep: str = "positive"
     ceiling: str = "strict"
     max_vectors: int | None = None
+    decision: SequentialRule | None = None
     engine: str = "local"
     scheduler: Any = field(default=None, repr=False)
     progress: Callable[[str], None] | None = field(default=None, repr=False)
@@ -380,7 +394,7 @@ class SchemeRun:
                             n_permutations=self.n_permutations, rng=rng,
                             global_test="required", r2_adj_limit=None, max_variables=None,
                             ceiling=self.ceiling, engine=self.engine, scheduler=self.scheduler,
-                            progress=progress, global_result=gtest)
+                            progress=progress, global_result=gtest, decision=self.decision)
         row["n_selected"], row["r2_adj"] = len(sel.selected), sel.r2_adj
         return row, sel, basis
 

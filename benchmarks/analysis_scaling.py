@@ -2,6 +2,7 @@
 
 Run:  python benchmarks/analysis_scaling.py [--sizes 500 2000 10000] [--permutations 999]
                                             [--modes threads processes1 processes2]
+                                            [--step-tests full|sequential]
 
 Surveys (our own generator, fixed seeds): an irregular clustered layout of constant sampling
 density (20 % of the sites spread uniformly, 80 % in Gaussian clusters of ~250 sites, domain
@@ -199,13 +200,13 @@ def _workers_usage() -> tuple[float, float]:
     return cpu, peak
 
 
-def run_one(n: int, mode: str, n_permutations: int) -> dict:
+def run_one(n: int, mode: str, n_permutations: int, step_tests: str = "full") -> dict:
     from spatial_ev.inference.engines import close_pools, run_tasks
     from spatial_ev.pipeline.analysis import analyse
     from spatial_ev.report.summary import summary_record
 
     survey = synthetic_survey(n)
-    options = dict(n_permutations=n_permutations, seed=SEED_ANALYSIS)
+    options = dict(n_permutations=n_permutations, seed=SEED_ANALYSIS, step_tests=step_tests)
     clock = None
     if mode == "threads":
         clock = StageClock()
@@ -251,9 +252,9 @@ def _comparison_seconds(stages: list[tuple[float, str]], end: float) -> float:
                 end) - begin
 
 
-def _subprocess(n: int, mode: str, n_permutations: int) -> dict:
+def _subprocess(n: int, mode: str, n_permutations: int, step_tests: str) -> dict:
     done = subprocess.run([sys.executable, __file__, "--one", str(n), "--mode", mode,
-                           "--permutations", str(n_permutations)],
+                           "--permutations", str(n_permutations), "--step-tests", step_tests],
                           capture_output=True, text=True)
     if done.returncode != 0:
         raise RuntimeError(f"{n} sites, {mode}: {done.stderr[-3000:]}")
@@ -266,11 +267,14 @@ def main() -> None:
                         help="numbers of sites (default 500 2000 10000; 100000 is accepted)")
     parser.add_argument("--permutations", type=int, default=999)
     parser.add_argument("--modes", nargs="+", default=list(MODES), choices=MODES)
+    parser.add_argument("--step-tests", default="full", choices=("full", "sequential"),
+                        help="forward-selection step tests: every permutation (full) or "
+                             "stopping once p <= alpha is settled (sequential)")
     parser.add_argument("--one", type=int, default=None, help=argparse.SUPPRESS)
     parser.add_argument("--mode", default="threads", help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.one is not None:
-        print(json.dumps(run_one(args.one, args.mode, args.permutations)))
+        print(json.dumps(run_one(args.one, args.mode, args.permutations, args.step_tests)))
         return
 
     print(f"cores={os.cpu_count()}; OPENBLAS_CORETYPE="
@@ -278,11 +282,12 @@ def main() -> None:
     for info in _blas():
         print(f"  BLAS {info['api']} {info['version']} kernel {info['kernel']} "
               f"threads {info['threads']} ({info['library']})")
-    print(f"{args.permutations} permutations per test; 8 weighting schemes compared\n")
+    print(f"{args.permutations} permutations per test ({args.step_tests} step tests); "
+          f"8 weighting schemes compared\n")
     for n in args.sizes:
         runs = {}
         for mode in args.modes:
-            r = runs[mode] = _subprocess(n, mode, args.permutations)
+            r = runs[mode] = _subprocess(n, mode, args.permutations, args.step_tests)
             peak = r["peak_rss_mib"] if mode == "threads" else \
                 f"{r['peak_rss_mib']:.0f} MiB (+ workers {r['worker_peak_rss_mib']:.0f} MiB each)"
             peak = f"{peak:.0f} MiB" if mode == "threads" else peak

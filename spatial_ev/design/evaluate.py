@@ -88,6 +88,7 @@ from spatial_ev.design.simulate import (
     SimulationSettings,
     Simulator,
     environment_at,
+    holm,
     layout_model,
     pilot_model,
 )
@@ -125,7 +126,9 @@ class SpectralCoverage:
         5 % quantile of the basis's vector scales), map units, ``note``.
     classes : DataFrame
         One row per (layout, pilot scale class): ``layout``, ``scale_class``, ``lower``,
-        ``upper`` (map units), ``pilot_significant`` (bool), ``pilot_vectors`` (selected in
+        ``upper`` (map units), ``pilot_significant`` (bool: the pilot's class test, Holm-
+        adjusted across its classes as simulated detections are, at most α),
+        ``pilot_vectors`` (selected in
         the pilot), ``layout_vectors`` (layout basis vectors inside the bounds), ``carried``
         and ``aliased`` (expected share of a field in the class's band on the layout's
         in-band and other vectors, :func:`band_shares`), ``status`` (``"resolved"``: the
@@ -191,14 +194,20 @@ def layout_basis(coords: Any, scheme: str) -> tuple[Any, str, str]:
 
 
 def _pilot_classes(pilot: Analysis) -> pd.DataFrame:
+    """The pilot's scale classes; a class counts as found by the pilot by the rule the
+    simulations judge detection with: its test's p-value, Holm-adjusted across the classes
+    (:func:`~spatial_ev.design.simulate.holm`), at most α."""
     alpha = pilot.settings.alpha
+    adjusted = holm({fit.scale_class.name: fit.p_value for fit in pilot.scale_fits})
     rows = []
     for fit in pilot.scale_fits:
         c = fit.scale_class
+        p_holm = adjusted[c.name]
         rows.append({"scale_class": c.name, "lower": c.bounds[0], "upper": c.bounds[1],
                      "finest_selected": None if c.scale_range is None else c.scale_range[0],
                      "pilot_vectors": len(c.vectors), "r2_adj": fit.r2_adj, "p": fit.p_value,
-                     "pilot_significant": bool(fit.p_value is not None and fit.p_value <= alpha)})
+                     "p_holm": p_holm,
+                     "pilot_significant": bool(p_holm is not None and p_holm <= alpha)})
     return pd.DataFrame(rows)
 
 

@@ -805,6 +805,12 @@ def _notes(infos, truth: str = "unconditional") -> list[str]:
              "wavelengths, species loadings and variance), stationarity over the layouts' "
              "area, and spatially independent residuals beyond the simulated fields; power "
              "is for this model's effect sizes and would be lower for weaker effects.",
+             "A predicted power is conditional on this pilot: its structures, its noise and "
+             "its chance selections. In the package's validation study (validation/"
+             "design_power.md) predictions were right on average over independent pilots, "
+             "but single pilots of a landscape that changes between surveys differed "
+             "widely for sparse layouts, erring on the low side; a class the pilot did not "
+             "detect gets no prediction and no recommendation.",
              ("Unconditional simulation: each simulated survey samples a new landscape with "
               "the pilot's structure (a structure like this next season), the same landscape "
               "at every layout." if truth == "unconditional" else

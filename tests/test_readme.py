@@ -243,3 +243,22 @@ def test_validation_numbers_are_those_of_the_published_study(repo_root):
            f"{rate('power: broad structure', 'grid 10×10')} (10 × 10)" in text
     assert f"6 × 6 grid ({rate('power: fine structure', 'grid 6×6')})" in text
     assert f"10 × 10 grid ({rate('power: fine structure', 'grid 10×10')})" in text
+
+
+def test_sequential_step_numbers_are_those_of_the_study(repo_root):
+    """The README's sequential-decision summary is the 'Sequential step decisions' table of
+    validation/error_rates.md: no selection differs, and the range of mean permutations per
+    step test."""
+    import re
+
+    readme = " ".join((repo_root / "README.md").read_text(encoding="utf-8").split())
+    study = (repo_root / "validation" / "error_rates.md").read_text(encoding="utf-8")
+    part = study[study.index("## Sequential step decisions"):]
+    rows = [r for r in part.splitlines() if "sequential steps (selections differ in" in r]
+    assert len(rows) == 6
+    differ = [float(re.search(r"selections differ in ([0-9.]+)", r).group(1)) for r in rows]
+    drawn = [int(re.search(r"999 → (\d+)", r).group(1)) for r in rows]
+    assert max(differ) == 0.0
+    assert f"in every replicate of all {len(rows)} settings" in readme
+    assert f"drew {min(drawn)}–{max(drawn)} permutations on average instead of 999" in readme
+    assert "1,000 replicates per setting" in readme and "--replicates 1000" in part

@@ -106,6 +106,8 @@ class TestRiverRun:
         assert "predicted at points spaced along the network" in html     # the maps' lead
         assert "The background surface is the same fit" not in html
         assert "Blanchet, F. G., Legendre, P. &amp; Borcard, D. (2008). Modelling" in html
+        # the methods say why no planar trend was modelled (default rule on a network)
+        assert "upstream–downstream structure is left to the directional vectors" in html
 
     def test_manifest_hashes_the_network(self, river_run):
         manifest = json.loads((river_run / "manifest.json").read_text())

@@ -117,7 +117,13 @@ _TRANSFORMS = {
     "none": ("The response table was analysed without transformation", []),
 }
 _TRENDS = {
-    "none": "No linear trend on the coordinates was removed.",
+    "none": ("A linear trend on the coordinates was tested and not significant; none was "
+             "removed."),
+    "not_modelled": "No linear trend on the coordinates was modelled (trend rule 'ignore').",
+    "network": ("No linear trend on the coordinates was modelled: along a river network a "
+                "plane through the coordinates would put side-by-side tributaries on one "
+                "gradient, and the upstream–downstream structure is left to the directional "
+                "vectors (trend rule 'auto')."),
     "removed": ("A linear trend on the site coordinates was regressed out of the response "
                 "before spatial vectors were fitted, so that they describe structures finer "
                 "than the whole study area."),

@@ -18,7 +18,14 @@ from spatial_ev.pipeline.analysis import Analysis
 
 __all__ = ["analysis_context", "map_layers"]
 
-_TREND = {True: "covariable", False: "none"}
+def _trend_handling(a) -> str:
+    """How the planar trend was handled, as a key of the methods text: kept as a covariable,
+    tested and not kept (``"none"``), not modelled on a river network, or not modelled."""
+    if a.trend_kept:
+        return "covariable"
+    if a.trend is not None:
+        return "none"
+    return "network" if a.network is not None else "not_modelled"
 
 
 def _scheme_parts(name: str) -> dict[str, Any]:
@@ -157,7 +164,7 @@ def analysis_context(analysis: Analysis, *, title: str | None = None,
     env_sel = a.environment_selection
     methods = {
         "transformation": settings.transformation,
-        "trend": _TREND[a.trend_kept],
+        "trend": _trend_handling(a),
         "basis": {**_scheme_parts(chosen),
                   **({"method": basis.method} if basis.method.startswith(("aem_", "network_"))
                      else {}),

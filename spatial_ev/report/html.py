@@ -38,7 +38,8 @@ that breaks the contract raises :class:`spatial_ev.errors.InputError` naming the
     ``variable_names`` (sequences of str), ``dropped`` (Mapping of what → list of names).
 ``methods`` : Mapping or None
     ``transformation`` (``"hellinger"``, ``"chord"``, ``"chi_square"``, ``"log_chord"``,
-    ``"presence_absence"``, ``"standardise"``, ``"none"``); ``trend`` (``"none"``,
+    ``"presence_absence"``, ``"standardise"``, ``"none"``); ``trend`` (``"none"`` — tested,
+    not significant —, ``"not_modelled"``, ``"network"`` — not modelled on a river network —,
     ``"removed"`` — linear trend on the coordinates regressed out first — or ``"covariable"`` —
     kept as a conditioning variable); ``basis`` (Mapping: ``family`` ``"graph"`` or
     ``"distance"``, ``method`` (graph name, e.g. ``"gabriel"``), ``weighting`` (e.g.

@@ -267,6 +267,17 @@ class TestReadingFiles:
         with pytest.raises(CRSError, match="local planar coordinates without a CRS"):
             read_river_network(path, SITES * 100 + ORIGIN, snap_tolerance=100.0)
 
+    def test_geojson_in_local_metres_is_named_as_such(self, tmp_path):
+        # RFC 7946 (Butler et al. 2016): GeoJSON positions are longitude/latitude (WGS 84), so
+        # readers give every GeoJSON layer EPSG:4326, also lines drawn in local metres
+        path = tmp_path / "ditches.geojson"
+        lines = gpd.GeoSeries(_utm_lines()).translate(-ORIGIN[0], -ORIGIN[1])
+        gpd.GeoDataFrame(geometry=lines).to_file(path, driver="GeoJSON", engine="pyogrio")
+        assert gpd.read_file(path).crs.to_epsg() == 4326
+        with pytest.raises(CRSError, match=r"coordinates are longitude/latitude by definition"
+                                           r".*are not degrees.*GeoPackage or Shapefile"):
+            read_river_network(path, SITES * 100, snap_tolerance=100.0)
+
     def test_missing_file_and_point_layer(self, tmp_path):
         with pytest.raises(InputError, match="network file"):
             read_river_network(tmp_path / "none.gpkg", SITES, snap_tolerance=1)

@@ -264,9 +264,19 @@ def read_river_network(path: str | os.PathLike, sites: Any, *, snap_tolerance: f
     geoms = gdf.geometry
     if target_crs is None:
         if layer_crs is not None:
+            if _degrees_out_of_range(pyproj.CRS(layer_crs), geoms):
+                x0, y0 = geoms.iloc[0].coords[0][:2]
+                raise CRSError(f"{source} says {crs_label(pyproj.CRS(layer_crs))} (every "
+                               f"GeoJSON file does: its coordinates are longitude/latitude by "
+                               f"definition), but its coordinates, e.g. {_xy((x0, y0))}, are "
+                               f"not degrees; for lines in the survey's local planar "
+                               f"coordinates, save them as a GeoPackage or Shapefile without "
+                               f"a CRS")
             raise CRSError(f"{source} is in {crs_label(pyproj.CRS(layer_crs))} but the survey "
-                           f"has local planar coordinates without a CRS; give the survey its "
-                           f"CRS (crs=...) so that both can be aligned")
+                           f"has local planar coordinates without a CRS; declare the "
+                           f"survey's CRS when reading it (the sites file's own, or the CRS "
+                           f"option of a CSV survey) so that both can be aligned, or give "
+                           f"lines in the same local coordinates without a CRS")
     else:
         if layer_crs is None:
             raise CRSError(f"{source} declares no CRS; pass crs= (EPSG code or WKT) for the "
@@ -281,6 +291,14 @@ def read_river_network(path: str | os.PathLike, sites: Any, *, snap_tolerance: f
                                node_tolerance=node_tolerance, direction=direction,
                                outlet=outlet, components=components, source=source,
                                crs=target_crs, distance_unit=unit)
+
+
+def _degrees_out_of_range(crs: pyproj.CRS, geoms: gpd.GeoSeries) -> bool:
+    """Whether a geographic CRS is declared for coordinates that cannot be degrees."""
+    if not crs.is_geographic or geoms.empty:
+        return False
+    x0, y0, x1, y1 = geoms.total_bounds
+    return bool(min(x0, y0) < -360 or max(x1, y1) > 360 or min(y0, y1) < -90 or max(y0, y1) > 90)
 
 
 def _site_frame(sites: Any) -> tuple[pd.DataFrame, pyproj.CRS | None, str]:

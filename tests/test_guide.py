@@ -370,3 +370,19 @@ class TestGuideCoversTheTopics:
                        "Moran spectral randomisation", "read them as zero",
                        'engine="dask"', "--engine dask --scheduler", "LocalCluster"):
             assert phrase in text, phrase
+
+
+def test_sequential_rule_numbers_quoted_in_the_guide(repo_root):
+    """Section 9 quotes the sequential rule at 999 permutations and α = 0.05: the earliest
+    significant stop and the exceedance count of a non-significant stop."""
+    import numpy as np
+
+    from spatial_ev.inference.null import SequentialRule
+
+    rule = SequentialRule.checked(0.05)
+    looks = np.asarray(rule.looks(999)[:-1])
+    first_stop = int(looks[rule.significant_counts(999) >= 0][0])
+    text = " ".join((repo_root / "docs" / "guide.md").read_text(encoding="utf-8").split())
+    assert (f"With 999 permutations and α = 0.05, a clearly significant step stops after "
+            f"{first_stop} permutations and a clearly non-significant one at its "
+            f"{rule.exceedances(999)}th exceedance") in text

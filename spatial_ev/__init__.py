@@ -19,6 +19,8 @@ __version__ = "0.1.0"
 # public name -> module that defines it
 _PUBLIC = {
     "read_survey": "input.survey",
+    "read_river_network": "input.network",
+    "aem_eigenvectors": "space.directional",
     "Survey": "input.survey",
     "neighbour_graph": "space.graphs",
     "NeighbourGraph": "space.graphs",

@@ -42,6 +42,7 @@ def data(tmp_path_factory) -> dict:
     """A small survey keyed by non-contiguous integer site ids, in files and frames."""
     from spatial_ev.space.graphs import neighbour_graph
     from spatial_ev.space.eigen import distance_eigenvectors
+    from spatial_ev.input.network import read_river_network
     from spatial_ev.input.survey import Survey
     from spatial_ev.stats.transform import transform
 
@@ -72,8 +73,23 @@ def data(tmp_path_factory) -> dict:
 
         pilot = analyse(survey, spatial_weighting="single", schemes="distance",
                         n_permutations=49, seed=SEED)
+    # a comb-shaped river under the sites: a trunk along x = 0 flowing south, one branch from
+    # the east every 100 m, digitised downstream; every site lies within 50 m of a line
+    import geopandas as gpd
+    import shapely
+
+    ox, oy = 400_000, 5_500_000
+    stops = [900.0, *np.arange(750.0, -1.0, -100.0), -50.0]
+    trunk = [shapely.LineString([(ox, oy + a), (ox, oy + b)])
+             for a, b in zip(stops[:-1], stops[1:])]
+    branches = [shapely.LineString([(ox + 850, oy + y), (ox, oy + y)])
+                for y in np.arange(750.0, -1.0, -100.0)]
+    gpd.GeoDataFrame(geometry=trunk + branches, crs="EPSG:32631").to_file(
+        folder / "network.gpkg", engine="pyogrio")
+    network = read_river_network(folder / "network.gpkg", survey, snap_tolerance=60.0)
     return {"ids": ids, "coords": coords, "species": species, "env": env, "Y": Y,
             "graph": graph, "basis": basis, "survey": survey, "folder": folder, "pilot": pilot,
+            "network": network,
             "paths": {k: folder / f"{k}.csv" for k in ("sites", "species", "environment")}}
 
 
@@ -106,6 +122,19 @@ CONTRACTS: dict[str, Contract] = {
         bad=lambda d: _f("read_survey")(d["paths"]["sites"], crs="EPSG:32631",
                                         incomplete_sites="ignore"),
         bad_match=r"incomplete_sites"),
+    "read_river_network": Contract(
+        lambda d: _f("read_river_network")(d["folder"] / "network.gpkg", d["survey"],
+                                           snap_tolerance=60.0),
+        ("path", "sites"),
+        labels=lambda r, d: [(r.site_ids, d["ids"])],
+        bad=lambda d: _f("read_river_network")(d["folder"] / "network.gpkg", d["survey"],
+                                               snap_tolerance=-1.0),
+        bad_match=r"snap_tolerance"),
+    "aem_eigenvectors": Contract(
+        lambda d: _f("aem_eigenvectors")(d["network"], weighting="linear"), ("graph",),
+        labels=lambda r, d: [(r.vectors.index, d["ids"])],
+        bad=lambda d: _f("aem_eigenvectors")(d["network"], orientation="sideways"),
+        bad_match=r"orientation"),
     "neighbour_graph": Contract(
         lambda d: _f("neighbour_graph")(d["coords"], "gabriel"), ("coords", "method"),
         labels=lambda r, d: [(r.site_ids, d["ids"])],

@@ -312,3 +312,28 @@ class TestSimulatorRunsThePipeline:
         evaluate_design(spatial_pilot, ["thin:every=2"], n_simulations=2, n_permutations=99,
                         seed=20261202, n_workers=1)
         assert calls == {name: 4 for name in calls} and len(calls) == 5  # 2 layouts × 2
+
+    def test_simulated_analyses_follow_the_pilots_step_rule(self, spatial_pilot, monkeypatch):
+        # a pilot run with sequential step tests is simulated with them too (one pipeline)
+        import dataclasses
+
+        import spatial_ev.design.simulate as simulate
+        from spatial_ev.design.evaluate import evaluate_design
+
+        rules = []
+        original = simulate.StepOptions
+
+        def recorded(*args, **kwargs):
+            options = original(*args, **kwargs)
+            rules.append(options.step_tests)
+            return options
+        monkeypatch.setattr(simulate, "StepOptions", recorded)
+        sequential = dataclasses.replace(spatial_pilot, settings=dataclasses.replace(
+            spatial_pilot.settings, step_tests="sequential"))
+        evaluate_design(sequential, ["thin:every=2"], n_simulations=2, n_permutations=99,
+                        seed=20261202, n_workers=1)
+        assert rules == ["sequential"] * 4
+        rules.clear()
+        evaluate_design(spatial_pilot, ["thin:every=2"], n_simulations=2, n_permutations=99,
+                        seed=20261202, n_workers=1)
+        assert rules == ["full"] * 4

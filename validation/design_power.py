@@ -159,7 +159,7 @@ def true_power(pilot, layouts, n_surveys: int, seed: int, n_permutations: int = 
     settings = SimulationSettings(alpha, level, n_permutations,
                                   max(n_permutations, math.ceil(4 / level) - 1),
                                   pilot.settings.trend, tuple(pilot.settings.scale_breaks),
-                                  classes, model)
+                                  classes, model, step_tests=pilot.settings.step_tests)
     rows = []
     replicates = np.random.SeedSequence(seed).spawn(n_surveys)
     for lay in layouts:

@@ -612,7 +612,8 @@ def evaluate_design(pilot: Analysis, layouts: Sequence[CandidateLayout | str], *
     global_permutations = max(n_permutations, math.ceil(4 / level) - 1)
     settings = SimulationSettings(alpha, level, n_permutations, global_permutations,
                                   pilot.settings.trend, tuple(pilot.settings.scale_breaks),
-                                  tuple(classes["scale_class"]), model)
+                                  tuple(classes["scale_class"]), model,
+                                  step_tests=pilot.settings.step_tests)
     # common random numbers: replicate r draws the same landscape at every layout
     replicates = np.random.SeedSequence(seed).spawn(n_simulations)
     tasks = [(i, rep) for i in range(len(built)) for rep in replicates]

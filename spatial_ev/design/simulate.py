@@ -773,6 +773,9 @@ class SimulationSettings:
         The pilot's scale classes, in order.
     model : PilotModel
         The generator of the simulated landscapes.
+    step_tests : {"full", "sequential"}
+        The pilot's rule for forward-selection step tests, applied to every simulated
+        analysis (:attr:`~spatial_ev.pipeline.options.StepOptions.step_tests`).
     """
 
     alpha: float
@@ -783,6 +786,7 @@ class SimulationSettings:
     breaks: tuple
     class_names: tuple
     model: PilotModel = field(repr=False)
+    step_tests: str = "full"
 
 
 class Simulator:
@@ -926,7 +930,8 @@ def analyse_survey(Y: np.ndarray, environment: pd.DataFrame | None, lay: _Layout
     env_table = environment
     if env_table is not None:
         env_table = env_table[list(lay.env_columns)] if lay.env_columns else None
-    alpha, options = s.alpha, StepOptions(n_permutations=s.n_permutations)
+    alpha, options = s.alpha, StepOptions(n_permutations=s.n_permutations,
+                                          step_tests=s.step_tests)
     trend = trend_step(Y, lay.coords, mode=s.trend, alpha=alpha, seed=streams[0],
                        options=options)
     env_step = environment_step(Y, env_table, alpha=alpha, seed=streams[1], options=options)

@@ -2,7 +2,7 @@
 
 Run:  python benchmarks/analysis_scaling.py [--sizes 500 2000 10000] [--permutations 999]
                                             [--modes threads processes1 processes2]
-                                            [--step-tests full|sequential]
+                                            [--step-tests full|sequential|shared]
 
 Surveys (our own generator, fixed seeds): an irregular clustered layout of constant sampling
 density (20 % of the sites spread uniformly, 80 % in Gaussian clusters of ~250 sites, domain
@@ -267,9 +267,10 @@ def main() -> None:
                         help="numbers of sites (default 500 2000 10000; 100000 is accepted)")
     parser.add_argument("--permutations", type=int, default=999)
     parser.add_argument("--modes", nargs="+", default=list(MODES), choices=MODES)
-    parser.add_argument("--step-tests", default="full", choices=("full", "sequential"),
-                        help="forward-selection step tests: every permutation (full) or "
-                             "stopping once p <= alpha is settled (sequential)")
+    parser.add_argument("--step-tests", default="full", choices=("full", "sequential", "shared"),
+                        help="forward-selection step tests: every permutation (full), "
+                             "stopping once p <= alpha is settled (sequential) or one set "
+                             "of permutations shared by the steps (shared)")
     parser.add_argument("--one", type=int, default=None, help=argparse.SUPPRESS)
     parser.add_argument("--mode", default="threads", help=argparse.SUPPRESS)
     args = parser.parse_args()

@@ -298,6 +298,18 @@ class TestSequentialStepTests:
         assert early.fraction_tests == full.fraction_tests
         assert early.fractions == full.fractions
 
+    def test_shared_permutations_reach_every_selection(self, repo_root):
+        folder = repo_root / "data_demo"
+        survey = read_survey(folder / "sites.gpkg", folder / "species.csv",
+                             folder / "environment.csv")
+        shared = analyse(survey, n_permutations=199, seed=5, environment_test="permutation",
+                         schemes=["distance", "gabriel/binary"], step_tests="shared")
+        assert shared.settings.step_tests == "shared"
+        for selection in (shared.environment_selection, shared.space_selection):
+            assert selection.shared and not selection.sequential and selection.selected
+            assert "permutations" not in selection.steps.columns
+        assert "one set shared by every step" in shared.space_selection.summary()
+
     def test_bad_rule_is_named(self):
         with pytest.raises(InputError, match="step_tests"):
             analyse(small_survey(), n_permutations=99, seed=1, step_tests="early")

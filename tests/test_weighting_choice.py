@@ -253,8 +253,24 @@ class TestSequentialStepTests:
                                         n_workers=2)
         _assert_same_comparison(out, early)
 
+    def test_shared_permutations_same_on_every_engine(self, broad_data, sequential):
+        xy, Y = broad_data
+        local = compare_weighting_schemes(Y, xy, n_permutations=199, seed=11,
+                                          shared_steps=True)
+        assert local.selection.shared and not local.selection.sequential
+        # global tests are unchanged; steps rest on the full count of shared permutations
+        cols = ["global_pseudo_f", "global_p", "significant"]
+        pd.testing.assert_frame_equal(local.table[cols], sequential.table[cols])
+        p = local.selection.steps["p_value"].dropna().to_numpy()
+        np.testing.assert_allclose(p * 200, np.round(p * 200), atol=1e-9)
+        out = compare_weighting_schemes(Y, xy, n_permutations=199, seed=11, shared_steps=True,
+                                        engine="processes", n_workers=2)
+        _assert_same_comparison(out, local)
+
     def test_validation(self, broad_data):
         xy, Y = broad_data
+        with pytest.raises(InputError, match="cannot both be on"):
+            compare_weighting_schemes(Y, xy, sequential_steps=True, shared_steps=True)
         with pytest.raises(InputError, match="`sequential_steps` must be True or False"):
             compare_weighting_schemes(Y, xy, sequential_steps="yes")
         with pytest.raises(InputError, match="decision_risk"):

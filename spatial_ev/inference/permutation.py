@@ -69,7 +69,8 @@ import scipy.linalg
 
 from spatial_ev._validation import check_int, check_option, check_rng
 from spatial_ev.stats.linear import (
-    Table, LinearModel, check_explanatory, check_response, model_fraction, prepare_model)
+    Table, LinearModel, adjusted_r2, check_explanatory, check_response, model_fraction,
+    prepare_model)
 from spatial_ev.inference.engines import run_tasks
 from spatial_ev.errors import InputError
 from spatial_ev.inference.null import (SeedBlocks, SequentialRule, check_run_options,
@@ -77,7 +78,7 @@ from spatial_ev.inference.null import (SeedBlocks, SequentialRule, check_run_opt
 from spatial_ev.stats.linear import reduce_response
 
 __all__ = ["permutation_test", "PermutationTest", "axis_tests", "term_tests", "permutations",
-           "orthonormal_permutation_test", "RESTRICTIONS"]
+           "orthonormal_permutation_test", "RESTRICTIONS", "SharedStepPermutations"]
 
 RESTRICTIONS = ("free", "blocks", "cyclic", "toroidal")
 _GATHER_BYTES = 8 * 2 ** 20
@@ -562,6 +563,152 @@ def orthonormal_permutation_test(y: np.ndarray, within: np.ndarray, tested: np.n
         n_permutations=used, method="reduced_residual" if within.shape[1] else "raw",
         restriction="free", r2=fraction.r2, r2_adj=fraction.r2_adj, df_model=fraction.rank,
         df_residual=kernel.df_residual, stop=stop)
+
+
+class SharedStepPermutations:
+    """Step tests of one forward selection on one shared set of permutations, updated as the
+    model grows instead of recomputed.
+
+    Each step tests a new orthonormal column x given the model's orthonormal basis Q by the
+    reduced-model residual permutation test of :func:`orthonormal_permutation_test`
+    (Freedman & Lane 1983): pseudo-F of x on the permuted residuals R of the response on Q.
+    Its permutation statistic needs ‖Q'ΠR‖² for every permutation Π, which costs n·k·p per
+    permutation when computed afresh (k columns in Q, p responses). Here the N permutations are
+    drawn once for the whole selection, and when a column q enters the model
+    (R ← R − q c', c = R'q) that quantity is updated per permutation from Q'Πq and Q'ΠRc
+    (n·k each) and q'ΠR (n·p): about n·(2k + p) instead of n·k·p.
+
+    Every step is still an exact permutation test of its own null hypothesis with N random
+    permutations; the steps of one selection share them, so their p-values are dependent (as
+    they are anyway, being computed on one data set), and they differ from those of
+    :func:`orthonormal_permutation_test` with per-step seeds.
+
+    Parameters
+    ----------
+    y : ndarray, shape (n, p)
+        Centred response.
+    within : ndarray, shape (n, k)
+        Orthonormal, centred basis of the model before the first step (k may be 0).
+    n_permutations : int
+        N, the permutations every step is tested with (≥ 1).
+    seed : int or numpy.random.Generator, optional
+        Fixes the permutations (:func:`permutations`, free restriction).
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(7)
+    >>> x = rng.normal(size=(40, 1)); x -= x.mean(0); x /= np.linalg.norm(x)
+    >>> y = 30 * x @ rng.normal(size=(1, 4)) + rng.normal(size=(40, 4)); y -= y.mean(0)
+    >>> steps = SharedStepPermutations(y, np.zeros((40, 0)), 199, seed=1)
+    >>> steps.test(x[:, 0]).p_value
+    0.005
+    >>> steps.add(x[:, 0]); steps.n_columns
+    1
+    """
+
+    _ROWS_BYTES = 8 * 2 ** 20   # gathered rows per batch (about 8 MiB)
+
+    def __init__(self, y: np.ndarray, within: np.ndarray, n_permutations: int,
+                 seed: None | int | np.random.Generator = None) -> None:
+        y, within = (_check_orthonormal_piece(name, a) for name, a in
+                     (("y", y), ("within", within)))
+        n = y.shape[0]
+        if within.shape[0] != n:
+            raise InputError(f"`within` has {within.shape[0]} rows but `y` has {n}; every "
+                             f"table must have one row per site")
+        self.n_permutations = check_int("n_permutations", n_permutations, low=1)
+        self._perms = permutations(n, self.n_permutations, seed=seed)
+        self._inverse = np.empty_like(self._perms)
+        np.put_along_axis(self._inverse, self._perms, np.arange(n)[None, :], axis=1)
+        self._q = np.array(within, dtype=float, copy=True)
+        self._r = y - self._q @ (self._q.T @ y) if self._q.shape[1] else y.copy()
+        self._y_ss = float(np.einsum("ij,ij->", y, y))
+        self._ss = float(np.einsum("ij,ij->", self._r, self._r))
+        self._a = np.zeros(self.n_permutations)
+        if self._q.shape[1]:
+            for rows, part in self._batches(width=y.shape[1]):
+                g = self._r.take(part.T, axis=0)                       # (n, m, p)
+                prod = np.einsum("nk,nmp->mkp", self._q, g, optimize=True)
+                self._a[rows] = np.einsum("mkp,mkp->m", prod, prod)
+
+    @property
+    def n_columns(self) -> int:
+        """Columns in the model so far (the starting basis and those added)."""
+        return self._q.shape[1]
+
+    def _batches(self, inverse: bool = False, width: int = 1):
+        """Permutation rows in batches whose gathered values (``width`` per site and
+        permutation) take about 8 MiB."""
+        n = self._r.shape[0]
+        step = max(1, self._ROWS_BYTES // (8 * n * max(width, 1)))
+        source = self._inverse if inverse else self._perms
+        for start in range(0, self.n_permutations, step):
+            rows = slice(start, min(start + step, self.n_permutations))
+            yield rows, source[rows]
+
+    def _column(self, column: Any) -> np.ndarray:
+        x = np.asarray(column, dtype=float).reshape(-1)
+        if x.shape[0] != self._r.shape[0] or not np.isfinite(x).all():
+            raise InputError(f"`column` must be {self._r.shape[0]} finite values (one per "
+                             f"site)")
+        if abs(float(x @ x) - 1.0) > 1e-8:
+            raise InputError(f"`column` must have unit norm (orthonormalised against the "
+                             f"model); its norm is {float(np.sqrt(x @ x)):.6g}")
+        return x
+
+    def test(self, column: Any) -> PermutationTest:
+        """Test ``column`` (unit norm, orthogonal to the model) given the model.
+
+        Returns
+        -------
+        PermutationTest
+            With ``method="reduced_residual"`` (``"raw"`` before any column), the null
+            distribution over the N shared permutations.
+        """
+        x = self._column(column)
+        n, k = self._r.shape[0], self._q.shape[1]
+        df_res = n - 1 - k - 1
+        if df_res <= 0:
+            raise InputError(f"the model has {k + 1} predictors for {n} sites, which leaves "
+                             f"no residual degrees of freedom; test fewer columns")
+        xr = x @ self._r
+        b_obs = float(xr @ xr)
+        b = np.empty(self.n_permutations)
+        for rows, part in self._batches(inverse=True):
+            prod = x[part] @ self._r                                      # (m, p)
+            b[rows] = np.einsum("mp,mp->m", prod, prod)
+        observed = b_obs / (max(self._ss - b_obs, 0.0) / df_res)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            null = b / (np.maximum(self._ss - self._a - b, 0.0) / df_res)
+        null = np.where(np.isfinite(null), null, np.inf)
+        r2_w = 1.0 - self._ss / self._y_ss
+        r2_xw = r2_w + b_obs / self._y_ss
+        adj = adjusted_r2(r2_xw, n, k + 1) - (adjusted_r2(r2_w, n, k) if k else 0.0)
+        return PermutationTest(
+            statistic=float(observed), p_value=float(permutation_p_value(observed, null)),
+            null_distribution=null, n_permutations=self.n_permutations,
+            method="reduced_residual" if k else "raw", restriction="free",
+            r2=float(b_obs / self._y_ss), r2_adj=float(adj), df_model=1, df_residual=df_res)
+
+    def add(self, column: Any) -> None:
+        """Enter ``column`` (unit norm, orthogonal to the model) into the model."""
+        q = self._column(column)
+        c = self._r.T @ q                                                  # (p,)
+        r = self._r @ c                                                    # (n,)
+        cc = float(c @ c)
+        for rows, part in self._batches():
+            qp, rp = q[part], r[part]                                      # (m, n)
+            if self._q.shape[1]:
+                u, v = qp @ self._q, rp @ self._q                          # (m, k)
+                update = -2.0 * np.einsum("mk,mk->m", u, v) + cc * np.einsum("mk,mk->m", u, u)
+            else:
+                update = np.zeros(qp.shape[0])
+            s = qp @ q                                                     # (m,)
+            w = q[self._inverse[rows]] @ self._r - s[:, None] * c[None, :]  # (m, p)
+            self._a[rows] += update + np.einsum("mp,mp->m", w, w)
+        self._r = self._r - np.outer(q, c)
+        self._ss = max(self._ss - cc, 0.0)
+        self._q = np.column_stack([self._q, q])
 
 
 def _check_orthonormal_piece(name: str, a: Any) -> np.ndarray:

@@ -155,7 +155,7 @@ class AnalysisSettings:
         Directional schemes' settings when a river network or a bearing was given:
         ``network`` (its source or None), ``bearing``, ``orientations``, ``edge_weightings``,
         ``weight_by``.
-    step_tests : {"full", "sequential"}
+    step_tests : {"full", "sequential", "shared"}
         How forward-selection step tests drew permutations (see :func:`analyse`).
 
     Examples
@@ -452,14 +452,18 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         ``"concave_down:<α>"``, ``"concave_up:<β>"``; default binary and linear).
     weight_by : {"edge_length", "network_distance"}
         What a river AEM's non-binary edge weighting is a function of.
-    step_tests : {"full", "sequential"}
+    step_tests : {"full", "sequential", "shared"}
         ``"full"`` (default): every forward-selection step test draws ``n_permutations``.
         ``"sequential"``: a step test stops drawing once "p ≤ α?" is settled with resampling
         risk ≤ 0.001 (Besag & Clifford 1991, Biometrika 78:301–304, for non-significant
         steps; Gandy 2009, JASA 104:1504–1511, either way); each step's p-value then rests on
         the permutations it drew (column ``permutations`` of the step tables). Global, fraction
         and class tests always draw the full count. The decisions are the same on every
-        engine and worker count.
+        engine and worker count. ``"shared"``: every step of a selection is tested on one set
+        of ``n_permutations`` permutations, updated as the model grows instead of recomputed
+        (:class:`~spatial_ev.inference.permutation.SharedStepPermutations`); each step is
+        the same test, with other random permutations than ``"full"``, at a fraction of the
+        cost on large surveys.
 
     Returns
     -------

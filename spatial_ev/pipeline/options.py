@@ -14,7 +14,7 @@ from spatial_ev.inference.engines import ENGINES
 __all__ = ["DEFAULT_OPTIONS", "STEP_TESTS", "StepOptions"]
 
 #: how forward-selection step tests draw permutations (:attr:`StepOptions.step_tests`)
-STEP_TESTS = ("full", "sequential")
+STEP_TESTS = ("full", "sequential", "shared")
 
 
 @dataclass(frozen=True)
@@ -33,11 +33,13 @@ class StepOptions:
         Worker threads or processes (default: the engine's, one per core).
     progress : callable, optional
         Called with a short message at each stage and test; the steps never print.
-    step_tests : {"full", "sequential"}
-        Forward-selection step tests draw every permutation (``"full"``) or stop once
+    step_tests : {"full", "sequential", "shared"}
+        Forward-selection step tests draw every permutation (``"full"``), stop once
         "p ≤ α?" is settled with a bounded resampling risk (``"sequential"``;
-        :class:`~spatial_ev.inference.null.SequentialRule`). Global and fraction tests always
-        draw the full count.
+        :class:`~spatial_ev.inference.null.SequentialRule`), or use one set of permutations
+        for every step of a selection, updated as the model grows (``"shared"``;
+        :class:`~spatial_ev.inference.permutation.SharedStepPermutations`). Global and
+        fraction tests always draw the full count.
 
     Examples
     --------
@@ -73,8 +75,9 @@ class StepOptions:
 
     def selection_tests(self) -> dict[str, Any]:
         """Keyword arguments of a forward selection or scheme comparison: those of
-        :meth:`tests` and ``sequential_steps``."""
-        return {**self.tests(), "sequential_steps": self.step_tests == "sequential"}
+        :meth:`tests`, ``sequential_steps`` and ``shared_steps``."""
+        return {**self.tests(), "sequential_steps": self.step_tests == "sequential",
+                "shared_steps": self.step_tests == "shared"}
 
     def say(self, message: str) -> None:
         """Pass a stage message to ``progress`` (nothing when it is None)."""

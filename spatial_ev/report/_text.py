@@ -290,6 +290,11 @@ def methods_paragraphs(context: Mapping, cite: Citations, unit: str) -> list[str
         tests.append(f"Tests used {int(n_perm):,} random permutations {how}; p-values count "
                      "the observed statistic among the permuted ones"
                      f"{cite('Phipson & Smyth 2010')}.{repeat}")
+        if m.get("step_tests") == "shared":
+            tests.append("The steps of each forward selection were tested on one shared set "
+                         "of permutations, updated as the model grew; each step is the same "
+                         "residual permutation test, and its p-value counts the observed "
+                         "statistic among those permutations.")
         if m.get("step_tests") == "sequential":
             tests.append("Forward-selection step tests stopped drawing permutations once the "
                          "decision p ≤ α was settled, with a resampling risk of at most 0.001"

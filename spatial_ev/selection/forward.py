@@ -32,9 +32,13 @@ from spatial_ev.inference.engines import ENGINES
 from spatial_ev.errors import DroppedVariablesWarning, InputError
 from spatial_ev.stats.linear import check_rows
 from spatial_ev.inference.null import SequentialRule
-from spatial_ev.inference.permutation import orthonormal_permutation_test, permutation_test
+from spatial_ev.inference.permutation import (
+    SharedStepPermutations,
+    orthonormal_permutation_test,
+    permutation_test,
+)
 
-__all__ = ["forward_selection", "ForwardSelection", "GrowingBasis"]
+__all__ = ["forward_selection", "ForwardSelection", "GrowingBasis", "check_step_rule"]
 
 #: relative tolerance below which a candidate is taken as collinear with the model so far
 _COLLINEAR_RTOL = 1e-10
@@ -85,6 +89,9 @@ class ForwardSelection:
         The bound ε of the sequential rule (None when ``sequential`` is False).
     step_permutations : int
         Permutations drawn by all step tests together (not the global test).
+    shared : bool
+        Whether every step was tested on one shared set of permutations
+        (``shared_steps`` of :func:`forward_selection`).
     """
 
     selected: tuple
@@ -101,6 +108,7 @@ class ForwardSelection:
     sequential: bool = False
     decision_risk: float | None = None
     step_permutations: int = 0
+    shared: bool = False
 
     @property
     def r2_adj(self) -> float:
@@ -116,7 +124,8 @@ class ForwardSelection:
         """Return a plain-text account of the selection and its stopping rule."""
         how = (f"up to {self.n_permutations} permutations per step, stopping once the "
                f"decision is settled (risk {self.decision_risk:g})" if self.sequential
-               else f"{self.n_permutations} permutations per test")
+               else f"{self.n_permutations} permutations per test"
+               + (", one set shared by every step" if self.shared else ""))
         lines = [f"Forward selection among {self.n_candidates} candidates "
                  f"(alpha = {self.alpha:g}, {how}, {self.ranking} ranking)"]
         if self.global_test is not None:
@@ -158,6 +167,7 @@ def forward_selection(
     progress: Callable[[str], None] | None = None,
     sequential_steps: bool = False,
     decision_risk: float = 1e-3,
+    shared_steps: bool = False,
 ) -> ForwardSelection:
     """Select explanatory variables by forward selection with the double stopping criterion.
 
@@ -203,6 +213,14 @@ def forward_selection(
         and chunk size.
     decision_risk : float, default 0.001
         The bound ε of the sequential rule, in (0, 0.5).
+    shared_steps : bool, default False
+        Test every step on one set of ``n_permutations`` permutations drawn for the whole
+        selection, updated as the model grows
+        (:class:`~spatial_ev.inference.permutation.SharedStepPermutations`): each step is the
+        same reduced-model residual permutation test, at a cost per permutation of about
+        n·(2k + p) instead of n·k·p for k variables in the model and p responses. The
+        p-values differ from those with per-step permutations (other random draws). Not
+        combined with ``sequential_steps``. Step tests then run in this process.
 
     Returns
     -------
@@ -244,24 +262,40 @@ def forward_selection(
     if max_variables is not None:
         max_variables = check_int("max_variables", max_variables, low=1)
     check_option("engine", engine, ENGINES)
-    if not isinstance(sequential_steps, (bool, np.bool_)):
-        raise InputError(f"parameter `sequential_steps` must be True or False; got "
-                         f"{sequential_steps!r}")
+    check_step_rule(sequential_steps, shared_steps)
     rule = SequentialRule.checked(alpha, risk=decision_risk) if sequential_steps else None
     return run_selection(Yc, Z, names, cond, alpha_global=alpha, alpha=alpha,
                    n_permutations=n_permutations, rng=check_rng(seed),
                    global_test=global_test, r2_adj_limit=r2_adj_limit, ceiling=ceiling,
                    max_variables=max_variables, engine=engine, scheduler=scheduler,
-                   progress=progress, decision=rule)
+                   progress=progress, decision=rule, shared=bool(shared_steps))
+
+
+def check_step_rule(sequential_steps: Any, shared_steps: Any) -> None:
+    """Validate the two step-test switches of a selection (booleans, not both on).
+
+    Examples
+    --------
+    >>> check_step_rule(True, False)
+    """
+    for name, value in (("sequential_steps", sequential_steps), ("shared_steps", shared_steps)):
+        if not isinstance(value, (bool, np.bool_)):
+            raise InputError(f"parameter `{name}` must be True or False; got {value!r}")
+    if sequential_steps and shared_steps:
+        raise InputError("`sequential_steps` and `shared_steps` cannot both be on: shared "
+                         "permutations are updated for every permutation at every step")
 
 
 def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rng, global_test,
             r2_adj_limit, max_variables, engine, scheduler, progress, ceiling="strict",
-            global_result=None, decision: SequentialRule | None = None) -> ForwardSelection:
+            global_result=None, decision: SequentialRule | None = None,
+            shared: bool = False) -> ForwardSelection:
     """Forward selection on clean inputs (Yc centred; Z, cond raw columns).
 
     ``decision``: a :class:`~spatial_ev.inference.null.SequentialRule` at level ``alpha`` for
-    sequential step tests, or None for the full count. The orthonormal basis of the
+    sequential step tests, or None for the full count; ``shared``: every step on one set of
+    permutations (:class:`~spatial_ev.inference.permutation.SharedStepPermutations`). The
+    orthonormal basis of the
     conditioning variables and the selected candidates grows by one Gram–Schmidt column per
     step (:class:`GrowingBasis`) and each step is tested on it by
     :func:`~spatial_ev.inference.permutation.orthonormal_permutation_test`, so no step
@@ -287,6 +321,16 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
 
     Yr, Zr, Qc, raw_norms2, dead = remove_conditioning(Yc, Z, cond, names)
     model_basis = GrowingBasis(Qc)
+    if shared and decision is not None:
+        raise InputError("a sequential `decision` and `shared` permutations cannot be combined")
+    steps_null: list = []   # the shared permutations, drawn at the first step test
+
+    if shared:
+        def step_test(within, column):      # noqa: F811 - the shared variant
+            if not steps_null:
+                steps_null.append(SharedStepPermutations(Yt, within, n_permutations,
+                                                         seed=rng.spawn(1)[0]))
+            return steps_null[0].test(column)
     m_c = Qc.shape[1]
     r2_c = (total_ss - float(np.sum(Yr * Yr))) / total_ss
     base_adj = adjusted_r2(r2_c, n, m_c)
@@ -331,7 +375,7 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
             n_candidates=len(names), n_permutations=n_permutations,
             sequential=decision is not None,
             decision_risk=decision.risk if decision is not None else None,
-            step_permutations=drawn)
+            step_permutations=drawn, shared=shared)
 
     ranking = ranker.kind
     if gtest is not None and gtest.p_value > alpha_global:
@@ -387,6 +431,8 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
         rows.append(row)
         chosen.append(j)
         model_basis.append(column)
+        if steps_null:
+            steps_null[0].add(column)
         r2_sel = r2_new
         ranker.enter(j)
         if crossing:  # ceiling="keep_last": the crossing variable is kept, then stop

@@ -25,7 +25,7 @@ from spatial_ev.errors import DisconnectedGraphWarning, InputError
 from spatial_ev.stats.linear import check_rows
 from spatial_ev.inference.null import SequentialRule
 from spatial_ev.inference.permutation import permutation_test
-from spatial_ev.selection.forward import ForwardSelection, run_selection
+from spatial_ev.selection.forward import ForwardSelection, check_step_rule, run_selection
 
 __all__ = ["compare_weighting_schemes", "WeightingComparison", "sidak_level", "DEFAULT_SCHEMES",
            "SchemeRun", "check_schemes"]
@@ -148,6 +148,7 @@ def compare_weighting_schemes(
     progress: Callable[[str], None] | None = None,
     sequential_steps: bool = False,
     decision_risk: float = 1e-3,
+    shared_steps: bool = False,
 ) -> WeightingComparison:
     """Choose the spatial weighting scheme whose selected eigenvectors explain most variation.
 
@@ -206,6 +207,9 @@ def compare_weighting_schemes(
         schemes always draw the full count.
     decision_risk : float, default 0.001
         The bound ε of the sequential rule.
+    shared_steps : bool, default False
+        Each scheme's forward selection tests every step on one shared set of permutations,
+        as in :func:`~spatial_ev.selection.forward.forward_selection`.
 
     Returns
     -------
@@ -235,9 +239,7 @@ def compare_weighting_schemes(
                          f"{scheduler!r} with engine={engine!r}")
     if n_workers is not None:
         n_workers = check_int("n_workers", n_workers, low=1)
-    if not isinstance(sequential_steps, (bool, np.bool_)):
-        raise InputError(f"parameter `sequential_steps` must be True or False; got "
-                         f"{sequential_steps!r}")
+    check_step_rule(sequential_steps, shared_steps)
     decision = SequentialRule.checked(alpha, risk=decision_risk) if sequential_steps else None
     k = len(parsed)
     level = sidak_level(alpha, k)
@@ -259,6 +261,7 @@ def compare_weighting_schemes(
     run = SchemeRun(Yc=Yc, coords=coords, conditioning=cond, y_rows=y_rows, k=k, level=level,
                     alpha=alpha, n_permutations=n_permutations, root=root, keep=keep,
                     ceiling=ceiling, max_vectors=max_vectors, decision=decision,
+                    shared=bool(shared_steps),
                     engine="local" if parallel else engine,
                     scheduler=None if parallel else scheduler,
                     progress=None if parallel else progress)
@@ -325,6 +328,7 @@ class SchemeRun:
     ceiling: str = "strict"
     max_vectors: int | None = None
     decision: SequentialRule | None = None
+    shared: bool = False
     engine: str = "local"
     scheduler: Any = field(default=None, repr=False)
     progress: Callable[[str], None] | None = field(default=None, repr=False)
@@ -394,7 +398,8 @@ class SchemeRun:
                             n_permutations=self.n_permutations, rng=rng,
                             global_test="required", r2_adj_limit=None, max_variables=None,
                             ceiling=self.ceiling, engine=self.engine, scheduler=self.scheduler,
-                            progress=progress, global_result=gtest, decision=self.decision)
+                            progress=progress, global_result=gtest, decision=self.decision,
+                            shared=self.shared)
         row["n_selected"], row["r2_adj"] = len(sel.selected), sel.r2_adj
         return row, sel, basis
 

@@ -617,9 +617,12 @@ class SharedStepPermutations:
             raise InputError(f"`within` has {within.shape[0]} rows but `y` has {n}; every "
                              f"table must have one row per site")
         self.n_permutations = check_int("n_permutations", n_permutations, low=1)
-        self._perms = permutations(n, self.n_permutations, seed=seed)
+        # both index tables kept for the whole selection, as 32-bit rows (half the memory)
+        index = np.int32 if n < 2 ** 31 else np.int64
+        self._perms = permutations(n, self.n_permutations, seed=seed).astype(index)
         self._inverse = np.empty_like(self._perms)
-        np.put_along_axis(self._inverse, self._perms, np.arange(n)[None, :], axis=1)
+        np.put_along_axis(self._inverse, self._perms, np.arange(n, dtype=index)[None, :],
+                          axis=1)
         self._q = np.array(within, dtype=float, copy=True)
         self._r = y - self._q @ (self._q.T @ y) if self._q.shape[1] else y.copy()
         self._y_ss = float(np.einsum("ij,ij->", y, y))

@@ -183,16 +183,21 @@ def true_power(pilot, layouts, n_surveys: int, seed: int, n_permutations: int = 
     return pd.DataFrame(rows)
 
 
-def compare(pilot, n_sim: int, seed: int, fixture: str = "fixed") -> tuple[pd.DataFrame, object]:
-    """Predicted against true power per layout and objective. The fixed landscape is compared
-    with conditional simulation (the pilot's patches kept in place), the random one with
-    unconditional simulation (a new landscape like the pilot's each time)."""
-    layouts = grid_layouts()
+def predict(pilot, n_sim: int, seed: int, fixture: str):
+    """The tool's evaluation of the grid layouts from ``pilot``: conditional simulation (the
+    pilot's patches kept in place) for the fixed landscape, unconditional simulation (a new
+    landscape like the pilot's each time) for the random one."""
     truth_mode = "conditional" if _fixture(fixture) == "fixed" else "unconditional"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SpatialEVWarning)
-        ev = evaluate_design(pilot, layouts, n_simulations=n_sim, n_permutations=99,
-                             seed=seed, reference="none", truth=truth_mode)
+        return evaluate_design(pilot, grid_layouts(), n_simulations=n_sim, n_permutations=99,
+                               seed=seed, reference="none", truth=truth_mode)
+
+
+def compare(pilot, n_sim: int, seed: int, fixture: str = "fixed") -> tuple[pd.DataFrame, object]:
+    """Predicted (:func:`predict`) against true power per layout and objective."""
+    layouts = grid_layouts()
+    ev = predict(pilot, n_sim, seed, fixture)
     truth = true_power(pilot, layouts, n_sim, seed + 1, fixture=fixture)
     table = ev.power.merge(truth, on=["layout", "objective"])
     se_t = np.sqrt(table["true_power"] * (1 - table["true_power"]) / n_sim)
@@ -217,15 +222,9 @@ def pilot_spread(n_pilots: int, n_sim: int, seed: int, truth: pd.DataFrame, n_tr
 
     Returns the summary and the per-pilot predictions.
     """
-    layouts = grid_layouts()
-    truth_mode = "conditional" if _fixture(fixture) == "fixed" else "unconditional"
     runs = []
     for k in range(n_pilots):
-        pilot = grid_pilot(seed=20261300 + k, fixture=fixture)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", SpatialEVWarning)
-            ev = evaluate_design(pilot, layouts, n_simulations=n_sim, n_permutations=99,
-                                 seed=seed, reference="none", truth=truth_mode)
+        ev = predict(grid_pilot(seed=20261300 + k, fixture=fixture), n_sim, seed, fixture)
         runs.append(ev.power[["layout", "objective", "pilot_significant", "power"]]
                     .assign(pilot=k))
     each = pd.concat(runs, ignore_index=True)

@@ -265,10 +265,10 @@ def read_river_network(path: str | os.PathLike, sites: Any, *, snap_tolerance: f
     if target_crs is None:
         if layer_crs is not None:
             if _degrees_out_of_range(pyproj.CRS(layer_crs), geoms):
-                x0, y0 = geoms.iloc[0].coords[0][:2]
+                first = shapely.get_coordinates(geoms.iloc[0])[0]   # any line type
                 raise CRSError(f"{source} says {crs_label(pyproj.CRS(layer_crs))} (every "
                                f"GeoJSON file does: its coordinates are longitude/latitude by "
-                               f"definition), but its coordinates, e.g. {_xy((x0, y0))}, are "
+                               f"definition), but its coordinates, e.g. {_xy(first)}, are "
                                f"not degrees; for lines in the survey's local planar "
                                f"coordinates, save them as a GeoPackage or Shapefile without "
                                f"a CRS")
@@ -298,7 +298,7 @@ def _degrees_out_of_range(crs: pyproj.CRS, geoms: gpd.GeoSeries) -> bool:
     if not crs.is_geographic or geoms.empty:
         return False
     x0, y0, x1, y1 = geoms.total_bounds
-    return bool(min(x0, y0) < -360 or max(x1, y1) > 360 or min(y0, y1) < -90 or max(y0, y1) > 90)
+    return bool(x0 < -360 or x1 > 360 or y0 < -90 or y1 > 90)
 
 
 def _site_frame(sites: Any) -> tuple[pd.DataFrame, pyproj.CRS | None, str]:

@@ -315,6 +315,8 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
                                 seed=rng.spawn(1)[0], engine=engine, scheduler=scheduler)
 
     def step_test(within, column):
+        if shared_null is not None:
+            return shared_null.test(column)
         return orthonormal_permutation_test(
             Yt, within, column[:, None], n_permutations=n_permutations, seed=rng.spawn(1)[0],
             engine=engine, scheduler=scheduler, decision=decision)
@@ -323,14 +325,7 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
     model_basis = GrowingBasis(Qc)
     if shared and decision is not None:
         raise InputError("a sequential `decision` and `shared` permutations cannot be combined")
-    steps_null: list = []   # the shared permutations, drawn at the first step test
-
-    if shared:
-        def step_test(within, column):      # noqa: F811 - the shared variant
-            if not steps_null:
-                steps_null.append(SharedStepPermutations(Yt, within, n_permutations,
-                                                         seed=rng.spawn(1)[0]))
-            return steps_null[0].test(column)
+    shared_null = None   # drawn after the global test, from the stream of the first step test
     m_c = Qc.shape[1]
     r2_c = (total_ss - float(np.sum(Yr * Yr))) / total_ss
     base_adj = adjusted_r2(r2_c, n, m_c)
@@ -381,6 +376,9 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
     if gtest is not None and gtest.p_value > alpha_global:
         return finish(f"global test not significant (p = {gtest.p_value:.4g} > {alpha_global:g})")
 
+    if shared:
+        shared_null = SharedStepPermutations(Yt, model_basis.columns, n_permutations,
+                                             seed=rng.spawn(1)[0])
     chosen: list[int] = []
     r2_sel = 0.0
     reason = "every candidate was added"
@@ -431,8 +429,8 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
         rows.append(row)
         chosen.append(j)
         model_basis.append(column)
-        if steps_null:
-            steps_null[0].add(column)
+        if shared_null is not None:
+            shared_null.add(column)
         r2_sel = r2_new
         ranker.enter(j)
         if crossing:  # ceiling="keep_last": the crossing variable is kept, then stop

@@ -607,6 +607,11 @@ class SharedStepPermutations:
     """
 
     _ROWS_BYTES = 8 * 2 ** 20   # gathered rows per batch (about 8 MiB)
+    #: both index tables are kept as native (intp) indices while they take at most this many
+    #: bytes together; above it (e.g. 100,000 sites × 999 permutations) as 32-bit indices,
+    #: converted one batch at a time. numpy converts 32-bit indices before every gather, which
+    #: makes a gather about three times slower (measured by benchmarks/permutation_engine.py).
+    _NATIVE_INDEX_BYTES = 2 * 2 ** 30
 
     def __init__(self, y: np.ndarray, within: np.ndarray, n_permutations: int,
                  seed: None | int | np.random.Generator = None) -> None:
@@ -617,40 +622,49 @@ class SharedStepPermutations:
             raise InputError(f"`within` has {within.shape[0]} rows but `y` has {n}; every "
                              f"table must have one row per site")
         self.n_permutations = check_int("n_permutations", n_permutations, low=1)
-        # both index tables kept for the whole selection, as 32-bit rows (half the memory)
-        index = np.int32 if n < 2 ** 31 else np.int64
-        self._perms = permutations(n, self.n_permutations, seed=seed).astype(index)
-        self._inverse = np.empty_like(self._perms)
-        np.put_along_axis(self._inverse, self._perms, np.arange(n, dtype=index)[None, :],
-                          axis=1)
-        self._q = np.array(within, dtype=float, copy=True)
-        self._r = y - self._q @ (self._q.T @ y) if self._q.shape[1] else y.copy()
+        # rows contiguous: each gather reads one permutation's indices in a run
+        perms = np.ascontiguousarray(permutations(n, self.n_permutations, seed=seed),
+                                     dtype=np.intp)
+        inverse = np.empty_like(perms)
+        np.put_along_axis(inverse, perms, np.arange(n, dtype=np.intp)[None, :], axis=1)
+        if 2 * perms.nbytes > self._NATIVE_INDEX_BYTES:
+            compact = np.int32 if n < 2 ** 31 else np.int64
+            perms, inverse = perms.astype(compact), inverse.astype(compact)
+        self._perms, self._inverse = perms, inverse
+        k = within.shape[1]
+        self._store = np.empty((n, max(2 * k, 16)))     # the model's basis; doubles when full
+        self._store[:, :k] = within
+        self._k = k
+        q = self._store[:, :k]
+        self._r = y - q @ (q.T @ y) if k else y.copy()
         self._y_ss = float(np.einsum("ij,ij->", y, y))
         self._ss = float(np.einsum("ij,ij->", self._r, self._r))
         self._a = np.zeros(self.n_permutations)
-        if self._q.shape[1]:
+        self._tested: tuple[np.ndarray, np.ndarray] | None = None   # (column, its x'ΠR)
+        self._work: np.ndarray | None = None                          # gather buffer
+        if k:
             for rows, part in self._batches(width=y.shape[1]):
                 g = self._r.take(part.T, axis=0)                       # (n, m, p)
-                prod = np.einsum("nk,nmp->mkp", self._q, g, optimize=True)
+                prod = np.einsum("nk,nmp->mkp", q, g, optimize=True)
                 self._a[rows] = np.einsum("mkp,mkp->m", prod, prod)
 
     @property
     def n_columns(self) -> int:
         """Columns in the model so far (the starting basis and those added)."""
-        return self._q.shape[1]
+        return self._k
 
     def _batches(self, inverse: bool = False, width: int = 1):
-        """Permutation rows in batches whose gathered values (``width`` per site and
-        permutation) take about 8 MiB."""
+        """Permutation rows (as native indices) in batches whose gathered values (``width``
+        per site and permutation) take about 8 MiB."""
         n = self._r.shape[0]
         step = max(1, self._ROWS_BYTES // (8 * n * max(width, 1)))
         source = self._inverse if inverse else self._perms
         for start in range(0, self.n_permutations, step):
             rows = slice(start, min(start + step, self.n_permutations))
-            yield rows, source[rows]
+            yield rows, source[rows].astype(np.intp, copy=False)
 
     def _column(self, column: Any) -> np.ndarray:
-        x = np.asarray(column, dtype=float).reshape(-1)
+        x = np.ascontiguousarray(column, dtype=float).reshape(-1)   # gathers need it dense
         if x.shape[0] != self._r.shape[0] or not np.isfinite(x).all():
             raise InputError(f"`column` must be {self._r.shape[0]} finite values (one per "
                              f"site)")
@@ -658,6 +672,28 @@ class SharedStepPermutations:
             raise InputError(f"`column` must have unit norm (orthonormalised against the "
                              f"model); its norm is {float(np.sqrt(x @ x)):.6g}")
         return x
+
+    def _gather(self, values: np.ndarray, part: np.ndarray, into: int = 0) -> np.ndarray:
+        """``values`` (n,) permuted by each row of ``part``, written into rows ``into``…
+        of a work buffer kept between calls (a fresh 8 MiB array per gather costs more in
+        page faults than the gather itself)."""
+        m, n = part.shape
+        if self._work is None or self._work.shape[0] < into + m:
+            self._work = np.empty((max(2 * m, into + m), n))
+        out = self._work[into:into + m]
+        np.take(values, part, out=out, mode="wrap")    # indices are valid: no checking copy
+        return out
+
+    def _projections(self, x: np.ndarray) -> np.ndarray:
+        """x'ΠR for every permutation Π, shape (N, p); kept for the column last tested,
+        which is the one a selection adds next."""
+        if self._tested is not None and np.array_equal(self._tested[0], x):
+            return self._tested[1]
+        out = np.empty((self.n_permutations, self._r.shape[1]))
+        for rows, part in self._batches(inverse=True):
+            np.matmul(self._gather(x, part), self._r, out=out[rows])    # (Π'x)'R = x'ΠR
+        self._tested = (x.copy(), out)
+        return out
 
     def test(self, column: Any) -> PermutationTest:
         """Test ``column`` (unit norm, orthogonal to the model) given the model.
@@ -669,17 +705,15 @@ class SharedStepPermutations:
             distribution over the N shared permutations.
         """
         x = self._column(column)
-        n, k = self._r.shape[0], self._q.shape[1]
+        n, k = self._r.shape[0], self._k
         df_res = n - 1 - k - 1
         if df_res <= 0:
             raise InputError(f"the model has {k + 1} predictors for {n} sites, which leaves "
                              f"no residual degrees of freedom; test fewer columns")
         xr = x @ self._r
         b_obs = float(xr @ xr)
-        b = np.empty(self.n_permutations)
-        for rows, part in self._batches(inverse=True):
-            prod = x[part] @ self._r                                      # (m, p)
-            b[rows] = np.einsum("mp,mp->m", prod, prod)
+        proj = self._projections(x)
+        b = np.einsum("mp,mp->m", proj, proj)
         observed = b_obs / (max(self._ss - b_obs, 0.0) / df_res)
         with np.errstate(divide="ignore", invalid="ignore"):
             null = b / (np.maximum(self._ss - self._a - b, 0.0) / df_res)
@@ -699,19 +733,29 @@ class SharedStepPermutations:
         c = self._r.T @ q                                                  # (p,)
         r = self._r @ c                                                    # (n,)
         cc = float(c @ c)
+        proj = self._projections(q)                                        # q'ΠR, (N, p)
+        k = self._k
+        basis = self._store[:, :k]
         for rows, part in self._batches():
-            qp, rp = q[part], r[part]                                      # (m, n)
-            if self._q.shape[1]:
-                u, v = qp @ self._q, rp @ self._q                          # (m, k)
-                update = -2.0 * np.einsum("mk,mk->m", u, v) + cc * np.einsum("mk,mk->m", u, u)
-            else:
-                update = np.zeros(qp.shape[0])
-            s = qp @ q                                                     # (m,)
-            w = q[self._inverse[rows]] @ self._r - s[:, None] * c[None, :]  # (m, p)
-            self._a[rows] += update + np.einsum("mp,mp->m", w, w)
+            m = part.shape[0]
+            qp = self._gather(q, part)                                     # Πq, (m, n)
+            w = proj[rows] - (qp @ q)[:, None] * c[None, :]                # q'ΠR_new
+            update = np.einsum("mp,mp->m", w, w)
+            if k:
+                self._gather(r, part, into=m)                              # [Πq; Πr]
+                both = self._work[:2 * m] @ basis                          # Q'Πq, Q'Πr
+                u, v = both[:m], both[m:]
+                update += cc * np.einsum("mk,mk->m", u, u) - 2.0 * np.einsum("mk,mk->m", u, v)
+            self._a[rows] += update
         self._r = self._r - np.outer(q, c)
         self._ss = max(self._ss - cc, 0.0)
-        self._q = np.column_stack([self._q, q])
+        self._tested = None
+        if k == self._store.shape[1]:
+            grown = np.empty((self._store.shape[0], 2 * k))
+            grown[:, :k] = basis
+            self._store = grown
+        self._store[:, k] = q
+        self._k = k + 1
 
 
 def _check_orthonormal_piece(name: str, a: Any) -> np.ndarray:

@@ -432,7 +432,7 @@ def run_selection(Yc, Z, names, cond, *, alpha_global, alpha, n_permutations, rn
         if shared_null is not None:
             shared_null.add(column)
         r2_sel = r2_new
-        ranker.enter(j)
+        ranker.enter(j, column)
         if crossing:  # ceiling="keep_last": the crossing variable is kept, then stop
             row["decision"] = f"added; adjusted R² {adj_new:.4f} reaches {limit:.4f}"
             reason = f"adjusted R² reached {what}"
@@ -539,7 +539,7 @@ class _OrthogonalRanking:
     def gains(self) -> np.ndarray:
         return self._gains.copy()
 
-    def enter(self, j: int) -> None:
+    def enter(self, j: int, column: np.ndarray) -> None:
         """Nothing to update: the other contributions do not change."""
 
 
@@ -574,6 +574,38 @@ class SequentialRanking:
         self.candidates -= np.outer(q, q @ self.candidates)
 
 
+class _ProjectedRanking:
+    """General candidates, updated through their cross-products only.
+
+    Keeps C = Z'R (candidates × responses) and the squared norms w² of the candidates
+    residualised on everything entered so far, but not the residualised candidates
+    themselves: when a unit column q orthogonal to the model enters, with t = Z'q,
+    C ← C − t (q'R) and w² ← w² − t². That is one pass over the candidate table per step
+    instead of rewriting it (as :class:`SequentialRanking` does), with the same gains.
+    """
+
+    kind = "sequential"
+
+    def __init__(self, Yr, Zr, alive, raw_norms2, total_ss):
+        self._z, self._r = Zr, Yr.copy()
+        self._cross = Zr.T @ Yr
+        self._w2 = np.einsum("ij,ij->j", Zr, Zr)
+        self._alive, self._raw, self._ss = alive, raw_norms2, total_ss
+
+    def gains(self) -> np.ndarray:
+        live = self._alive & (self._w2 > _COLLINEAR_RTOL * np.maximum(self._raw, TINY))
+        return np.where(live, np.einsum("jp,jp->j", self._cross, self._cross)
+                        / np.maximum(self._w2, TINY) / self._ss, -np.inf)
+
+    def enter(self, j: int, column: np.ndarray) -> None:
+        """Account for the orthonormalised candidate ``column`` (candidate ``j``)."""
+        t = self._z.T @ column
+        qr = column @ self._r
+        self._cross -= np.outer(t, qr)
+        self._w2 -= t * t
+        self._r -= np.outer(column, qr)
+
+
 def _make_ranker(Yr, Zr, alive, raw_norms2, total_ss):
     """Orthogonal ranking when the live candidates are orthogonal (|cosine| ≤ 1e-8)."""
     norms2 = np.einsum("ij,ij->j", Zr, Zr)
@@ -581,7 +613,7 @@ def _make_ranker(Yr, Zr, alive, raw_norms2, total_ss):
     off = live.T @ live - np.eye(live.shape[1])
     if off.size == 0 or np.abs(off).max() <= _ORTHOGONAL_ATOL:
         return _OrthogonalRanking(Yr, Zr, alive, norms2, total_ss)
-    return SequentialRanking(Yr, Zr, alive, raw_norms2, total_ss)
+    return _ProjectedRanking(Yr, Zr, alive, raw_norms2, total_ss)
 
 
 # --------------------------------------------------------------------------- validation

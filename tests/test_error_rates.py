@@ -171,3 +171,48 @@ class TestSequentialStepDecisions:
         assert r["selected_sequential"] >= r["selected_fixed"] - 0.01
         assert abs(r["size_sequential"] - r["size_fixed"]) <= 0.05
         assert r["permutations_sequential"] < 0.7 * 999
+
+
+@pytest.fixture(scope="module")
+def shared():
+    # the same data analysed with per-step permutations and with one set of permutations
+    # shared by the steps of each selection, updated as vectors enter (999 permutations)
+    return {("null", "grid"): studies.sequential_study("null", "grid", 300, seed=2026120231,
+                                                       rule="shared"),
+            ("no_global_steps", "irregular"): studies.sequential_study(
+                "no_global_steps", "irregular", 300, seed=2026120232, rule="shared"),
+            ("broad", "10"): studies.sequential_study("broad", "10", 150, seed=2026120233,
+                                                      rule="shared")}
+
+
+@pytest.mark.slow
+class TestSharedStepPermutations:
+    """Each shared step is the reduced-model residual permutation test (Freedman & Lane 1983,
+    J. Bus. Econ. Stat. 1:292-298) on other random permutations than per-step tests draw, so
+    the rules agree in distribution, not replicate by replicate. Mean numbers of vectors
+    selected are compared by their paired difference, within 3 Monte Carlo standard errors
+    (common practice); rates within a binomial 99% interval."""
+
+    def test_type_one_error_of_selection_keeps_the_level(self, shared):
+        # global test first (Blanchet, Legendre & Borcard 2008, Ecology 89:2623-2632); the
+        # first step uses the first step test's permutations under both rules, so only the
+        # later steps can differ: compared by the mean number of vectors selected
+        r = shared[("null", "grid")]
+        _, hi = binomial_interval(300)
+        assert r["selected_shared"] <= hi
+        assert abs(r["size_shared"] - r["size_fixed"]) <= 3 * r["size_gap_se"] + 1e-12
+
+    def test_later_null_steps_keep_their_level(self, shared):
+        # no global test, up to 5 steps, no structure: the first step selects at about
+        # 1 - (1 - α)^m; later steps are tested on permutations updated by earlier entries,
+        # and must not add more false vectors than per-step permutations do
+        r = shared[("no_global_steps", "irregular")]
+        expected = studies.no_global_expected(int(r["m"]))
+        assert abs(r["selected_shared"] - expected) <= 0.08
+        assert r["steps_shared"] > 300 * (1 + expected / 2)     # later steps were tested
+        assert abs(r["size_shared"] - r["size_fixed"]) <= 3 * r["size_gap_se"] + 1e-12
+
+    def test_power_is_the_same(self, shared):
+        r = shared[("broad", "10")]
+        assert r["size_fixed"] > 1.5                            # several steps per selection
+        assert abs(r["size_shared"] - r["size_fixed"]) <= 3 * r["size_gap_se"] + 1e-12

@@ -57,6 +57,14 @@ What is simulated (all seeded; level α = 0.05):
   variable: every replicate runs a step test), ``broad`` (the power design above, grid 6 × 6
   and 10 × 10). Reported: rate of ≥ 1 selected vector under each rule, share of replicates
   whose selected sets differ, mean permutations per step test.
+* Shared step permutations (:func:`sequential_study` with ``rule="shared"``): the same data
+  analysed with per-step permutations (a new set for every step test) and with one set of
+  permutations for all the steps of a selection, updated as vectors enter
+  (``shared_steps=True``); 999 permutations. Settings ``null`` and ``broad`` as above, and
+  ``no_global_steps`` (no structure, ``global_test="skip"``, no ceiling, up to 5 variables,
+  so that later steps are tested on the shared permutations too). Reported: rate of ≥ 1
+  selected vector under each rule, mean vectors selected, share of replicates whose
+  selected sets differ.
 * Environment-only fraction [a] with autocorrelated tables (:func:`fraction_spectral_study`):
   as above, the community also carries effects of the 3 broadest MEM, and the environment is
   tested given those 3 vectors.
@@ -65,6 +73,7 @@ What is simulated (all seeded; level α = 0.05):
 from __future__ import annotations
 
 import argparse
+import re
 import functools
 import sys
 import time
@@ -212,51 +221,60 @@ def power_study(kind: str, side: int, replicates: int, *, permutations: int = 99
 
 # ------------------------------------------------------------------------------ sequential steps
 
-SEQUENTIAL_SETTINGS = ("null", "no_global", "broad")
+SEQUENTIAL_SETTINGS = ("null", "no_global", "no_global_steps", "broad")
+STEP_RULES = ("sequential", "shared")
 
 
 @one_blas_thread
 def sequential_study(setting: str, where: str, replicates: int, *, permutations: int = 999,
-                     seed: int = 20261205) -> dict[str, float | int]:
-    """Forward selection with the full count and with sequential step decisions on the same
-    data and seed (module notes). ``where``: a layout name ("grid", "irregular") for "null"
-    and "no_global", a grid side ("6", "10") for "broad"."""
+                     seed: int = 20261205, rule: str = "sequential") -> dict[str, float | int]:
+    """Forward selection with the full count of per-step permutations ("fixed") and with the
+    step-test ``rule`` ("sequential" decisions or "shared" permutations) on the same data and
+    seed (module notes). ``where``: a layout name ("grid", "irregular") for "null",
+    "no_global" and "no_global_steps", a grid side ("6", "10") for "broad"."""
     if setting not in SEQUENTIAL_SETTINGS:
         raise ValueError(f"unknown setting {setting!r}")
+    if rule not in STEP_RULES:
+        raise ValueError(f"unknown rule {rule!r}")
     rng = np.random.default_rng(seed)
     xy = layout(where) if setting != "broad" else square_grid(int(where),
                                                               POWER_EXTENT / (int(where) - 1))
     n = len(xy)
     vectors = distance_eigenvectors(xy).vectors
     signal = POWER_EFFECT * structure("broad", xy)[:, None] if setting == "broad" else 0.0
-    options = ({"global_test": "skip", "r2_adj_limit": np.inf, "max_variables": 1}
-               if setting == "no_global" else {})
-    hits = {"fixed": 0, "sequential": 0}
-    size = {"fixed": 0, "sequential": 0}
-    steps = {"fixed": 0, "sequential": 0}
-    drawn = {"fixed": 0, "sequential": 0}
-    differ = 0
+    options = {"no_global": {"global_test": "skip", "r2_adj_limit": np.inf, "max_variables": 1},
+               "no_global_steps": {"global_test": "skip", "r2_adj_limit": np.inf,
+                                   "max_variables": 5}}.get(setting, {})
+    rules = ("fixed", rule)
+    hits, size, steps, drawn = ({r: 0 for r in rules} for _ in range(4))
+    differ, gaps = 0, []
     for _ in range(replicates):
         y = signal + rng.normal(size=(n, N_SPECIES))
         stream = int(rng.integers(2 ** 63))
         result = {}
-        for rule in ("fixed", "sequential"):
+        for r in rules:
             sel = forward_selection(y, vectors, alpha=ALPHA, n_permutations=permutations,
                                     seed=stream, engine="local",
-                                    sequential_steps=rule == "sequential", **options)
-            result[rule] = sel.selected
-            hits[rule] += len(sel.selected) > 0
-            size[rule] += len(sel.selected)
-            steps[rule] += int(np.isfinite(sel.steps["p_value"].to_numpy(float)).sum())
-            drawn[rule] += sel.step_permutations
-        differ += result["fixed"] != result["sequential"]
+                                    sequential_steps=r == "sequential",
+                                    shared_steps=r == "shared", **options)
+            result[r] = sel.selected
+            hits[r] += len(sel.selected) > 0
+            size[r] += len(sel.selected)
+            tested = int(np.isfinite(sel.steps["p_value"].to_numpy(float)).sum())
+            steps[r] += tested
+            drawn[r] += sel.step_permutations if r == "sequential" else tested * permutations
+        differ += result["fixed"] != result[rule]
+        gaps.append(len(result[rule]) - len(result["fixed"]))
     out: dict[str, float | int] = {
-        "n": n, "m": vectors.shape[1], "differ": differ / replicates}
-    for rule in ("fixed", "sequential"):
-        out[f"selected_{rule}"] = hits[rule] / replicates
-        out[f"size_{rule}"] = size[rule] / replicates
-        out[f"permutations_{rule}"] = drawn[rule] / max(steps[rule], 1)
-        out[f"steps_{rule}"] = steps[rule]
+        "n": n, "m": vectors.shape[1], "differ": differ / replicates,
+        # Monte Carlo standard error of the mean paired difference in vectors selected
+        "size_gap_se": float(np.std(gaps, ddof=1) / np.sqrt(replicates)) if replicates > 1
+        else float("nan")}
+    for r in rules:
+        out[f"selected_{r}"] = hits[r] / replicates
+        out[f"size_{r}"] = size[r] / replicates
+        out[f"permutations_{r}"] = drawn[r] / max(steps[r], 1)
+        out[f"steps_{r}"] = steps[r]
     return out
 
 
@@ -277,7 +295,7 @@ def sequential_rows(replicates: int, *, seed: int, progress=lambda m: None) -> l
                     "no_global": f"≈ 1 − (1 − α)^{int(r['m'])} = "
                                  f"{no_global_expected(int(r['m'])):.3f}",
                     "broad": "same as fixed"}[setting]
-        band = interval if setting == "null" else _observed_interval(
+        band = interval if setting == "null" else observed_interval(
             r["selected_fixed"], replicates)
         note = (f"selections differ in {r['differ']:.4f} of replicates; permutations per "
                 f"step test {r['permutations_fixed']:.0f} → {r['permutations_sequential']:.0f}"
@@ -290,7 +308,36 @@ def sequential_rows(replicates: int, *, seed: int, progress=lambda m: None) -> l
     return rows
 
 
-def _observed_interval(rate: float, replicates: int) -> tuple[float, float]:
+def shared_rows(replicates: int, *, seed: int, progress=lambda m: None) -> list[Row]:
+    """Rows of the shared-permutation study (per-step vs shared permutations, same data)."""
+    rows = []
+    interval = binomial_interval(replicates)
+    cases = [("null", "grid"), ("null", "irregular"), ("no_global_steps", "grid"),
+             ("no_global_steps", "irregular"), ("broad", "6"), ("broad", "10")]
+    for setting, where in cases:
+        progress(f"shared step permutations: {setting}, {where}")
+        r = sequential_study(setting, where, replicates, seed=seed + 7, rule="shared")
+        name = where if setting != "broad" else f"grid {where}×{where}"
+        what = {"null": "type I: forward selection, global test + double stop (≥ 1 selected)",
+                "no_global_steps": "selection without global test, up to 5 variables "
+                                   "(≥ 1 selected)",
+                "broad": f"power: broad structure, a = {POWER_EFFECT} (≥ 1 selected)"}[setting]
+        expected = "≤ 0.05" if setting == "null" else "same as per-step"
+        band = interval if setting == "null" else observed_interval(
+            r["selected_fixed"], replicates)
+        rows += [Row(f"{what}, per-step permutations (mean vectors selected "
+                     f"{r['size_fixed']:.3f}; {int(r['steps_fixed'])} step tests)", name,
+                     int(r["n"]), replicates, r["selected_fixed"], band, expected),
+                 Row(f"{what}, shared permutations (mean vectors selected "
+                     f"{r['size_shared']:.3f}, paired difference "
+                     f"{r['size_shared'] - r['size_fixed']:+.3f} ± {r['size_gap_se']:.3f} SE; "
+                     f"selections differ in {r['differ']:.4f} of replicates)", name,
+                     int(r["n"]), replicates, r["selected_shared"], band, expected)]
+    return rows
+
+
+def observed_interval(rate: float, replicates: int) -> tuple[float, float]:
+    """Binomial 99% interval of a rate around an observed ``rate`` (as proportions)."""
     lo, hi = stats.binom.interval(0.99, replicates, rate)
     return float(lo / replicates), float(hi / replicates)
 
@@ -550,6 +597,7 @@ def to_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
 
 
 SEQUENTIAL_MARK = "## Sequential step decisions"
+SHARED_MARK = "## Shared step permutations"
 
 
 def sequential_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
@@ -574,6 +622,42 @@ def sequential_markdown(rows: list[Row], *, seconds: float, command: str) -> str
     return "\n".join(lines)
 
 
+def shared_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
+    """The section of the shared-permutation study (replaced on each rerun)."""
+    lines = [SHARED_MARK, "",
+             f"Generated by `{command}` in {seconds:.0f} s; level α = {ALPHA:g}, 999 "
+             "permutations per test. Each replicate is analysed twice with the same data: "
+             "every step test on its own permutations, and every step of the selection on one "
+             "shared set of permutations, updated as vectors enter. Each shared step is the "
+             "same reduced-model residual permutation test (Freedman & Lane 1983, J. Bus. "
+             "Econ. Stat. 1:292–298) on other random permutations, so a step near α can go "
+             "either way. The first step draws the same permutations under both rules (the "
+             "shared set comes from the first step's stream), so the rate of ≥ 1 selected "
+             "vector is the same by construction; later steps differ, and the mean numbers of "
+             "vectors selected (their paired difference ± its Monte Carlo standard error) "
+             "compare them. 99% interval: binomial around α (type I rows) or around the "
+             "per-step rate (other rows).", "",
+             "| study | layout | n | replicates | rate | 99% interval | expected |",
+             "|---|---|---:|---:|---:|---|---|"]
+    for r in rows:
+        lines.append(f"| {r.study} | {r.layout} | {r.n} | {r.replicates} | {r.rate:.4f} | "
+                     f"[{r.interval[0]:.4f}, {r.interval[1]:.4f}] | {r.expected} |")
+    lines.append("")
+    return "\n".join(lines)
+
+
+def replace_section(text: str, mark: str, section: str) -> str:
+    """``text`` with its ``## `` section headed ``mark`` replaced by ``section`` (appended
+    when absent); other sections keep their place."""
+    parts = re.split(r"(?m)^(?=## )", text)
+    kept = [part for part in parts if not part.startswith(mark)]
+    body = [part.rstrip("\n") + "\n" for part in kept if part.strip()]
+    position = next((i for i, part in enumerate(parts) if part.startswith(mark)), len(parts))
+    before = sum(1 for part in parts[:position] if part.strip() and not part.startswith(mark))
+    body.insert(before, section.rstrip("\n") + "\n")
+    return "\n".join(body)
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--replicates", type=int, default=2000)
@@ -584,20 +668,26 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--sequential-only", action="store_true",
                         help="rerun only the sequential-decision study and replace its "
                              "section of --out (999 permutations per test)")
+    parser.add_argument("--shared-only", action="store_true",
+                        help="rerun only the shared-permutation study and replace its "
+                             "section of --out (999 permutations per test)")
     args = parser.parse_args(argv)
     start = time.perf_counter()
-    if args.sequential_only:
+    for flag, mark, make_rows, write in (
+            ("sequential", SEQUENTIAL_MARK, sequential_rows, sequential_markdown),
+            ("shared", SHARED_MARK, shared_rows, shared_markdown)):
+        if not getattr(args, f"{flag}_only"):
+            continue
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            rows = sequential_rows(args.replicates, seed=args.seed,
-                                   progress=lambda m: print(m, file=sys.stderr, flush=True))
+            rows = make_rows(args.replicates, seed=args.seed,
+                             progress=lambda m: print(m, file=sys.stderr, flush=True))
         seconds = time.perf_counter() - start
-        command = (f"python validation/error_rates.py --sequential-only --replicates "
+        command = (f"python validation/error_rates.py --{flag}-only --replicates "
                    f"{args.replicates} --seed {args.seed}")
         old = args.out.read_text(encoding="utf-8") if args.out.exists() else ""
-        head = old.split(SEQUENTIAL_MARK)[0].rstrip("\n")
-        args.out.write_text(head + "\n\n" + sequential_markdown(rows, seconds=seconds,
-                                                                command=command),
+        args.out.write_text(replace_section(old, mark, write(rows, seconds=seconds,
+                                                              command=command)),
                             encoding="utf-8")
         print(f"wrote {args.out} ({seconds:.0f} s)", file=sys.stderr)
         return 0
@@ -609,9 +699,11 @@ def main(argv: list[str] | None = None) -> int:
     command = (f"python validation/error_rates.py --replicates {args.replicates} "
                f"--permutations {args.permutations} --seed {args.seed}")
     old = args.out.read_text(encoding="utf-8") if args.out.exists() else ""
-    kept = (SEQUENTIAL_MARK + old.split(SEQUENTIAL_MARK, 1)[1]) if SEQUENTIAL_MARK in old else ""
-    args.out.write_text(to_markdown(rows, seconds=seconds, command=command)
-                        + ("\n" + kept if kept else ""), encoding="utf-8")
+    kept = [part for part in re.split(r"(?m)^(?=## )", old) if part.startswith("## ")]
+    args.out.write_text("\n".join([to_markdown(rows, seconds=seconds, command=command)
+                                   .rstrip("\n") + "\n"] + [part.rstrip("\n") + "\n"
+                                                              for part in kept]),
+                        encoding="utf-8")
     print(f"wrote {args.out} ({seconds:.0f} s)", file=sys.stderr)
     return 0
 

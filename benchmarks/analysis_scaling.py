@@ -200,7 +200,7 @@ def _workers_usage() -> tuple[float, float]:
     return cpu, peak
 
 
-def run_one(n: int, mode: str, n_permutations: int, step_tests: str = "full") -> dict:
+def run_one(n: int, mode: str, n_permutations: int, step_tests: str = "auto") -> dict:
     from spatial_ev.inference.engines import close_pools, run_tasks
     from spatial_ev.pipeline.analysis import analyse
     from spatial_ev.report.summary import summary_record
@@ -228,7 +228,7 @@ def run_one(n: int, mode: str, n_permutations: int, step_tests: str = "full") ->
            "cpu_s": (r1.ru_utime - r0.ru_utime) + (r1.ru_stime - r0.ru_stime) + worker_cpu,
            "peak_rss_mib": r1.ru_maxrss / 1024, "worker_peak_rss_mib": worker_peak,
            "load_average": os.getloadavg()[0], "blas": _blas(),
-           "chosen": result.settings["chosen_scheme"],
+           "chosen": result.settings["chosen_scheme"], "rule": result.settings["step_tests"],
            "n_selected": len(record["selected"]["space"]),
            "n_vectors": record["spatial_basis"]["n_vectors"],
            "summary": json.dumps(record, sort_keys=True)}
@@ -267,10 +267,12 @@ def main() -> None:
                         help="numbers of sites (default 500 2000 10000; 100000 is accepted)")
     parser.add_argument("--permutations", type=int, default=999)
     parser.add_argument("--modes", nargs="+", default=list(MODES), choices=MODES)
-    parser.add_argument("--step-tests", default="full", choices=("full", "sequential", "shared"),
+    parser.add_argument("--step-tests", default="auto",
+                        choices=("auto", "full", "sequential", "shared"),
                         help="forward-selection step tests: every permutation (full), "
-                             "stopping once p <= alpha is settled (sequential) or one set "
-                             "of permutations shared by the steps (shared)")
+                             "stopping once p <= alpha is settled (sequential), one set "
+                             "of permutations shared by the steps (shared), or the "
+                             "analysis default (auto: full up to 1,000 sites, shared above)")
     parser.add_argument("--one", type=int, default=None, help=argparse.SUPPRESS)
     parser.add_argument("--mode", default="threads", help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -295,7 +297,8 @@ def main() -> None:
             print(f"{n:>7,d} sites  {mode:<10s}  wall {r['wall_s']:8.1f} s  "
                   f"CPU {r['cpu_s']:8.1f} s  peak {peak}  load {r['load_average']:.1f}  "
                   f"chosen {r['chosen']} ({r['n_selected']} of {r['n_vectors']} vectors)")
-            print(f"{'':>16s}weighting-scheme comparison {r['comparison_s']:.1f} s "
+            print(f"{'':>16s}step tests {r['rule']}; weighting-scheme comparison "
+                  f"{r['comparison_s']:.1f} s "
                   f"({r['comparison_s'] / r['wall_s']:.0%} of the wall time)")
             if "stages" in r:
                 shares = r["stages"]

@@ -2,13 +2,15 @@
 
 Each size runs in its own subprocess so that peak memory (``ru_maxrss``, which includes numpy
 and ARPACK work arrays, unlike tracemalloc) is measured per size. Also compares the sparse
-(Lanczos) path with the dense path at n = 4,000.
+(Lanczos) path with the dense path at n = 4,000, and the dense path's two LAPACK drivers
+(MRRR against divide and conquer) at n = 2,000.
 
 Layout: an invented clustered design of constant sampling density (20 % of sites spread
 uniformly, 80 % in Gaussian clusters of ~250 sites, sd 2.5 km, domain side 100 km·√(n/10⁴)),
 so the distance band at the MST threshold holds ~120 neighbours per site at every n.
 
-Run: ``python benchmarks/eigen_scaling.py`` (add ``--sizes 10000 30000`` to shorten).
+Run: ``python benchmarks/eigen_scaling.py`` (add ``--sizes 10000 30000`` to shorten;
+``--sizes --dense-n 0`` runs the driver comparison alone).
 Timings depend on other load on the machine; memory does not.
 """
 
@@ -83,11 +85,56 @@ def _blas_report() -> str:
     return "\n".join(lines)
 
 
+def dense_drivers(n: int) -> list[str]:
+    """Time LAPACK's two symmetric drivers on the dense path's matrices at ``n`` sites: MRRR
+    (``evr``, for an index subset) and divide and conquer (``evd``, the whole spectrum),
+    for a Gabriel graph and the distance band; the dense path picks ``evd`` when more than a
+    quarter of the spectrum is wanted. Returns printable lines."""
+    import scipy.linalg
+
+    from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
+    from spatial_ev.space.graphs import neighbour_graph
+
+    xy = clustered_layout(n)
+    lines = []
+    for label, basis in (("gabriel/binary", graph_eigenvectors(neighbour_graph(xy, "gabriel"),
+                                                               solver="dense")),
+                         ("distance band", distance_eigenvectors(xy, solver="dense"))):
+        w = basis.weights
+        m = w.toarray()
+        m -= m.mean(axis=0, keepdims=True)
+        m -= m.mean(axis=1, keepdims=True)
+        m -= (float(abs(w).sum(axis=1).max()) + 1.0) / n      # the constant parked at the low end
+        times, values = {}, {}
+        for count in (n // 10, n - 1):
+            for driver in ("evr", "evd"):
+                a = m.copy()
+                start = time.perf_counter()
+                if driver == "evr":
+                    mu = scipy.linalg.eigh(a, subset_by_index=[n - count, n - 1],
+                                           overwrite_a=True, check_finite=False,
+                                           driver="evr")[0]
+                else:
+                    mu = scipy.linalg.eigh(a, overwrite_a=True, check_finite=False,
+                                           driver="evd")[0][n - count:]
+                times[count, driver], values[count, driver] = time.perf_counter() - start, mu
+        agree = all(np.allclose(values[c, "evr"], values[c, "evd"], rtol=1e-10, atol=1e-10)
+                    for c in (n // 10, n - 1))
+        lines.append(f"n = {n}, {label}: top {n // 10} eigenpairs evr {times[n // 10, 'evr']:.2f} s, "
+                     f"evd {times[n // 10, 'evd']:.2f} s; all {n - 1} evr "
+                     f"{times[n - 1, 'evr']:.2f} s, evd {times[n - 1, 'evd']:.2f} s "
+                     f"({times[n - 1, 'evr'] / times[n - 1, 'evd']:.1f}x); eigenvalues "
+                     f"agree to 1e-10: {agree}")
+    return lines
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--sizes", type=int, nargs="+", default=[10_000, 30_000, 100_000])
+    parser.add_argument("--sizes", type=int, nargs="*", default=[10_000, 30_000, 100_000])
     parser.add_argument("--k", type=int, default=200)
     parser.add_argument("--dense-n", type=int, default=4_000)
+    parser.add_argument("--drivers-n", type=int, default=2_000,
+                        help="sites for the dense-driver comparison (0 skips it)")
     parser.add_argument("--one", type=int, default=None, help=argparse.SUPPRESS)
     parser.add_argument("--solver", default="sparse", help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -95,6 +142,9 @@ def main() -> None:
         print(json.dumps(run_one(args.one, args.solver, args.k)))
         return
     print(_blas_report())
+    if args.drivers_n:
+        for line in dense_drivers(args.drivers_n):
+            print(line, flush=True)
     print("wall = elapsed seconds; cpu = process CPU seconds (user + system), the fairer "
           "figure when the machine is shared; load = 1-min load average at the end")
     print(f"{'n':>8} {'solver':>7} {'k':>5} {'nbrs/site':>10} {'graph s':>8} {'wall s':>8} "

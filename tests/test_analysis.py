@@ -314,6 +314,27 @@ class TestSequentialStepTests:
         with pytest.raises(InputError, match="step_tests"):
             analyse(small_survey(), n_permutations=99, seed=1, step_tests="early")
 
+    def test_auto_rule_follows_the_number_of_sites(self, monkeypatch):
+        import spatial_ev.pipeline.steps as steps
+
+        survey = small_survey()
+        kwargs = dict(n_permutations=99, seed=3, environment_test="permutation",
+                      schemes=["distance"])
+        small = analyse(survey, **kwargs)
+        assert small.settings.step_tests == "full"
+        assert not any("step-test rule" in note for note in small.notes)
+        # the same survey counted as large: the default shares the step permutations, the
+        # settings record the rule that ran (so a pilot rerun repeats it) and a note says so
+        monkeypatch.setattr(steps, "SHARED_STEPS_ABOVE", survey.n_sites - 1)
+        large = analyse(survey, **kwargs)
+        assert large.settings.step_tests == "shared"
+        ran = [sel for sel in (large.environment_selection, large.space_selection)
+               if sel is not None]
+        assert ran and all(sel.shared for sel in ran)
+        assert any("step-test rule 'auto' above" in note for note in large.notes)
+        explicit = analyse(survey, **kwargs, step_tests="full")
+        assert explicit.settings.step_tests == "full"
+
 
 class TestTrendRule:
     def test_auto_resolves_by_network(self):

@@ -386,3 +386,17 @@ def test_sequential_rule_numbers_quoted_in_the_guide(repo_root):
     assert (f"With 999 permutations and α = 0.05, a clearly significant step stops after "
             f"{first_stop} permutations and a clearly non-significant one at its "
             f"{rule.exceedances(999)}th exceedance") in text
+
+
+def test_step_rule_threshold_quoted_in_the_guide_and_cli(repo_root):
+    """Section 9 and the command-line help quote the site count above which the default step
+    rule shares permutations; both follow the constant that decides it."""
+    from spatial_ev.pipeline.steps import SHARED_STEPS_ABOVE, resolve_step_tests
+
+    assert resolve_step_tests("auto", SHARED_STEPS_ABOVE)[0] == "full"
+    assert resolve_step_tests("auto", SHARED_STEPS_ABOVE + 1)[0] == "shared"
+    text = " ".join((repo_root / "docs" / "guide.md").read_text(encoding="utf-8").split())
+    assert (f"draws new permutations for every step (`full`) up to {SHARED_STEPS_ABOVE:,} "
+            f"sites and shares them (`shared`) above") in text
+    cli = " ".join((repo_root / "docs" / "cli.md").read_text(encoding="utf-8").split())
+    assert f"auto (default): full up to {SHARED_STEPS_ABOVE:,} sites, shared above" in cli

@@ -262,3 +262,25 @@ def test_sequential_step_numbers_are_those_of_the_study(repo_root):
     assert f"in every replicate of all {len(rows)} settings" in readme
     assert f"drew {min(drawn)}–{max(drawn)} permutations on average instead of 999" in readme
     assert "1,000 replicates per setting" in readme and "--replicates 1000" in part
+
+
+def test_shared_step_numbers_are_those_of_the_study(repo_root):
+    """The README's shared-permutation summary is the 'Shared step permutations' table of
+    validation/error_rates.md: the range of the paired differences in mean vectors selected,
+    each within 2 Monte Carlo standard errors (to the table's rounding)."""
+    import re
+
+    readme = " ".join((repo_root / "README.md").read_text(encoding="utf-8").split())
+    study = (repo_root / "validation" / "error_rates.md").read_text(encoding="utf-8")
+    part = study[study.index("## Shared step permutations"):]
+    rows = [r for r in part.splitlines() if "shared permutations (mean vectors selected" in r]
+    assert len(rows) == 6
+    pairs = [re.search(r"paired difference ([+-][0-9.]+) ± ([0-9.]+) SE", r).groups()
+             for r in rows]
+    gaps = [float(d) for d, _ in pairs]
+    assert all(abs(float(d)) <= 2 * float(se) + 0.0005 for d, se in pairs)
+    low, high = min(gaps), max(gaps)
+    assert (f"paired differences in the mean number of vectors selected of "
+            f"{low:+.3f} to {high:+.3f}".replace("-", "−")) in readme
+    assert f"each within 2 Monte Carlo SE, in all {len(rows)} settings" in readme
+    assert "1,000 replicates per setting" in readme and "--replicates 1000" in part

@@ -51,12 +51,14 @@ def _analysis_options(parser: argparse.ArgumentParser) -> None:
                                 "presence_absence", "none"),
                        help="community transformation (default: hellinger)")
     group.add_argument("--weighting", default="compare", metavar="SCHEME", help=_SCHEMES_HELP)
-    group.add_argument("--step-tests", default="full", choices=("full", "sequential", "shared"),
-                       help="forward-selection step tests draw every permutation (full, "
-                            "default), stop once p <= alpha is settled with resampling risk "
-                            "<= 0.001 (sequential), or share one set of permutations across "
-                            "the steps of a selection, updated as the model grows (shared; "
-                            "much faster on large surveys)")
+    group.add_argument("--step-tests", default="auto",
+                       choices=("auto", "full", "sequential", "shared"),
+                       help="forward-selection step tests draw every permutation (full), "
+                            "stop once p <= alpha is settled with resampling risk <= 0.001 "
+                            "(sequential), or share one set of permutations across the steps "
+                            "of a selection, updated as the model grows (shared; much faster "
+                            "on large surveys); auto (default): full up to 1,000 sites, "
+                            "shared above")
     group.add_argument("--trend", default="auto", choices=("auto", "test", "ignore"),
                        help="test a linear trend on the coordinates and keep it as a "
                             "covariable when significant (test), or ignore trends; auto "

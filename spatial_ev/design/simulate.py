@@ -773,7 +773,7 @@ class SimulationSettings:
         The pilot's scale classes, in order.
     model : PilotModel
         The generator of the simulated landscapes.
-    step_tests : {"full", "sequential"}
+    step_tests : {"full", "sequential", "shared"}
         The pilot's rule for forward-selection step tests, applied to every simulated
         analysis (:attr:`~spatial_ev.pipeline.options.StepOptions.step_tests`).
     """

@@ -57,6 +57,7 @@ from spatial_ev.pipeline.steps import (
     space_step,
     spectral_environment_step,
     spectral_fraction_step,
+    resolve_step_tests,
     resolve_trend,
     trend_step,
 )
@@ -375,7 +376,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
             n_workers: int | None = None, network: RiverNetwork | None = None,
             bearing: float | None = None, orientations: Sequence[str] = ("with_flow",),
             edge_weightings: Sequence[str] = ("binary", "linear"),
-            weight_by: str = "edge_length", step_tests: str = "full") -> Analysis:
+            weight_by: str = "edge_length", step_tests: str = "auto") -> Analysis:
     """Run the whole spatial-structure analysis of a survey.
 
     Parameters
@@ -452,8 +453,11 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         ``"concave_down:<α>"``, ``"concave_up:<β>"``; default binary and linear).
     weight_by : {"edge_length", "network_distance"}
         What a river AEM's non-binary edge weighting is a function of.
-    step_tests : {"full", "sequential", "shared"}
-        ``"full"`` (default): every forward-selection step test draws ``n_permutations``.
+    step_tests : {"auto", "full", "sequential", "shared"}
+        ``"auto"`` (default): ``"full"`` up to 1,000 sites, ``"shared"`` above
+        (:func:`~spatial_ev.pipeline.steps.resolve_step_tests`; the settings record the
+        rule that ran and a note says so). ``"full"``: every forward-selection step test
+        draws ``n_permutations``.
         ``"sequential"``: a step test stops drawing once "p ≤ α?" is settled with resampling
         risk ≤ 0.001 (Besag & Clifford 1991, Biometrika 78:301–304, for non-significant
         steps; Gandy 2009, JASA 104:1504–1511, either way); each step's p-value then rests on
@@ -484,6 +488,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
     directional = _check_directional(network, bearing, orientations, edge_weightings,
                                      weight_by)
     trend, trend_note = resolve_trend(trend, on_network=network is not None)
+    step_tests, step_note = resolve_step_tests(step_tests, survey.n_sites)
     if max_vectors is not None:
         max_vectors = check_int("max_vectors", max_vectors, low=1)
     if n_workers is not None:
@@ -554,7 +559,7 @@ def analyse(survey: Survey, *, transformation: str = "hellinger",
         partition=partition.partition, fractions=partition.fractions,
         fraction_tests=partition.fraction_tests, scale_fits=scales.fits,
         scalogram=scales.scalogram, beta=beta, ordination=ordination,
-        notes=tuple(note for note in (small, trend_note) if note is not None)
+        notes=tuple(note for note in (small, trend_note, step_note) if note is not None)
         + tuple(note for step in steps if step is not None for note in step.notes),
         warnings=tuple(f"{w.category.__name__}: {w.message}" for w in caught
                        if issubclass(w.category, SpatialEVWarning)),

@@ -38,7 +38,7 @@ import numpy as np
 import pandas as pd
 import scipy.spatial
 
-from spatial_ev._validation import check_option, check_real, check_rng
+from spatial_ev._validation import check_int, check_option, check_real, check_rng
 from spatial_ev.errors import InputError
 from spatial_ev.inference.permutation import PermutationTest, permutation_test
 from spatial_ev.inference.spectral import (
@@ -51,7 +51,7 @@ from spatial_ev.inference.spectral import (
 )
 from spatial_ev.input.network import RiverNetwork
 from spatial_ev.input.survey import Survey
-from spatial_ev.pipeline.options import DEFAULT_OPTIONS, StepOptions
+from spatial_ev.pipeline.options import DEFAULT_OPTIONS, STEP_TESTS, StepOptions
 from spatial_ev.pipeline.scale_classes import (
     ScaleClassFit,
     fit_scale_classes,
@@ -107,6 +107,7 @@ __all__ = [
     "space_step",
     "spectral_environment_step",
     "spectral_fraction_step",
+    "resolve_step_tests",
     "resolve_trend",
     "trend_step",
 ]
@@ -133,6 +134,58 @@ def _level(alpha: float) -> float:
 
 
 # ------------------------------------------------------------------------------ trend
+
+#: step-test rules of the analysis; ``"auto"`` resolves to ``"full"`` or ``"shared"`` by the
+#: number of sites (see :func:`resolve_step_tests`)
+STEP_TEST_OPTIONS = ("auto",) + STEP_TESTS
+#: above this many sites ``step_tests="auto"`` shares one set of permutations among the steps
+#: of a selection: per-step permutations then take most of an analysis (benchmarks/
+#: analysis_scaling.py: 2,000 sites, 2 processes, 999 permutations, 57 s shared against
+#: minutes per step), while below it they take seconds
+SHARED_STEPS_ABOVE = 1000
+
+
+def resolve_step_tests(mode: str, n_sites: int) -> tuple[str, str | None]:
+    """The step-test rule that runs, and a note when ``"auto"`` chose shared permutations.
+
+    ``"auto"`` draws new permutations for every forward-selection step test (``"full"``) up
+    to :data:`SHARED_STEPS_ABOVE` sites, and above it tests every step of a selection on one
+    shared set of permutations, updated as vectors enter (``"shared"``;
+    :class:`~spatial_ev.inference.permutation.SharedStepPermutations`). Each shared step is
+    the same permutation test on other random permutations; in simulations the numbers of
+    vectors selected agree with per-step permutations (``validation/error_rates.md``).
+    Other rules are kept as given.
+
+    Parameters
+    ----------
+    mode : {"auto", "full", "sequential", "shared"}
+    n_sites : int
+
+    Returns
+    -------
+    mode : {"full", "sequential", "shared"}
+    note : str or None
+
+    Examples
+    --------
+    >>> resolve_step_tests("auto", 300)
+    ('full', None)
+    >>> resolve_step_tests("auto", 5000)[0]
+    'shared'
+    """
+    check_option("step_tests", mode, STEP_TEST_OPTIONS)
+    n_sites = check_int("n_sites", n_sites, low=1)
+    if mode != "auto":
+        return mode, None
+    if n_sites <= SHARED_STEPS_ABOVE:
+        return "full", None
+    return "shared", (f"Every forward-selection step was tested on one set of permutations "
+                      f"shared by the steps of its selection and updated as vectors entered "
+                      f"(step-test rule 'auto' above {SHARED_STEPS_ABOVE:,} sites; with "
+                      f"{n_sites:,} sites, new permutations for every step would take most "
+                      f"of the analysis). Each step is the same permutation test; give the "
+                      f"step-test rule 'full' to draw new permutations for every step.")
+
 
 def resolve_trend(mode: str, *, on_network: bool) -> tuple[str, str | None]:
     """The trend rule that runs, and a note when ``"auto"`` chose to leave the trend out.

@@ -448,11 +448,14 @@ def _delaunay_candidates(layout: Layout, new: np.ndarray, free: np.ndarray
     uy = (sa * (c[:, 0] - b[:, 0]) + sb * (a[:, 0] - c[:, 0]) + sc * (b[:, 0] - a[:, 0])) / dd
     centre = np.column_stack([ux, uy])
     radius = np.sqrt(((a - centre) ** 2).sum(1))
-    hits = cKDTree(centre).query_ball_point(new[free], radius.max() * (1 + REL_TOL))
+    # each triangle looks up the points in its own circumcircle: a query from the points
+    # with the largest circumradius (a sliver on the hull can span the whole survey) would
+    # pair every point with most triangles, O(points × triangles) memory
+    hits = cKDTree(new[free]).query_ball_point(centre, radius * (1 + REL_TOL))
     lens = np.fromiter((len(h) for h in hits), dtype=np.int64, count=len(hits))
-    t = np.concatenate([np.asarray(h, dtype=np.int64) for h in hits]) if lens.sum() \
+    local = np.concatenate([np.asarray(h, dtype=np.int64) for h in hits]) if lens.sum() \
         else np.zeros(0, dtype=np.int64)
-    owner = np.repeat(free, lens)
+    owner, t = free[local], np.repeat(np.arange(len(centre), dtype=np.int64), lens)
     inside = ((new[owner] - centre[t]) ** 2).sum(1) < radius[t] ** 2 * (1 - REL_TOL)
     owner, t = owner[inside], t[inside]
     # points outside the hull also see the hull vertices of the edges facing them

@@ -195,6 +195,21 @@ class TestInsertionNeighbours:
             expected = set(nb[indptr[60]:indptr[61]].tolist())
             assert set(s[p == m].tolist()) == expected
 
+    def test_delaunay_insertion_with_hull_slivers(self):
+        # sites nearly in line along one side make thin hull triangles whose circumcircles
+        # span the layout; each point must still get exactly its retriangulated neighbours
+        rng = np.random.default_rng(SEEDS[2])
+        edge = np.column_stack([np.linspace(0, 1000, 12), 1e-3 * rng.normal(size=12)])
+        xy = np.vstack([edge, rng.uniform([0, 50], [1000, 1000], size=(40, 2))])
+        g = neighbour_graph(xy, "delaunay", distance="euclidean")
+        new = rng.uniform([0, 1], [1000, 1000], size=(30, 2))
+        p, s, _, _ = insertion_neighbours(g, new)
+        for m in range(len(new)):
+            tri = Delaunay(np.vstack([xy, new[m]]))
+            indptr, nb = tri.vertex_neighbor_vertices
+            expected = set(nb[indptr[len(xy)]:indptr[len(xy) + 1]].tolist())
+            assert set(s[p == m].tolist()) == expected
+
     def test_gabriel_insertion_matches_rebuilt_graph(self):
         xy = _random_xy(SEEDS[2], n=50)
         g = neighbour_graph(xy, "gabriel", distance="euclidean")

@@ -257,8 +257,8 @@ def solve_dense(w: sparse.csr_matrix, k: int | None, which: str) -> tuple[np.nda
     count = n - 1 if k is None else min(k, n - 1)
     first, last = (n - count, n - 1) if which == "LA" else (0, count - 1)
     if count > n // 4:
-        # divide and conquer: 2-6x faster than MRRR for most of the spectrum of these
-        # matrices (2,000 sites: 0.8 s against 1.8-5.4 s; benchmarks/eigen_scaling.py)
+        # divide and conquer: 5-7x faster than MRRR for the whole spectrum of these
+        # matrices (2,000 sites: 0.65-0.68 s against 3.5-5.0 s; benchmarks/eigen_scaling.py)
         mu, u = scipy.linalg.eigh(m, overwrite_a=True, check_finite=False, driver="evd")
         return mu[first:last + 1], u[:, first:last + 1]
     return scipy.linalg.eigh(m, subset_by_index=[first, last], overwrite_a=True,

@@ -278,25 +278,36 @@ def sequential_study(setting: str, where: str, replicates: int, *, permutations:
     return out
 
 
+def _rule_runs(rule: str, no_global: str, replicates: int, *, seed: int, progress):
+    """Run :func:`sequential_study` for ``rule`` in the six settings of its table (type I on
+    both layouts, ``no_global`` on both layouts, power on both grids); yield ``(setting,
+    result, layout label, study label, 99% interval)`` per setting."""
+    interval = binomial_interval(replicates)
+    labels = {"null": "type I: forward selection, global test + double stop (≥ 1 selected)",
+              "no_global": "selection without global test, one variable (≥ 1 selected)",
+              "no_global_steps": "selection without global test, up to 5 variables "
+                                 "(≥ 1 selected)",
+              "broad": f"power: broad structure, a = {POWER_EFFECT} (≥ 1 selected)"}
+    cases = [("null", "grid"), ("null", "irregular"), (no_global, "grid"),
+             (no_global, "irregular"), ("broad", "6"), ("broad", "10")]
+    for setting, where in cases:
+        progress(f"{rule} step tests: {setting}, {where}")
+        r = sequential_study(setting, where, replicates, seed=seed, rule=rule)
+        name = where if setting != "broad" else f"grid {where}×{where}"
+        band = interval if setting == "null" else observed_interval(
+            r["selected_fixed"], replicates)
+        yield setting, r, name, labels[setting], band
+
+
 def sequential_rows(replicates: int, *, seed: int, progress=lambda m: None) -> list[Row]:
     """Rows of the sequential-decision study (fixed count vs sequential, same data)."""
     rows = []
-    interval = binomial_interval(replicates)
-    cases = [("null", "grid"), ("null", "irregular"), ("no_global", "grid"),
-             ("no_global", "irregular"), ("broad", "6"), ("broad", "10")]
-    for setting, where in cases:
-        progress(f"sequential step decisions: {setting}, {where}")
-        r = sequential_study(setting, where, replicates, seed=seed + 5)
-        name = where if setting != "broad" else f"grid {where}×{where}"
-        what = {"null": "type I: forward selection, global test + double stop (≥ 1 selected)",
-                "no_global": "selection without global test, one variable (≥ 1 selected)",
-                "broad": f"power: broad structure, a = {POWER_EFFECT} (≥ 1 selected)"}[setting]
+    for setting, r, name, what, band in _rule_runs("sequential", "no_global", replicates,
+                                                   seed=seed + 5, progress=progress):
         expected = {"null": "≤ 0.05",
                     "no_global": f"≈ 1 − (1 − α)^{int(r['m'])} = "
                                  f"{no_global_expected(int(r['m'])):.3f}",
                     "broad": "same as fixed"}[setting]
-        band = interval if setting == "null" else observed_interval(
-            r["selected_fixed"], replicates)
         note = (f"selections differ in {r['differ']:.4f} of replicates; permutations per "
                 f"step test {r['permutations_fixed']:.0f} → {r['permutations_sequential']:.0f}"
                 f" ({int(r['steps_sequential'])} step tests); mean vectors selected "
@@ -311,20 +322,9 @@ def sequential_rows(replicates: int, *, seed: int, progress=lambda m: None) -> l
 def shared_rows(replicates: int, *, seed: int, progress=lambda m: None) -> list[Row]:
     """Rows of the shared-permutation study (per-step vs shared permutations, same data)."""
     rows = []
-    interval = binomial_interval(replicates)
-    cases = [("null", "grid"), ("null", "irregular"), ("no_global_steps", "grid"),
-             ("no_global_steps", "irregular"), ("broad", "6"), ("broad", "10")]
-    for setting, where in cases:
-        progress(f"shared step permutations: {setting}, {where}")
-        r = sequential_study(setting, where, replicates, seed=seed + 7, rule="shared")
-        name = where if setting != "broad" else f"grid {where}×{where}"
-        what = {"null": "type I: forward selection, global test + double stop (≥ 1 selected)",
-                "no_global_steps": "selection without global test, up to 5 variables "
-                                   "(≥ 1 selected)",
-                "broad": f"power: broad structure, a = {POWER_EFFECT} (≥ 1 selected)"}[setting]
+    for setting, r, name, what, band in _rule_runs("shared", "no_global_steps", replicates,
+                                                   seed=seed + 7, progress=progress):
         expected = "≤ 0.05" if setting == "null" else "same as per-step"
-        band = interval if setting == "null" else observed_interval(
-            r["selected_fixed"], replicates)
         rows += [Row(f"{what}, per-step permutations (mean vectors selected "
                      f"{r['size_fixed']:.3f}; {int(r['steps_fixed'])} step tests)", name,
                      int(r["n"]), replicates, r["selected_fixed"], band, expected),

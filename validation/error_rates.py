@@ -569,11 +569,7 @@ def to_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
              "adjusted fraction). 99% interval = binomial interval around the expected rate "
              "(type I rows), around the observed rate (power rows), or the population value "
              "± 3 Monte Carlo SE (bias rows).", "",
-             "| study | layout | n | replicates | rate | 99% interval | expected |",
-             "|---|---|---:|---:|---:|---|---|"]
-    for r in rows:
-        lines.append(f"| {r.study} | {r.layout} | {r.n} | {r.replicates} | {r.rate:.4f} | "
-                     f"[{r.interval[0]:.4f}, {r.interval[1]:.4f}] | {r.expected} |")
+             *rule_table(rows)]
     lines += ["", "Reading the table:", "",
               "* Forward selection without the global test selects something most of the time "
               "under no structure; the global test brings it back under α (Blanchet, Legendre & "
@@ -600,6 +596,14 @@ SEQUENTIAL_MARK = "## Sequential step decisions"
 SHARED_MARK = "## Shared step permutations"
 
 
+def rule_table(rows: list[Row]) -> list[str]:
+    """Markdown lines of a step-rule table: header and one line per row."""
+    return (["| study | layout | n | replicates | rate | 99% interval | expected |",
+             "|---|---|---:|---:|---:|---|---|"]
+            + [f"| {r.study} | {r.layout} | {r.n} | {r.replicates} | {r.rate:.4f} | "
+               f"[{r.interval[0]:.4f}, {r.interval[1]:.4f}] | {r.expected} |" for r in rows])
+
+
 def sequential_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
     """The section of the sequential-decision study (replaced on each rerun)."""
     lines = [SEQUENTIAL_MARK, "",
@@ -611,11 +615,7 @@ def sequential_markdown(rows: list[Row], *, seconds: float, command: str) -> str
              "steps at an early look with risk ≤ ε, Gandy 2009, JASA 104:1504–1511). Global "
              "tests always draw the full count. 99% interval: binomial around α (type I rows) "
              "or around the full-count rate (other rows).", "",
-             "| study | layout | n | replicates | rate | 99% interval | expected |",
-             "|---|---|---:|---:|---:|---|---|"]
-    for r in rows:
-        lines.append(f"| {r.study} | {r.layout} | {r.n} | {r.replicates} | {r.rate:.4f} | "
-                     f"[{r.interval[0]:.4f}, {r.interval[1]:.4f}] | {r.expected} |")
+             *rule_table(rows)]
     lines += ["", "A non-significant step stops at its h-th exceedance and always takes the "
               "decision the full count would take; only an early significant stop can differ, "
               "with probability at most ε when the step's p over all permutations is ≥ α.", ""]
@@ -637,11 +637,7 @@ def shared_markdown(rows: list[Row], *, seconds: float, command: str) -> str:
              "vectors selected (their paired difference ± its Monte Carlo standard error) "
              "compare them. 99% interval: binomial around α (type I rows) or around the "
              "per-step rate (other rows).", "",
-             "| study | layout | n | replicates | rate | 99% interval | expected |",
-             "|---|---|---:|---:|---:|---|---|"]
-    for r in rows:
-        lines.append(f"| {r.study} | {r.layout} | {r.n} | {r.replicates} | {r.rate:.4f} | "
-                     f"[{r.interval[0]:.4f}, {r.interval[1]:.4f}] | {r.expected} |")
+             *rule_table(rows)]
     lines.append("")
     return "\n".join(lines)
 

@@ -89,7 +89,8 @@ def dense_drivers(n: int) -> list[str]:
     """Time LAPACK's two symmetric drivers on the dense path's matrices at ``n`` sites: MRRR
     (``evr``, for an index subset) and divide and conquer (``evd``, the whole spectrum),
     for a Gabriel graph and the distance band; the dense path picks ``evd`` when more than a
-    quarter of the spectrum is wanted. Returns printable lines."""
+    quarter of the spectrum is wanted and the wanted eigenvalues are distinct. Returns
+    printable lines."""
     import scipy.linalg
 
     from spatial_ev.space.eigen import distance_eigenvectors, graph_eigenvectors
